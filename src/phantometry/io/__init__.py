@@ -1,0 +1,1 @@
+"""Loaders and writers for image files (DICOM, NIfTI)."""
