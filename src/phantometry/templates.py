@@ -1,0 +1,505 @@
+"""ROI templates: a phantom described in its own frame (mm), loaded from YAML and validated.
+
+A template states *what* the phantom is (body outline, inserts, background ROI sets, which
+analysis applies); :mod:`phantometry.locate` finds *where* it is in an image. The schema is
+phantometry's own and is documented in the README ("ROI templates").
+
+Template frame
+--------------
+Right-handed, mm. ``+z`` runs along the phantom axis; ``z = 0`` is the reference plane (the
+sphere plane of a body phantom); ``+y`` points to the anterior (curved) side of a body phantom.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+from functools import cached_property
+from importlib import resources
+from pathlib import Path
+from typing import Annotated, Any, Literal, Union
+
+import numpy as np
+import yaml
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+
+from .errors import TemplateError
+
+TEMPLATE_PATH_ENV = "PHANTOMETRY_TEMPLATES"
+
+Vec3 = tuple[float, float, float]
+Vec2 = tuple[float, float]
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+# ---------------------------------------------------------------------------------------- body
+class CylinderBody(_Strict):
+    """A right circular cylinder along the template z axis."""
+
+    shape: Literal["cylinder"]
+    diameter_mm: float = Field(gt=0)
+    centre_xy_mm: Vec2 = (0.0, 0.0)
+    z_range_mm: Vec2
+
+    def inside_xy(self, x: np.ndarray, y: np.ndarray) -> np.ndarray:
+        cx, cy = self.centre_xy_mm
+        return (x - cx) ** 2 + (y - cy) ** 2 <= (self.diameter_mm / 2) ** 2
+
+    def outline_xy(self, n: int = 720) -> np.ndarray:
+        t = np.linspace(0, 2 * np.pi, n, endpoint=False)
+        r = self.diameter_mm / 2
+        return np.c_[self.centre_xy_mm[0] + r * np.cos(t), self.centre_xy_mm[1] + r * np.sin(t)]
+
+    @property
+    def half_extent_xy_mm(self) -> float:
+        return self.diameter_mm / 2 + math.hypot(*self.centre_xy_mm)
+
+
+class DShapeBody(_Strict):
+    """The body-phantom cross-section: a half-circle over a lower part with rounded corners.
+
+    The half-circle (radius ``arc_radius_mm``) is centred at ``centre_xy_mm`` and lies on the
+    ``+y`` side. Below it, a part ``lower_height_mm`` high whose flat bottom is
+    ``flat_width_mm`` wide, joined to the sides by corners of ``corner_radius_mm``; the total
+    width is ``flat_width_mm + 2 * corner_radius_mm`` and must equal twice the arc radius.
+    """
+
+    shape: Literal["d_shape"]
+    arc_radius_mm: float = Field(gt=0)
+    flat_width_mm: float = Field(ge=0)
+    corner_radius_mm: float = Field(gt=0)
+    centre_xy_mm: Vec2 = (0.0, 0.0)
+    z_range_mm: Vec2
+
+    @model_validator(mode="after")
+    def _widths_match(self) -> "DShapeBody":
+        width = self.flat_width_mm + 2 * self.corner_radius_mm
+        if abs(width - 2 * self.arc_radius_mm) > 1e-6:
+            raise ValueError(
+                f"flat_width_mm + 2*corner_radius_mm = {width:g} must equal 2*arc_radius_mm = "
+                f"{2 * self.arc_radius_mm:g}"
+            )
+        return self
+
+    def inside_xy(self, x: np.ndarray, y: np.ndarray) -> np.ndarray:
+        cx, cy = self.centre_xy_mm
+        x = x - cx
+        y = y - cy
+        r, c, half_flat = self.arc_radius_mm, self.corner_radius_mm, self.flat_width_mm / 2
+        upper = (y >= 0) & (x * x + y * y <= r * r)
+        lower = (y < 0) & (y >= -c) & (
+            (np.abs(x) <= half_flat) | ((np.abs(x) - half_flat) ** 2 + y * y <= c * c)
+        )
+        return upper | lower
+
+    def outline_xy(self, n: int = 1440) -> np.ndarray:
+        cx, cy = self.centre_xy_mm
+        r, c, hf = self.arc_radius_mm, self.corner_radius_mm, self.flat_width_mm / 2
+        t = np.linspace(0, np.pi, n // 2)
+        arc = np.c_[r * np.cos(t), r * np.sin(t)]
+        a = np.linspace(np.pi, 1.5 * np.pi, n // 8)
+        left = np.c_[-hf + c * np.cos(a), c * np.sin(a)]
+        bottom = np.c_[np.linspace(-hf, hf, n // 8), np.full(n // 8, -c)]
+        a2 = np.linspace(1.5 * np.pi, 2 * np.pi, n // 8)
+        right = np.c_[hf + c * np.cos(a2), c * np.sin(a2)]
+        return np.r_[arc, left, bottom, right] + [cx, cy]
+
+    @property
+    def half_extent_xy_mm(self) -> float:
+        return self.arc_radius_mm + math.hypot(*self.centre_xy_mm)
+
+
+Body = Annotated[Union[CylinderBody, DShapeBody], Field(discriminator="shape")]
+
+
+# ------------------------------------------------------------------------------------- inserts
+Fill = Literal["fill_record", "background", "cold", "solid"]
+Role = Literal["sphere", "low_density", "rod", "chamber", "solid_section", "other"]
+
+
+class Insert(_Strict):
+    """A fillable or solid element inside the body.
+
+    ``fill`` says where its activity comes from: ``fill_record`` (hot or cold as the fill
+    record states), ``background`` (same solution as the body), ``cold`` (never radioactive:
+    water, air, low-density material) or ``solid`` (plastic, no activity).
+    ``diameter_mm`` is the inner (fillable) diameter; ``wall_mm`` an inactive wall around it.
+    """
+
+    name: str = Field(pattern=r"^[a-z][a-z0-9_]*$")
+    shape: Literal["sphere", "cylinder"]
+    role: Role
+    centre_mm: Vec3
+    diameter_mm: float = Field(gt=0)
+    wall_mm: float = Field(default=0.0, ge=0)
+    length_mm: float | None = Field(default=None, gt=0)
+    axis: Vec3 = (0.0, 0.0, 1.0)
+    fill: Fill = "fill_record"
+    inside: str | None = None
+    note: str | None = None
+
+    @model_validator(mode="after")
+    def _shape_fields(self) -> "Insert":
+        if self.shape == "cylinder" and self.length_mm is None:
+            raise ValueError("a cylinder needs length_mm")
+        if self.shape == "sphere" and self.length_mm is not None:
+            raise ValueError("a sphere takes no length_mm")
+        if np.linalg.norm(self.axis) < 1e-9:
+            raise ValueError("axis must be a non-zero vector")
+        return self
+
+    @property
+    def outer_diameter_mm(self) -> float:
+        return self.diameter_mm + 2 * self.wall_mm
+
+    @property
+    def axis_unit(self) -> np.ndarray:
+        a = np.asarray(self.axis, float)
+        return a / np.linalg.norm(a)
+
+    @property
+    def volume_ml(self) -> float:
+        r = self.diameter_mm / 2
+        if self.shape == "sphere":
+            return 4.0 / 3.0 * math.pi * r**3 / 1000.0
+        return math.pi * r * r * float(self.length_mm) / 1000.0
+
+
+class BackgroundSet(_Strict):
+    """Background ROIs: circles on planes parallel to the reference plane.
+
+    Every centre is used on every slice offset and with every diameter (concentric ROIs).
+    """
+
+    centres_xy_mm: list[Vec2] = Field(min_length=1)
+    slice_offsets_mm: list[float] = Field(min_length=1)
+    diameters_mm: list[float] = Field(min_length=1)
+    min_clearance_mm: float = Field(default=15.0, ge=0)
+    note: str | None = None
+
+    @field_validator("diameters_mm")
+    @classmethod
+    def _positive(cls, v: list[float]) -> list[float]:
+        if any(d <= 0 for d in v):
+            raise ValueError("diameters must be positive")
+        return sorted(v)
+
+    @property
+    def n_rois(self) -> int:
+        return len(self.centres_xy_mm) * len(self.slice_offsets_mm)
+
+
+class BodyImageQuality(_Strict):
+    """Analysis options of a body image-quality phantom (NEMA NU 2 image quality section)."""
+
+    kind: Literal["body_image_quality"]
+    axis_insert: str
+    lung_insert: str | None = None
+    lung_roi_diameter_mm: float = Field(default=30.0, gt=0)
+    lung_slice_offsets_mm: list[float] | None = None
+    reference_background_diameter_mm: float = Field(default=37.0, gt=0)
+    peak_diameter_mm: float = Field(default=12.41, gt=0)
+    isocontour_fraction: float = Field(default=0.5, gt=0, lt=1)
+
+
+Analysis = Annotated[Union[BodyImageQuality], Field(discriminator="kind")]
+
+
+class Template(_Strict):
+    """A validated phantom template (see the module docstring for the frame)."""
+
+    phantometry_template: Literal[1]
+    name: str = Field(pattern=r"^[A-Za-z0-9][A-Za-z0-9_.-]*$")
+    title: str
+    description: str | None = None
+    sources: list[str] = Field(min_length=1)
+    notes: list[str] = []
+    body: Body
+    inserts: list[Insert]
+    background: BackgroundSet | None = None
+    analysis: Analysis
+    source_path: str | None = Field(default=None, exclude=True)
+
+    @model_validator(mode="after")
+    def _references(self) -> "Template":
+        names = [i.name for i in self.inserts]
+        dupes = sorted({n for n in names if names.count(n) > 1})
+        if dupes:
+            raise ValueError(f"insert names must be unique; repeated: {', '.join(dupes)}")
+        for ins in self.inserts:
+            if ins.inside is not None and ins.inside not in names:
+                raise ValueError(f"insert {ins.name}: inside names unknown insert {ins.inside!r}")
+        a = self.analysis
+        for key in ("axis_insert", "lung_insert"):
+            ref = getattr(a, key, None)
+            if ref is not None and ref not in names:
+                raise ValueError(f"analysis.{key} names unknown insert {ref!r}; inserts: {', '.join(names)}")
+        if a.kind == "body_image_quality":
+            if self.background is None:
+                raise ValueError("analysis kind body_image_quality needs a background ROI set")
+            if not self.spheres:
+                raise ValueError("analysis kind body_image_quality needs inserts with role: sphere")
+        return self
+
+    # -------------------------------------------------------------------------- queries
+    def insert(self, name: str) -> Insert:
+        for ins in self.inserts:
+            if ins.name == name:
+                return ins
+        raise TemplateError(
+            f"template {self.name}: no insert named {name!r}; inserts: {', '.join(i.name for i in self.inserts)}"
+        )
+
+    @property
+    def spheres(self) -> list[Insert]:
+        """Sphere inserts, smallest first."""
+        return sorted((i for i in self.inserts if i.role == "sphere"), key=lambda i: i.diameter_mm)
+
+    @property
+    def roi_names(self) -> list[str]:
+        names = [i.name for i in self.inserts]
+        if self.background is not None:
+            names.append("background")
+        return names
+
+    def body_inside(self, points_mm: np.ndarray) -> np.ndarray:
+        """True where template-frame points (..., 3) lie inside the body interior."""
+        p = np.asarray(points_mm, float)
+        z0, z1 = self.body.z_range_mm
+        return self.body.inside_xy(p[..., 0], p[..., 1]) & (p[..., 2] >= z0) & (p[..., 2] <= z1)
+
+    @property
+    def body_length_mm(self) -> float:
+        z0, z1 = self.body.z_range_mm
+        return z1 - z0
+
+    @property
+    def body_centre_mm(self) -> np.ndarray:
+        z0, z1 = self.body.z_range_mm
+        return np.array([*self.body.centre_xy_mm, (z0 + z1) / 2])
+
+    @property
+    def bounding_radius_mm(self) -> float:
+        """Radius of a sphere about the template origin that holds the whole body."""
+        z0, z1 = self.body.z_range_mm
+        return math.hypot(self.body.half_extent_xy_mm, max(abs(z0), abs(z1)))
+
+    @cached_property
+    def _outline(self) -> np.ndarray:
+        return self.body.outline_xy()
+
+    def distance_to_body_edge_xy(self, xy: np.ndarray) -> np.ndarray:
+        """Distance (mm) from in-plane points (..., 2) to the body outline (positive inside)."""
+        xy = np.asarray(xy, float)
+        d = np.min(np.linalg.norm(xy[..., None, :] - self._outline, axis=-1), axis=-1)
+        inside = self.body.inside_xy(xy[..., 0], xy[..., 1])
+        return np.where(inside, d, -d)
+
+    def summary(self) -> dict[str, Any]:
+        return self.model_dump(mode="json")
+
+
+# ----------------------------------------------------------------------------------- loading
+def _format_validation_error(path: str, err: ValidationError) -> str:
+    problems = []
+    for e in err.errors():
+        loc = ".".join(str(x) for x in e["loc"] if not (isinstance(x, str) and x in ("cylinder", "d_shape", "body_image_quality", "function-after[_shape_fields(), Insert]")))
+        msg = e["msg"].removeprefix("Value error, ")
+        if e["type"] == "extra_forbidden":
+            msg = "unknown key (check the spelling; see the README section on ROI templates)"
+        elif e["type"] == "literal_error" and "expected" in e.get("ctx", {}):
+            msg = f"must be one of {e['ctx']['expected']}"
+        problems.append(f"{loc or '(top level)'}: {msg}")
+    return f"{path}: invalid template: " + "; ".join(problems)
+
+
+def template_from_dict(data: Any, source: str = "<template>") -> Template:
+    """Validate a parsed YAML mapping as a :class:`Template`.
+
+    Raises
+    ------
+    TemplateError
+        Naming ``source``, each key at fault and what is allowed.
+    """
+    if not isinstance(data, dict):
+        raise TemplateError(f"{source}: a template must be a YAML mapping, got {type(data).__name__}")
+    try:
+        tpl = Template.model_validate({**data, "source_path": source})
+    except ValidationError as err:
+        raise TemplateError(_format_validation_error(source, err)) from None
+    return tpl
+
+
+def load_template_file(path: str | os.PathLike) -> Template:
+    """Load and validate one template YAML file."""
+    p = Path(path)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise TemplateError(f"{p}: cannot read template ({exc.strerror or exc})") from None
+    try:
+        data = yaml.safe_load(text)
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        where = f" at line {mark.line + 1}" if mark else ""
+        raise TemplateError(f"{p}: not valid YAML{where}: {getattr(exc, 'problem', exc)}") from None
+    return template_from_dict(data, source=str(p))
+
+
+def builtin_template_dir() -> Path:
+    """Folder of the templates shipped with phantometry (inside the installed package)."""
+    try:
+        return Path(str(resources.files("phantometry.roi_templates")))
+    except ModuleNotFoundError:  # editable install from a checkout: the folder beside src/
+        return Path(__file__).resolve().parents[2] / "roi_templates"
+
+
+def template_search_path(extra_dirs: list[str | os.PathLike] | None = None) -> list[Path]:
+    """Folders searched for templates by name: ``--templates`` dirs, ``$PHANTOMETRY_TEMPLATES``
+    (os.pathsep-separated), then the built-in folder and its ``examples/``."""
+    dirs = [Path(d) for d in (extra_dirs or [])]
+    env = os.environ.get(TEMPLATE_PATH_ENV)
+    if env:
+        dirs += [Path(d) for d in env.split(os.pathsep) if d]
+    builtin = builtin_template_dir()
+    return dirs + [builtin, builtin / "examples"]
+
+
+def list_templates(extra_dirs: list[str | os.PathLike] | None = None) -> dict[str, Path]:
+    """Template name -> file, earlier folders winning (so a user folder can shadow a built-in)."""
+    found: dict[str, Path] = {}
+    for d in template_search_path(extra_dirs):
+        if not d.is_dir():
+            continue
+        for f in sorted(d.glob("*.yaml")) + sorted(d.glob("*.yml")):
+            if f.name.startswith(("bands", "_")):
+                continue
+            found.setdefault(f.stem, f)
+    return found
+
+
+def load_template(name_or_path: str | os.PathLike, extra_dirs: list[str | os.PathLike] | None = None) -> Template:
+    """Load a template by name (searched as :func:`template_search_path` says) or by file path."""
+    p = Path(name_or_path)
+    if p.suffix in (".yaml", ".yml") or p.exists():
+        if not p.exists():
+            raise TemplateError(f"{p}: template file not found")
+        return load_template_file(p)
+    available = list_templates(extra_dirs)
+    if str(name_or_path) not in available:
+        raise TemplateError(
+            f"unknown template {str(name_or_path)!r}; available: {', '.join(sorted(available)) or 'none'}"
+            f" (add a folder with --templates DIR or ${TEMPLATE_PATH_ENV})"
+        )
+    return load_template_file(available[str(name_or_path)])
+
+
+# ------------------------------------------------------------------------------------ checks
+def check_template(tpl: Template) -> list[str]:
+    """Geometric checks beyond the schema. Returns problems (empty when the template is sound).
+
+    * every insert lies inside the body (including its wall);
+    * inserts do not overlap, unless one declares ``inside:`` the other;
+    * every background ROI, at every slice offset and size, keeps ``min_clearance_mm`` from the
+      body edge, from every sphere in the reference plane and from every cylinder insert
+      (the NEMA NU 2 rule: background ROIs at least 15 mm from the phantom edge and the spheres).
+    """
+    problems: list[str] = []
+    z0, z1 = tpl.body.z_range_mm
+    for idx, ins in enumerate(tpl.inserts):
+        key = f"inserts[{idx}] ({ins.name})"
+        pts = _insert_surface_points(ins)
+        outside = ~tpl.body_inside(pts)
+        if outside.any():
+            worst = pts[outside][0]
+            problems.append(f"{key}: extends outside the body near ({worst[0]:.1f}, {worst[1]:.1f}, {worst[2]:.1f}) mm")
+    for a_idx, a in enumerate(tpl.inserts):
+        for b in tpl.inserts[a_idx + 1 :]:
+            if a.inside == b.name or b.inside == a.name:
+                continue
+            if _inserts_overlap(a, b):
+                problems.append(f"inserts {a.name} and {b.name}: overlap (declare inside: if one holds the other)")
+    bg = tpl.background
+    if bg is not None:
+        r_max = max(bg.diameters_mm) / 2
+        centres = np.asarray(bg.centres_xy_mm, float)
+        edge = tpl.distance_to_body_edge_xy(centres) - r_max
+        for c_idx, (c, e) in enumerate(zip(centres, edge)):
+            if e < bg.min_clearance_mm - 1e-6:
+                problems.append(
+                    f"background.centres_xy_mm[{c_idx}] ({c[0]:g}, {c[1]:g}): {max(bg.diameters_mm):g} mm ROI edge is "
+                    f"{e:.1f} mm from the body edge, less than min_clearance_mm {bg.min_clearance_mm:g}"
+                )
+        for off in bg.slice_offsets_mm:
+            if not (z0 + bg.min_clearance_mm <= off <= z1 - bg.min_clearance_mm):
+                problems.append(f"background.slice_offsets_mm: {off:g} mm is within {bg.min_clearance_mm:g} mm of the body ends")
+        for ins in tpl.inserts:
+            if ins.role == "sphere":
+                d = np.linalg.norm(centres - np.asarray(ins.centre_mm[:2]), axis=1) - r_max - ins.outer_diameter_mm / 2
+            elif ins.shape == "cylinder" and abs(ins.axis_unit[2]) > 0.999:
+                d = np.linalg.norm(centres - np.asarray(ins.centre_mm[:2]), axis=1) - r_max - ins.outer_diameter_mm / 2
+            else:
+                continue
+            for c_idx, dist in enumerate(d):
+                if dist < bg.min_clearance_mm - 1e-6:
+                    problems.append(
+                        f"background.centres_xy_mm[{c_idx}]: {max(bg.diameters_mm):g} mm ROI edge is {dist:.1f} mm from "
+                        f"{ins.name}, less than min_clearance_mm {bg.min_clearance_mm:g}"
+                    )
+    a = tpl.analysis
+    if a.kind == "body_image_quality":
+        if a.reference_background_diameter_mm not in (bg.diameters_mm if bg else []):
+            problems.append(
+                f"analysis.reference_background_diameter_mm: {a.reference_background_diameter_mm:g} is not one of "
+                f"background.diameters_mm"
+            )
+        for s in tpl.spheres:
+            if bg is not None and s.diameter_mm not in bg.diameters_mm:
+                problems.append(f"background.diameters_mm: no {s.diameter_mm:g} mm size for {s.name} (NEMA NU 2 needs one per sphere)")
+    return problems
+
+
+def _insert_surface_points(ins: Insert, n: int = 24) -> np.ndarray:
+    c = np.asarray(ins.centre_mm, float)
+    r = ins.outer_diameter_mm / 2
+    if ins.shape == "sphere":
+        phi = np.linspace(0, 2 * np.pi, n, endpoint=False)
+        th = np.linspace(0, np.pi, n // 2)
+        P, T = np.meshgrid(phi, th)
+        dirs = np.stack([np.sin(T) * np.cos(P), np.sin(T) * np.sin(P), np.cos(T)], axis=-1).reshape(-1, 3)
+        return c + r * dirs
+    ax = ins.axis_unit
+    u = np.cross(ax, [1.0, 0, 0] if abs(ax[0]) < 0.9 else [0, 1.0, 0])
+    u /= np.linalg.norm(u)
+    v = np.cross(ax, u)
+    phi = np.linspace(0, 2 * np.pi, n, endpoint=False)
+    ring = r * (np.cos(phi)[:, None] * u + np.sin(phi)[:, None] * v)
+    half = float(ins.length_mm) / 2 + ins.wall_mm
+    ts = np.linspace(-half, half, 9)
+    return (c + ring[None, :, :] + ts[:, None, None] * ax).reshape(-1, 3)
+
+
+def _inserts_overlap(a: Insert, b: Insert) -> bool:
+    ca, cb = np.asarray(a.centre_mm, float), np.asarray(b.centre_mm, float)
+    ra, rb = a.outer_diameter_mm / 2, b.outer_diameter_mm / 2
+    if a.shape == "sphere" and b.shape == "sphere":
+        return float(np.linalg.norm(ca - cb)) < ra + rb
+    if a.shape == "cylinder" and b.shape == "sphere":
+        a, b, ca, cb, ra, rb = b, a, cb, ca, rb, ra
+    if b.shape == "cylinder":
+        ax = b.axis_unit
+        half = float(b.length_mm) / 2 + b.wall_mm
+        if a.shape == "sphere":
+            t = float(np.dot(ca - cb, ax))
+            radial = float(np.linalg.norm((ca - cb) - t * ax))
+            return radial < ra + rb and abs(t) < half + ra
+        # cylinder-cylinder: test sampled points of a against b
+        pts = _insert_surface_points(a, 36)
+        rel = pts - cb
+        t = rel @ ax
+        radial = np.linalg.norm(rel - t[:, None] * ax, axis=1)
+        return bool(np.any((radial < rb - 1e-6) & (np.abs(t) < half - 1e-6)))
+    return False
