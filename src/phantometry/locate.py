@@ -1,0 +1,529 @@
+"""Automatic localisation of a body phantom: where the template sits in the image.
+
+Method (phantometry's own; each step is whole-array work on small resampled grids)
+---------------------------------------------------------------------------------
+1. **Body and background level.** On a coarse copy of the image (block means, about 4-6 mm),
+   an Otsu threshold (scikit-image) separates air from phantom; the background level is the
+   median of the phantom voxels; the body is the largest connected component above half of
+   it, with holes filled slice by slice.
+2. **Axis.** The axis insert (a cold cylinder on the phantom axis, such as the low-density
+   insert) is the longest run of in-body holes; a principal-component line fit through its
+   voxels gives the axis point and direction (any tilt).
+3. **Sphere plane.** The image is resampled on a grid in the axis frame (trilinear). The mean
+   absolute deviation from background in an annulus around the template's sphere ring radius
+   peaks at the sphere plane (hot and cold spheres both count).
+4. **Rotation and handedness.** In that plane, the angular profile along the ring is matched
+   (circular cross-correlation by FFT) against the profile the template predicts from the
+   sphere sizes and the fill record (hot, cold), for both handednesses: the phantom lying
+   either way along the bed mirrors the ring order.
+5. **Refinement.** Each sphere centre is refined to sub-voxel precision by an iterated,
+   background-subtracted signed centroid in a window of the sphere's size; a weighted
+   least-squares rigid fit (Kabsch algorithm: Kabsch, Acta Cryst A 1976;32:922) of the
+   template sphere centres to the refined centres gives the final placement. Sphere ROIs sit
+   at the rigid-fit positions; each sphere's distance from its own refined centre is its
+   fit residual (fit quality).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from scipy import ndimage
+from skimage.filters import threshold_otsu
+
+from .errors import PhantomNotFound, TemplateError
+from .templates import Insert, Template
+from .volume import Volume
+
+
+@dataclass
+class InsertFit:
+    """Fit quality of one insert."""
+
+    name: str
+    centre_mm: np.ndarray
+    refined_mm: np.ndarray | None
+    residual_mm: float | None
+    signal_to_noise: float | None
+    source: str  # "fit", "override", "template"
+
+    def as_dict(self) -> dict[str, Any]:
+        return {
+            "name": self.name,
+            "centre_mm": [round(float(v), 3) for v in self.centre_mm],
+            "refined_mm": None if self.refined_mm is None else [round(float(v), 3) for v in self.refined_mm],
+            "residual_mm": None if self.residual_mm is None else round(self.residual_mm, 3),
+            "signal_to_noise": None if self.signal_to_noise is None else round(self.signal_to_noise, 2),
+            "source": self.source,
+        }
+
+
+@dataclass
+class Placement:
+    """Rigid placement of a template in a volume's world frame: ``world = R @ p + t``."""
+
+    template: Template
+    rotation: np.ndarray
+    translation_mm: np.ndarray
+    background_estimate_bq_ml: float
+    noise_sd_bq_ml: float
+    fits: dict[str, InsertFit] = field(default_factory=dict)
+    ring_score: float | None = None
+    warnings: list[str] = field(default_factory=list)
+
+    def to_world(self, points_template_mm: np.ndarray) -> np.ndarray:
+        p = np.asarray(points_template_mm, float)
+        return p @ self.rotation.T + self.translation_mm
+
+    def to_template(self, points_world_mm: np.ndarray) -> np.ndarray:
+        p = np.asarray(points_world_mm, float)
+        return (p - self.translation_mm) @ self.rotation
+
+    def direction_to_world(self, v: np.ndarray) -> np.ndarray:
+        return self.rotation @ np.asarray(v, float)
+
+    @property
+    def axis_world(self) -> np.ndarray:
+        """Unit vector of the template +z axis in the world."""
+        return self.rotation[:, 2].copy()
+
+    def insert_centre(self, name: str) -> np.ndarray:
+        """World mm of an insert centre: the override or rigid fit where there is one."""
+        if name in self.fits:
+            return self.fits[name].centre_mm.copy()
+        return self.to_world(self.template.insert(name).centre_mm)
+
+    def as_dict(self) -> dict[str, Any]:
+        tilt = math.degrees(math.acos(min(1.0, abs(float(self.axis_world[2])))))
+        return {
+            "rotation": [[round(float(v), 6) for v in row] for row in self.rotation],
+            "translation_mm": [round(float(v), 3) for v in self.translation_mm],
+            "axis_world": [round(float(v), 5) for v in self.axis_world],
+            "axis_tilt_deg": round(tilt, 3),
+            "background_estimate_bq_ml": round(self.background_estimate_bq_ml, 3),
+            "noise_sd_bq_ml": round(self.noise_sd_bq_ml, 3),
+            "ring_score": None if self.ring_score is None else round(self.ring_score, 4),
+            "inserts": {k: v.as_dict() for k, v in self.fits.items()},
+            "warnings": list(self.warnings),
+        }
+
+
+# =============================================================================== helpers
+def _coarse(volume: Volume, target_mm: float = 5.0) -> tuple[np.ndarray, np.ndarray]:
+    """Block-mean downsampled data and the factor per axis (array order)."""
+    factors = np.maximum(1, np.floor(target_mm / volume.spacing_mm + 1e-6)).astype(int)
+    data = volume.data
+    shape = np.array(data.shape) // factors
+    if np.any(shape < 4):
+        factors = np.ones(3, int)
+        shape = np.array(data.shape)
+    d = data[: shape[0] * factors[0], : shape[1] * factors[1], : shape[2] * factors[2]]
+    d = d.reshape(shape[0], factors[0], shape[1], factors[1], shape[2], factors[2]).mean(axis=(1, 3, 5))
+    return d, factors
+
+
+def _coarse_to_world(volume: Volume, idx_kji: np.ndarray, factors: np.ndarray) -> np.ndarray:
+    """World mm of coarse-grid indices (block centres)."""
+    fine = np.asarray(idx_kji, float) * factors + (factors - 1) / 2.0
+    return volume.index_to_world(fine)
+
+
+def _orthonormal_basis(d: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    d = d / np.linalg.norm(d)
+    helper = np.array([1.0, 0.0, 0.0]) if abs(d[0]) < 0.9 else np.array([0.0, 1.0, 0.0])
+    u = np.cross(d, helper)
+    u /= np.linalg.norm(u)
+    v = np.cross(d, u)
+    return u, v
+
+
+def sample_world(volume: Volume, points_mm: np.ndarray, order: int = 1, cval: float = np.nan) -> np.ndarray:
+    """Trilinear samples of the volume at world points (..., 3); ``cval`` outside the grid."""
+    idx = volume.world_to_index(points_mm)
+    flat = idx.reshape(-1, 3).T
+    vals = ndimage.map_coordinates(volume.data, flat, order=order, mode="constant", cval=cval, prefilter=False)
+    return vals.reshape(idx.shape[:-1])
+
+
+def kabsch(template_pts: np.ndarray, world_pts: np.ndarray, weights: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Weighted least-squares rigid transform (proper rotation) with ``world ~ R @ p + t``.
+
+    Kabsch, Acta Cryst A 1976;32:922-923 (SVD solution with the reflection correction).
+    """
+    p = np.asarray(template_pts, float)
+    q = np.asarray(world_pts, float)
+    w = np.ones(len(p)) if weights is None else np.asarray(weights, float)
+    w = w / w.sum()
+    pc = (w[:, None] * p).sum(axis=0)
+    qc = (w[:, None] * q).sum(axis=0)
+    h = ((p - pc) * w[:, None]).T @ (q - qc)
+    u, _, vt = np.linalg.svd(h)
+    dfix = np.sign(np.linalg.det(vt.T @ u.T)) or 1.0
+    rot = vt.T @ np.diag([1.0, 1.0, dfix]) @ u.T
+    return rot, qc - rot @ pc
+
+
+# =============================================================================== main steps
+@dataclass
+class _Body:
+    mask: np.ndarray  # coarse
+    factors: np.ndarray
+    background: float
+    noise_sd: float
+    extent_mm: np.ndarray  # sorted extents of the body (PCA), mm
+
+
+def find_body(volume: Volume, where: str) -> _Body:
+    """Body mask, background level and noise on a coarse grid (step 1)."""
+    coarse, factors = _coarse(volume)
+    finite = np.isfinite(coarse)
+    vals = coarse[finite]
+    if vals.size == 0 or float(np.max(vals)) <= 0:
+        raise PhantomNotFound(f"{where}: the image is empty (no positive voxels); is this the right series?")
+    try:
+        otsu = float(threshold_otsu(vals[vals > 0]))
+    except ValueError:
+        raise PhantomNotFound(f"{where}: the image has no contrast between air and phantom") from None
+    above = coarse > otsu
+    bg = float(np.median(coarse[above]))
+    if bg <= 0:
+        raise PhantomNotFound(f"{where}: no phantom body found")
+    raw = coarse > 0.5 * bg
+    lab, n = ndimage.label(raw)
+    if n == 0:
+        raise PhantomNotFound(f"{where}: no phantom body found above half the background level")
+    sizes = ndimage.sum_labels(raw, lab, index=np.arange(1, n + 1))
+    body = lab == (1 + int(np.argmax(sizes)))
+    filled = ndimage.binary_fill_holes(body, structure=np.array([[[0, 0, 0]] * 3, [[0, 1, 0], [1, 1, 1], [0, 1, 0]], [[0, 0, 0]] * 3]))
+    core = ndimage.binary_erosion(body, iterations=2) if body.sum() > 1000 else body
+    fine_core_vals = coarse[core & (coarse < 1.5 * bg)]
+    mad = float(np.median(np.abs(fine_core_vals - np.median(fine_core_vals)))) if fine_core_vals.size else 0.0
+    # the coarse grid averages prod(factors) voxels; scale the SD back to one voxel (upper bound)
+    noise_sd = 1.4826 * mad * math.sqrt(float(np.prod(factors)))
+    pts = _coarse_to_world(volume, np.argwhere(filled), factors)
+    centred = pts - pts.mean(axis=0)
+    evals, evecs = np.linalg.eigh(np.cov(centred.T))
+    proj = centred @ evecs
+    extent = np.sort(proj.max(axis=0) - proj.min(axis=0) + np.mean(np.abs(volume.spacing_mm * factors)))
+    return _Body(filled, factors, bg, noise_sd, extent)
+
+
+def _template_extent(template: Template) -> np.ndarray:
+    body = template.body
+    if body.shape == "cylinder":
+        xy = (body.diameter_mm, body.diameter_mm)
+    else:
+        xy = (2 * body.arc_radius_mm, body.arc_radius_mm + body.corner_radius_mm)
+    return np.sort([*xy, template.body_length_mm])
+
+
+def find_axis(volume: Volume, body: _Body, axis_insert: Insert, where: str) -> tuple[np.ndarray, np.ndarray]:
+    """Point on and direction of the axis insert (step 2), world mm."""
+    raw = np.zeros_like(body.mask)
+    coarse, _ = _coarse(volume)
+    raw = body.mask & (coarse <= 0.5 * body.background)
+    # remove holes open to the outside of the body in-plane (concavities): they are not holes
+    lab, n = ndimage.label(raw)
+    if n == 0:
+        raise PhantomNotFound(
+            f"{where}: no cold axis insert ({axis_insert.name}) found inside the body; is the template right for this phantom?"
+        )
+    idx = np.arange(1, n + 1)
+    # the axis insert: the component with the longest extent along the slice axis
+    slices = ndimage.find_objects(lab)
+    lengths = np.array([s[0].stop - s[0].start for s in slices])
+    sizes = ndimage.sum_labels(np.ones_like(raw), lab, idx)
+    best = int(np.argmax(lengths * 1e6 + sizes))
+    comp = np.argwhere(lab == best + 1)
+    if len(comp) < 5:
+        raise PhantomNotFound(f"{where}: the axis insert ({axis_insert.name}) is too small to find the phantom axis")
+    pts = _coarse_to_world(volume, comp, body.factors)
+    centre = pts.mean(axis=0)
+    _, _, vt = np.linalg.svd(pts - centre, full_matrices=False)
+    d = vt[0]
+    # expected length check (a cold sphere is not an axis insert)
+    span = np.ptp((pts - centre) @ d)
+    if span < 0.4 * float(axis_insert.length_mm or 0):
+        raise PhantomNotFound(
+            f"{where}: the longest cold structure is {span:.0f} mm long, the template's {axis_insert.name} is "
+            f"{axis_insert.length_mm:g} mm; is the template right for this phantom?"
+        )
+    if d[2] < 0:
+        d = -d
+    return centre, d / np.linalg.norm(d)
+
+
+def _sphere_plane_offset(volume: Volume, template: Template, body: "_Body", a0: np.ndarray, d: np.ndarray, body_bg: float, ring_r: float, where: str) -> tuple[float, np.ndarray, np.ndarray]:
+    """Position (mm along d from a0) of the sphere plane (step 3).
+
+    Only planes at least the largest sphere radius plus 10 mm inside both body ends are
+    considered: near an end the blurred edge would mimic a sphere ring.
+    """
+    u, v = _orthonormal_basis(d)
+    step = max(1.0, float(np.min(np.abs(volume.spacing_mm))))
+    band = max(s_.diameter_mm for s_ in template.spheres) / 2
+    along = (_coarse_to_world(volume, np.argwhere(body.mask), body.factors) - a0) @ d
+    lo, hi = float(along.min()) + band + 10.0, float(along.max()) - band - 10.0
+    if hi <= lo:
+        raise PhantomNotFound(f"{where}: the body is too short along its axis to hold the sphere ring")
+    s = np.arange(lo, hi + step / 2, step)
+    radii = np.linspace(max(ring_r - band, 1.0), ring_r + band, 7)
+    theta = np.deg2rad(np.arange(0, 360, 3.0))
+    rr, tt = np.meshgrid(radii, theta, indexing="ij")
+    ring = (rr * np.cos(tt))[..., None] * u + (rr * np.sin(tt))[..., None] * v  # (nr, nt, 3)
+    pts = a0 + s[:, None, None, None] * d + ring[None]
+    vals = sample_world(volume, pts)
+    inside = np.isfinite(vals) & (vals > 0.25 * body_bg)
+    frac_inside = inside.mean(axis=(1, 2))
+    dev = np.where(inside, np.abs(np.nan_to_num(vals) - body_bg), 0.0).sum(axis=(1, 2)) / np.maximum(inside.sum(axis=(1, 2)), 1)
+    ok = frac_inside > 0.97
+    if not ok.any():
+        raise PhantomNotFound(f"{where}: no plane along the axis has the sphere ring inside the body")
+    score = np.where(ok, dev, -np.inf)
+    score = ndimage.uniform_filter1d(np.where(ok, dev, 0.0), 3) * ok + np.where(ok, 0, -np.inf)
+    i = int(np.argmax(score))
+    off = float(s[i])
+    if 0 < i < len(s) - 1 and np.all(np.isfinite(score[i - 1 : i + 2])):
+        y0, y1, y2 = score[i - 1 : i + 2]
+        den = y0 - 2 * y1 + y2
+        if den < 0:
+            off += step * 0.5 * (y0 - y2) / den
+    return off, u, v
+
+
+def _ring_profile_model(template: Template, amplitudes: dict[str, float], n_bins: int, ring_r: float) -> np.ndarray:
+    theta = (np.arange(n_bins) + 0.5) * 2 * np.pi / n_bins
+    model = np.zeros(n_bins)
+    for s in template.spheres:
+        cx, cy = s.centre_mm[0], s.centre_mm[1]
+        phi = math.atan2(cy, cx)
+        rho = math.hypot(cx, cy)
+        half = math.asin(min(1.0, (s.diameter_mm / 2) / max(rho, 1e-6)))
+        dth = np.angle(np.exp(1j * (theta - phi)))
+        chord = np.clip(1 - (dth / half) ** 2, 0, None) ** 0.5
+        model += amplitudes[s.name] * chord
+    return model
+
+
+def _match_rotation(profile: np.ndarray, model: np.ndarray) -> tuple[float, int, float]:
+    """Best circular shift and handedness: returns (theta0_rad, hand, normalised score)."""
+    n = len(profile)
+    f = profile - profile.mean()
+    best = (-np.inf, 0.0, 1)
+    for hand in (1, -1):
+        m = model if hand == 1 else np.roll(model[::-1], 1)
+        m = m - m.mean()
+        # corr[k] = sum_j f[j] m[j - k]  -> shift k means theta = theta0 + hand*phi with theta0 = k bins
+        corr = np.real(np.fft.ifft(np.fft.fft(f) * np.conj(np.fft.fft(m))))
+        k = int(np.argmax(corr))
+        norm = np.linalg.norm(f) * np.linalg.norm(m)
+        score = float(corr[k] / norm) if norm > 0 else 0.0
+        # sub-bin refinement
+        y0, y1, y2 = corr[(k - 1) % n], corr[k], corr[(k + 1) % n]
+        den = y0 - 2 * y1 + y2
+        frac = 0.5 * (y0 - y2) / den if den < 0 else 0.0
+        if score > best[0]:
+            best = (score, (k + frac) * 2 * np.pi / n, hand)
+    return best[1], best[2], best[0]
+
+
+def _pose_from_axis(a_plane: np.ndarray, d: np.ndarray, u: np.ndarray, v: np.ndarray, theta0: float, hand: int, template: Template) -> tuple[np.ndarray, np.ndarray]:
+    ex = math.cos(theta0) * u + math.sin(theta0) * v
+    if hand == 1:
+        ey = -math.sin(theta0) * u + math.cos(theta0) * v
+        ez = d
+    else:
+        ey = math.sin(theta0) * u - math.cos(theta0) * v
+        ez = -d
+    rot = np.column_stack([ex, ey, ez])
+    ax = template.insert(template.analysis.axis_insert)
+    plane_z = float(np.mean([s.centre_mm[2] for s in template.spheres]))
+    origin_on_axis = np.array([ax.centre_mm[0], ax.centre_mm[1], plane_z])
+    t = a_plane - rot @ origin_on_axis
+    return rot, t
+
+
+def refine_centre(volume: Volume, start_mm: np.ndarray, radius_mm: float, sign: float, background: float, iterations: int = 6, margin_mm: float | None = None) -> tuple[np.ndarray, float]:
+    """Iterated background-subtracted signed centroid in a sphere window (step 5).
+
+    Parameters
+    ----------
+    radius_mm : float
+        Window radius: the sphere radius plus a margin for the blur.
+    sign : +1 for a hot insert, -1 for a cold one.
+
+    Returns
+    -------
+    centre_mm, signal_sum : the refined centre and the windowed signed signal (Bq/mL x voxels).
+    """
+    c = np.asarray(start_mm, float)
+    spacing = volume.spacing_mm
+    half = np.ceil((radius_mm + 2 * np.max(spacing)) / spacing).astype(int) + 1
+    total = 0.0
+    for _ in range(iterations):
+        ci = np.round(volume.world_to_index(c)).astype(int)
+        lo = np.maximum(ci - half, 0)
+        hi = np.minimum(ci + half + 1, volume.shape)
+        if np.any(hi <= lo):
+            raise PhantomNotFound(f"insert near {np.round(c, 1).tolist()} mm lies outside the image")
+        box = tuple(slice(a, b) for a, b in zip(lo, hi))
+        pts = volume.world_grid(box)
+        r = np.linalg.norm(pts - c, axis=-1)
+        # smooth window edge (1 voxel) to avoid jumps as the window moves
+        w_win = np.clip((radius_mm - r) / float(np.mean(spacing)) + 0.5, 0, 1)
+        sig = sign * (volume.data[box] - background) * w_win
+        total = float(sig.sum())
+        if total <= 0:
+            break
+        new_c = (sig[..., None] * pts).reshape(-1, 3).sum(axis=0) / total
+        step = np.linalg.norm(new_c - c)
+        c = new_c
+        if step < 0.01:
+            break
+    return c, total
+
+
+# =============================================================================== public
+def locate(
+    volume: Volume,
+    template: Template,
+    *,
+    hot: dict[str, bool] | None = None,
+    activity_ratio: dict[str, float] | None = None,
+    overrides: dict[str, np.ndarray] | None = None,
+    where: str | None = None,
+) -> Placement:
+    """Find a body phantom described by ``template`` in ``volume``.
+
+    Parameters
+    ----------
+    hot : dict name -> bool
+        Which spheres are hot (True) or cold (False), from the fill record; all hot if omitted.
+    activity_ratio : dict name -> float
+        Expected insert : background concentration ratio (for the ring profile model).
+    overrides : dict name -> (3,) world mm
+        Manual centres (``--centre NAME=x,y,z``). With three or more spheres given, the
+        placement is the rigid fit to them and no search is made.
+    where : str
+        How to name the image in messages (file or folder).
+
+    Raises
+    ------
+    PhantomNotFound
+        When the phantom cannot be found or the fit is poor; the message says why.
+    """
+    where = where or (volume.source or "image")
+    if template.analysis.kind != "body_image_quality":
+        raise TemplateError(f"template {template.name}: locate() handles body phantoms; got analysis kind {template.analysis.kind}")
+    overrides = {k: np.asarray(v, float) for k, v in (overrides or {}).items()}
+    for name in overrides:
+        template.insert(name)  # raises for unknown names
+    spheres = template.spheres
+    hot = {s.name: True for s in spheres} | (hot or {})
+    ratio = {s.name: 4.0 for s in spheres} | (activity_ratio or {})
+    body = find_body(volume, where)
+    expected = _template_extent(template)
+    rel = body.extent_mm / expected
+    if np.any(rel < 0.6) or np.any(rel > 1.6):
+        raise PhantomNotFound(
+            f"{where}: the object found measures {' x '.join(f'{e:.0f}' for e in body.extent_mm)} mm but template "
+            f"{template.name} describes {' x '.join(f'{e:.0f}' for e in expected)} mm; use the template for this "
+            "phantom (phantometry templates list), or check that the whole phantom is in the field of view"
+        )
+    bg = body.background
+    sphere_overrides = [s for s in spheres if s.name in overrides]
+    ring_score = None
+    if len(sphere_overrides) >= 3:
+        rot, t = kabsch(
+            np.array([s.centre_mm for s in sphere_overrides]), np.array([overrides[s.name] for s in sphere_overrides])
+        )
+    else:
+        axis_ins = template.insert(template.analysis.axis_insert)
+        a0, d = find_axis(volume, body, axis_ins, where)
+        ring_r = float(np.median([math.hypot(s.centre_mm[0] - axis_ins.centre_mm[0], s.centre_mm[1] - axis_ins.centre_mm[1]) for s in spheres]))
+        off, u, v = _sphere_plane_offset(volume, template, body, a0, d, bg, ring_r, where)
+        a_plane = a0 + off * d
+        n_bins = 360
+        theta = (np.arange(n_bins) + 0.5) * 2 * np.pi / n_bins
+        radii = np.linspace(ring_r - 3, ring_r + 3, 5)
+        zs = np.linspace(-2, 2, 3)
+        pts = (
+            a_plane
+            + zs[:, None, None, None] * d
+            + (radii[None, :, None, None] * np.cos(theta)[None, None, :, None]) * u
+            + (radii[None, :, None, None] * np.sin(theta)[None, None, :, None]) * v
+        )
+        profile = np.nanmean(sample_world(volume, pts), axis=(0, 1)) - bg
+        amps = {s.name: (bg * (ratio[s.name] - 1.0) if hot[s.name] else -bg) for s in spheres}
+        model = _ring_profile_model(template, amps, n_bins, ring_r)
+        theta0, hand, ring_score = _match_rotation(np.nan_to_num(profile), model)
+        if ring_score < 0.3:
+            raise PhantomNotFound(
+                f"{where}: the sphere ring does not match template {template.name} (match score {ring_score:.2f} < 0.30); "
+                "check the fill record (hot/cold spheres) and the template, or give --centre NAME=x,y,z for three spheres"
+            )
+        rot, t = _pose_from_axis(a_plane, d, u, v, theta0, hand, template)
+    fits: dict[str, InsertFit] = {}
+    noise = max(body.noise_sd, 1e-6 * bg)
+    for _round in range(2):
+        refined: dict[str, tuple[np.ndarray, float]] = {}
+        pairs: list[tuple[np.ndarray, np.ndarray, float]] = []  # (template, world, weight)
+        for s in spheres:
+            if s.name in overrides:
+                continue
+            pred = rot @ np.asarray(s.centre_mm, float) + t
+            win = s.diameter_mm / 2 + 0.5 * max(4.0, float(np.max(volume.spacing_mm)))
+            try:
+                c, signal = refine_centre(volume, pred, win, 1.0 if hot[s.name] else -1.0, bg)
+            except PhantomNotFound:
+                raise PhantomNotFound(
+                    f"{where}: {s.name} would lie outside the image; is the whole phantom in the field of view?"
+                ) from None
+            n_vox = 4 / 3 * math.pi * win**3 / (volume.voxel_volume_ml * 1000.0)
+            snr = signal / (noise * math.sqrt(max(n_vox, 1.0)))
+            refined[s.name] = (c, snr)
+            if snr > 3 and np.linalg.norm(c - pred) < s.diameter_mm / 2 + 6:
+                pairs.append((np.asarray(s.centre_mm, float), c, s.diameter_mm**2 * min(snr, 50.0)))
+        top_weight = max([w for *_, w in pairs] or [1.0])
+        pairs += [(np.asarray(s.centre_mm, float), overrides[s.name], 10 * top_weight) for s in sphere_overrides]
+        if len(pairs) < 3:
+            raise PhantomNotFound(
+                f"{where}: fewer than three spheres stand out from the background; check the fill record (hot/cold) "
+                "and the template, or give --centre NAME=x,y,z for three spheres"
+            )
+        rot, t = kabsch(np.array([p for p, _, _ in pairs]), np.array([q for _, q, _ in pairs]), np.array([w for *_, w in pairs]))
+    warnings: list[str] = []
+    resid_big = []
+    for s in spheres:
+        pred = rot @ np.asarray(s.centre_mm, float) + t
+        if s.name in overrides:
+            fits[s.name] = InsertFit(s.name, overrides[s.name], None, float(np.linalg.norm(overrides[s.name] - pred)), None, "override")
+            continue
+        c, snr = refined[s.name]
+        res = float(np.linalg.norm(c - pred))
+        fits[s.name] = InsertFit(s.name, pred, c, res, snr, "fit")
+        if snr > 10 and s.diameter_mm >= 20:
+            resid_big.append(res)
+        if snr > 5 and res > max(2.0, 0.75 * float(np.max(volume.spacing_mm))):
+            warnings.append(f"{s.name}: refined centre is {res:.1f} mm from the rigid fit (sphere off its nominal place?)")
+    tol = max(3.0, 1.5 * float(np.max(volume.spacing_mm)))
+    if resid_big and max(resid_big) > tol:
+        raise PhantomNotFound(
+            f"{where}: poor fit of template {template.name}: large spheres are up to {max(resid_big):.1f} mm from the "
+            f"rigid placement (tolerance {tol:.1f} mm); give --centre NAME=x,y,z for three spheres"
+        )
+    for ins in template.inserts:
+        if ins.role != "sphere":
+            c = overrides.get(ins.name)
+            fits[ins.name] = InsertFit(
+                ins.name,
+                c if c is not None else rot @ np.asarray(ins.centre_mm, float) + t,
+                None,
+                None,
+                None,
+                "override" if c is not None else "template",
+            )
+    return Placement(template, rot, t, bg, body.noise_sd, fits, ring_score, warnings)
