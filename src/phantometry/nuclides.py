@@ -10,7 +10,7 @@ from __future__ import annotations
 import math
 import re
 from dataclasses import dataclass
-from datetime import datetime
+from datetime import datetime, timezone
 
 from .errors import InputError
 
@@ -117,7 +117,9 @@ def decay_factor(nuclide: Nuclide | str, from_time: datetime, to_time: datetime)
     for t in (from_time, to_time):
         if t.tzinfo is None or t.utcoffset() is None:
             raise InputError(f"time {t.isoformat()} has no time zone; give an offset such as +01:00")
-    dt_s = (to_time - from_time).total_seconds()
+    # timestamps, not datetime subtraction: with one shared tzinfo (a ZoneInfo zone) Python
+    # subtracts wall-clock times and ignores a daylight-saving change in between
+    dt_s = (to_time.astimezone(timezone.utc) - from_time.astimezone(timezone.utc)).total_seconds()
     return math.exp(-nuc.decay_constant_per_s * dt_s)
 
 

@@ -1,0 +1,420 @@
+"""The fill record: how a phantom was filled, and the true concentrations it implies.
+
+A physicist writes the fill record (a small YAML file) when preparing a phantom::
+
+    nuclide: F-18
+    background:
+      concentration_kbq_ml: 5.30
+      measured_at: 2026-11-03T09:40:00+01:00
+    spheres:                       # or rods: (small-animal phantoms)
+      ratio_to_background: 4.0
+    cold: [sphere_28mm, sphere_37mm]   # inserts filled with non-radioactive water
+    inserts:                       # optional per-insert overrides of the spheres entry
+      sphere_10mm: {concentration_kbq_ml: 21.0, measured_at: 2026-11-03T09:45:00+01:00}
+    site: Demo Hospital            # optional free text: site, phantom, operator_note
+    phantom: iec-body
+    operator_note: filled with the 9.7 L water bath
+
+Forms of an activity entry (exactly one per entry):
+
+* **concentration**: ``concentration_kbq_ml`` (kBq/mL) measured at ``measured_at``.
+* **ratio** (``spheres``/``rods``/``inserts`` only): ``ratio_to_background``, the insert to
+  background concentration ratio (a_H/a_B of NEMA NU 2), the same at every time for one
+  nuclide.
+* **syringe** (``background``, ``spheres``/``rods``): the activity put into a known volume,
+  from dose-calibrator readings: ``syringe_mbq`` measured at ``syringe_measured_at``, the
+  ``residual_mbq`` left in the syringe measured at ``residual_measured_at``, and the
+  ``volume_ml`` of water it was diluted in (the phantom background, or the sphere stock
+  solution). The rule is::
+
+      C(residual_measured_at) = (A_syringe * exp(-lambda * (t_residual - t_syringe)) - A_residual) / V
+
+  i.e. the syringe reading is decayed to the residual reading's time, the residual is
+  subtracted, and the net activity is spread over ``volume_ml``; the concentration refers to
+  ``residual_measured_at`` (decay law with lambda = ln 2 / T_half, half-lives from
+  :mod:`phantometry.nuclides`). The volume of the activity itself is neglected. A residual of
+  0 MBq is allowed (a rinsed syringe); the residual must be measured at or after the syringe,
+  and the net activity must be positive.
+
+Times must carry a time-zone offset (``2026-11-03T09:40:00+01:00``). Activities and volumes
+must be positive. Unknown keys are refused by name, so a misspelt key never goes unnoticed, and
+no personal data can be stored. The YAML holds kBq/mL and MBq; the API returns Bq/mL.
+"""
+
+from __future__ import annotations
+
+import os
+import types
+import typing
+from datetime import date, datetime
+from pathlib import Path
+from typing import Annotated, Any, ClassVar
+
+import yaml
+from pydantic import (
+    BaseModel,
+    BeforeValidator,
+    ConfigDict,
+    Field,
+    InstanceOf,
+    PlainSerializer,
+    PrivateAttr,
+    ValidationError,
+    model_validator,
+)
+
+from .errors import FillRecordError, InputError
+from .nuclides import Nuclide, decay_factor, get_nuclide
+
+__all__ = [
+    "BackgroundFill",
+    "FillRecord",
+    "InsertFill",
+    "SpheresFill",
+    "load_fill_record",
+    "write_fill_record",
+]
+
+_KBQ = 1.0e3  # Bq per kBq
+_MBQ = 1.0e6  # Bq per MBq
+
+
+# ---------------------------------------------------------------------------- field types
+def _number(value: Any) -> Any:
+    """Refuse booleans (YAML ``yes``/``true``), which pydantic would read as 1.0."""
+    if isinstance(value, bool):
+        raise ValueError(f"expected a number, got {value!r}")
+    return value
+
+
+def _aware_time(value: Any) -> datetime:
+    """An ISO 8601 date-time with a time-zone offset (a string or a YAML timestamp)."""
+    if isinstance(value, str):
+        try:
+            value = datetime.fromisoformat(value.strip())
+        except ValueError:
+            raise ValueError(f"{value!r} is not an ISO 8601 date-time such as 2026-11-03T09:40:00+01:00") from None
+    if not isinstance(value, datetime):
+        if isinstance(value, date):
+            raise ValueError(f"{value} is a date without a time; write e.g. {value}T09:40:00+01:00")
+        raise ValueError(f"expected a date-time such as 2026-11-03T09:40:00+01:00, got {value!r}")
+    if value.tzinfo is None or value.utcoffset() is None:
+        raise ValueError(f"time {value.isoformat()} has no time-zone offset; write it as {value.isoformat()}+01:00 (your offset)")
+    return value
+
+
+def _nuclide(value: Any) -> Nuclide:
+    if isinstance(value, Nuclide):
+        return value
+    try:
+        return get_nuclide(str(value))
+    except InputError as exc:
+        raise ValueError(str(exc)) from None
+
+
+PositiveFloat = Annotated[float, BeforeValidator(_number), Field(gt=0, allow_inf_nan=False)]
+NonNegativeFloat = Annotated[float, BeforeValidator(_number), Field(ge=0, allow_inf_nan=False)]
+AwareTime = Annotated[datetime, BeforeValidator(_aware_time)]
+NuclideField = Annotated[InstanceOf[Nuclide], BeforeValidator(_nuclide), PlainSerializer(lambda n: n.name, return_type=str)]
+
+
+# ---------------------------------------------------------------------------- entries
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class _ActivityEntry(_Strict):
+    """Base of the activity entries: checks that exactly one complete form is given."""
+
+    #: form name -> keys it needs; subclasses keep the forms whose keys they declare
+    _FORMS: ClassVar[dict[str, tuple[str, ...]]] = {
+        "concentration": ("concentration_kbq_ml", "measured_at"),
+        "ratio": ("ratio_to_background",),
+        "syringe": ("syringe_mbq", "syringe_measured_at", "residual_mbq", "residual_measured_at", "volume_ml"),
+    }
+
+    @classmethod
+    def _forms(cls) -> dict[str, tuple[str, ...]]:
+        return {name: keys for name, keys in cls._FORMS.items() if keys[0] in cls.model_fields}
+
+    @classmethod
+    def _describe_forms(cls) -> str:
+        return ", or ".join(" + ".join(keys) for keys in cls._forms().values())
+
+    @model_validator(mode="after")
+    def _one_complete_form(self) -> "_ActivityEntry":
+        given = {name: [k for k in keys if getattr(self, k) is not None] for name, keys in self._forms().items()}
+        used = [name for name, keys in given.items() if keys]
+        if not used:
+            raise ValueError(f"no activity given; give {self._describe_forms()}")
+        if len(used) > 1:
+            keys = " and ".join(given[name][0] for name in used)
+            raise ValueError(f"both {keys} given; give only one of: {self._describe_forms()}")
+        missing = [k for k in self._forms()[used[0]] if getattr(self, k) is None]
+        if missing:
+            raise ValueError(f"missing {', '.join(missing)} (needed with {', '.join(given[used[0]])})")
+        if used[0] == "syringe" and self.residual_measured_at < self.syringe_measured_at:  # type: ignore[attr-defined]
+            raise ValueError("residual_measured_at is before syringe_measured_at; the residual is measured after dispensing")
+        return self
+
+    @property
+    def form(self) -> str:
+        """``"concentration"``, ``"ratio"`` or ``"syringe"``."""
+        return next(name for name, keys in self._forms().items() if getattr(self, keys[0]) is not None)
+
+    def reference_bq_ml(self, nuclide: Nuclide) -> tuple[float, datetime] | None:
+        """Concentration (Bq/mL) and the time it refers to; None for the ratio form.
+
+        The syringe form follows the rule in the module docstring.
+        """
+        form = self.form
+        if form == "concentration":
+            return self.concentration_kbq_ml * _KBQ, self.measured_at  # type: ignore[attr-defined]
+        if form == "syringe":
+            s: Any = self
+            net_mbq = s.syringe_mbq * decay_factor(nuclide, s.syringe_measured_at, s.residual_measured_at) - s.residual_mbq
+            return net_mbq * _MBQ / s.volume_ml, s.residual_measured_at
+        return None
+
+
+class _ConcentrationForm(_ActivityEntry):
+    concentration_kbq_ml: PositiveFloat | None = None
+    measured_at: AwareTime | None = None
+
+
+class _SyringeForm(_ActivityEntry):
+    syringe_mbq: PositiveFloat | None = None
+    syringe_measured_at: AwareTime | None = None
+    residual_mbq: NonNegativeFloat | None = None
+    residual_measured_at: AwareTime | None = None
+    volume_ml: PositiveFloat | None = None
+
+
+class _RatioForm(_ActivityEntry):
+    ratio_to_background: PositiveFloat | None = None
+
+
+class BackgroundFill(_ConcentrationForm, _SyringeForm):
+    """The background: a concentration at a time, or a syringe diluted in ``volume_ml``."""
+
+
+class SpheresFill(_ConcentrationForm, _RatioForm, _SyringeForm):
+    """The common fill of the hot inserts: concentration, ratio to background or syringe."""
+
+
+class InsertFill(_ConcentrationForm, _RatioForm):
+    """One insert's own fill (overrides the spheres entry): concentration or ratio."""
+
+
+# ---------------------------------------------------------------------------- the record
+class FillRecord(_Strict):
+    """A validated fill record; see the module docstring for the file format.
+
+    Build one with :func:`load_fill_record` or :meth:`from_dict`. Concentrations are returned
+    in Bq/mL, decay-corrected with the physical decay law ``A(t) = A(t0) exp(-lambda (t - t0))``
+    (:func:`phantometry.nuclides.decay_factor`).
+    """
+
+    nuclide: NuclideField
+    background: BackgroundFill
+    spheres: SpheresFill | None = None
+    rods: SpheresFill | None = None
+    inserts: dict[str, InsertFill] | None = None
+    cold: list[str] = Field(default_factory=list)
+    site: str | None = None
+    phantom: str | None = None
+    operator_note: str | None = None
+
+    _source: str = PrivateAttr(default="fill record")
+
+    @model_validator(mode="after")
+    def _consistent(self) -> "FillRecord":
+        if self.spheres is not None and self.rods is not None:
+            raise ValueError("spheres, rods: both given; rods is another name for spheres, give one")
+        problems = []
+        for name in sorted(set(self.cold) & set(self.inserts or {})):
+            problems.append(f"inserts.{name}: {name} is also listed in cold; remove one")
+        for name in sorted({n for n in self.cold if self.cold.count(n) > 1}):
+            problems.append(f"cold: {name} listed twice")
+        for key in ("background", "spheres", "rods"):
+            entry = getattr(self, key)
+            ref = entry.reference_bq_ml(self.nuclide) if entry is not None else None
+            if ref is not None and ref[0] <= 0:
+                problems.append(
+                    f"{key}: residual_mbq {entry.residual_mbq:g} MBq is not less than syringe_mbq decayed to "
+                    f"residual_measured_at ({entry.residual_mbq + ref[0] * entry.volume_ml / _MBQ:.4g} MBq); "
+                    "check the readings and their times"
+                )
+        if problems:
+            raise ValueError("; ".join(problems))
+        return self
+
+    # ------------------------------------------------------------------ construction
+    @classmethod
+    def from_dict(cls, data: Any, source: str | os.PathLike | None = None) -> "FillRecord":
+        """Validate a parsed fill record.
+
+        Parameters
+        ----------
+        data : mapping
+            The YAML document as parsed (strings or datetimes for times).
+        source : str or path, optional
+            Where it came from, named in error messages.
+
+        Raises
+        ------
+        FillRecordError
+            One line ``SOURCE: field.path: problem; ...`` listing every problem found.
+        """
+        where = str(source) if source is not None else "fill record"
+        if not isinstance(data, dict):
+            raise FillRecordError(f"{where}: expected a mapping of keys (nuclide, background, ...), got {type(data).__name__}")
+        try:
+            record = cls.model_validate(data)
+        except ValidationError as exc:
+            raise FillRecordError(f"{where}: {_flatten(exc)}; fix the fill record") from None
+        record._source = where
+        return record
+
+    def to_dict(self) -> dict[str, Any]:
+        """The record as plain YAML/JSON-ready data (times as ISO 8601 strings); round-trips."""
+        d = self.model_dump(mode="json", exclude_none=True)
+        if not d.get("cold"):
+            d.pop("cold", None)
+        return d
+
+    # ------------------------------------------------------------------ queries
+    @property
+    def source(self) -> str:
+        """The file (or label) the record was read from."""
+        return self._source
+
+    @property
+    def hot_fill(self) -> SpheresFill | None:
+        """The ``spheres`` entry, or ``rods`` when the record uses that name."""
+        return self.spheres if self.spheres is not None else self.rods
+
+    def is_cold(self, name: str) -> bool:
+        """True if the insert ``name`` is listed in ``cold`` (non-radioactive water)."""
+        return name in self.cold
+
+    def background_bq_ml(self, at: datetime) -> float:
+        """True background concentration (Bq/mL) at the timezone-aware time ``at``."""
+        conc, ref_time = self.background.reference_bq_ml(self.nuclide)  # type: ignore[misc]
+        return conc * decay_factor(self.nuclide, ref_time, at)
+
+    def _entry(self, name: str) -> _ActivityEntry:
+        if self.inserts and name in self.inserts:
+            return self.inserts[name]
+        if self.hot_fill is None:
+            raise FillRecordError(
+                f"{self._source}: no fill given for insert {name!r}; add spheres: (or rods:), inserts: {name}: ..., "
+                f"or list it in cold"
+            )
+        return self.hot_fill
+
+    def insert_bq_ml(self, name: str, at: datetime) -> float:
+        """True concentration (Bq/mL) of insert ``name`` at the timezone-aware time ``at``.
+
+        0.0 for inserts listed in ``cold``; else the insert's own ``inserts`` entry, else the
+        ``spheres``/``rods`` entry: ratio x background, or the concentration decayed to ``at``.
+        """
+        if self.is_cold(name):
+            return 0.0
+        ref = self._entry(name).reference_bq_ml(self.nuclide)
+        if ref is None:
+            return self._entry(name).ratio_to_background * self.background_bq_ml(at)  # type: ignore[attr-defined]
+        return ref[0] * decay_factor(self.nuclide, ref[1], at)
+
+    def activity_ratio(self, name: str) -> float:
+        """Insert to background concentration ratio a_H/a_B (NEMA NU 2 image quality test).
+
+        Time-independent for one nuclide, since both decay alike; 0.0 for cold inserts.
+        """
+        if self.is_cold(name):
+            return 0.0
+        entry = self._entry(name)
+        ref = entry.reference_bq_ml(self.nuclide)
+        if ref is None:
+            return float(entry.ratio_to_background)  # type: ignore[attr-defined]
+        return ref[0] / self.background_bq_ml(ref[1])
+
+
+# ---------------------------------------------------------------------------- errors
+def _model_at(loc: tuple[Any, ...]) -> type[BaseModel] | None:
+    """The model class that holds the key at the end of ``loc`` (for naming allowed keys)."""
+    tp: Any = FillRecord
+    for part in loc[:-1]:
+        if isinstance(tp, type) and issubclass(tp, BaseModel):
+            field = tp.model_fields.get(part) if isinstance(part, str) else None
+            if field is None:
+                return None
+            tp = field.annotation
+        elif typing.get_origin(tp) is dict:
+            tp = typing.get_args(tp)[1]
+        else:
+            return None
+        args = [a for a in typing.get_args(tp) if a is not type(None)]
+        if typing.get_origin(tp) in (typing.Union, types.UnionType) and len(args) == 1:
+            tp = args[0]
+    return tp if isinstance(tp, type) and issubclass(tp, BaseModel) else None
+
+
+def _flatten(exc: ValidationError) -> str:
+    """Pydantic's errors as ``field.path: problem; ...`` on one line."""
+    parts = []
+    for err in exc.errors():
+        loc = tuple(err["loc"])
+        path = ".".join(str(p) for p in loc) or "(top level)"
+        kind = err["type"]
+        if kind == "extra_forbidden":
+            model = _model_at(loc)
+            allowed = f"; allowed here: {', '.join(model.model_fields)}" if model else ""
+            problem = f"unknown key {loc[-1]!r}{allowed}"
+        elif kind == "missing":
+            problem = "missing (required)"
+        elif kind in ("greater_than", "greater_than_equal"):
+            bound = "positive" if kind == "greater_than" else "zero or more"
+            problem = f"must be {bound}, got {err.get('input')!r}"
+        else:
+            problem = err["msg"].removeprefix("Value error, ")
+        if not loc:  # record-level checks name their own fields
+            parts.append(problem)
+        else:
+            parts.append(f"{path}: {problem}")
+    return "; ".join(parts)
+
+
+# ---------------------------------------------------------------------------- files
+def load_fill_record(path: str | os.PathLike) -> FillRecord:
+    """Read and validate a fill record YAML file.
+
+    Raises
+    ------
+    FillRecordError
+        If the file is missing, is not YAML, or breaks the format (every problem listed).
+    """
+    p = Path(path)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise FillRecordError(f"{p}: no such fill record; give the YAML file written when filling the phantom") from None
+    except OSError as exc:
+        raise FillRecordError(f"{p}: cannot read the fill record ({exc.strerror})") from None
+    try:
+        data = yaml.safe_load(text)
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        at = f" at line {mark.line + 1}, column {mark.column + 1}" if mark else ""
+        raise FillRecordError(f"{p}: not valid YAML{at}; fix the syntax") from None
+    if data is None:
+        raise FillRecordError(f"{p}: the fill record is empty; give at least nuclide and background")
+    return FillRecord.from_dict(data, source=p)
+
+
+def write_fill_record(record: FillRecord, path: str | os.PathLike) -> Path:
+    """Write ``record`` as YAML (readable back with :func:`load_fill_record`); returns the path."""
+    p = Path(path)
+    p.parent.mkdir(parents=True, exist_ok=True)
+    p.write_text(yaml.safe_dump(record.to_dict(), sort_keys=False, allow_unicode=True), encoding="utf-8")
+    return p

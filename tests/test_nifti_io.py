@@ -1,0 +1,280 @@
+"""Tests of the NIfTI loader/writer (phantometry.io.nifti).
+
+Geometry is checked against nibabel's own ``apply_affine`` (reference library), the scaling
+against the NIfTI-1 rule value = stored x scl_slope + scl_inter (NIfTI-1 header standard),
+the sidecar against the BIDS-PET key definitions (BIDS specification, PET modality). Scanner
+names, sites and dates are invented.
+"""
+
+from __future__ import annotations
+
+import json
+from datetime import datetime, timedelta, timezone
+
+import nibabel as nib
+import numpy as np
+import pytest
+
+from phantometry.errors import InputError, UnitsError, UnsupportedSeries
+from phantometry.io.nifti import SidecarTimeWarning, load_nifti, sidecar_path, write_nifti
+from phantometry.volume import Reconstruction, Scanner, Volume
+
+CET = timezone(timedelta(hours=1))
+SCAN = datetime(2026, 11, 3, 10, 30, tzinfo=CET)
+SHAPE_ZYX = (5, 6, 7)  # all different, so a wrong transpose cannot pass
+
+
+def _oblique_affine() -> np.ndarray:
+    """A rotated, anisotropic index -> world affine (columns: i, j, k voxel steps in mm)."""
+    angle = np.deg2rad(20.0)
+    rot = np.array([[np.cos(angle), -np.sin(angle), 0.0], [np.sin(angle), np.cos(angle), 0.0], [0.0, 0.0, 1.0]])
+    a = np.eye(4)
+    a[:3, :3] = rot @ np.diag([2.0, 2.5, 3.27])
+    a[:3, 3] = [-101.5, 33.25, -40.0]
+    return a
+
+
+def _volume(frame: str = "LPS", **kw) -> Volume:
+    rng = np.random.default_rng(7)
+    data = rng.uniform(0.0, 30000.0, SHAPE_ZYX).astype(np.float32)
+    defaults = dict(
+        acquired_at=SCAN,
+        nuclide="F-18",
+        decay_correction="START",
+        scanner=Scanner(manufacturer="Demo Imaging", model="DemoPET 600"),
+        reconstruction=Reconstruction(method="OSEM", iterations=3, subsets=21, filter="Gaussian 5 mm"),
+    )
+    defaults.update(kw)
+    return Volume(data=data, affine=_oblique_affine(), frame=frame, **defaults)
+
+
+def _write_raw(tmp_path, data_ijk, affine, meta=None, name="raw.nii.gz", slope=None, inter=None):
+    img = nib.Nifti1Image(data_ijk, affine)
+    if slope is not None:
+        img.header.set_slope_inter(slope, inter)
+    path = tmp_path / name
+    nib.save(img, str(path))
+    if meta is not None:
+        sidecar_path(path).write_text(json.dumps(meta), encoding="utf-8")
+    return path
+
+
+# ---------------------------------------------------------------------------- loading
+def test_axes_scaling_and_affine_against_nibabel(tmp_path):
+    ni, nj, nk = 7, 6, 5
+    i, j, k = np.meshgrid(np.arange(ni), np.arange(nj), np.arange(nk), indexing="ij")
+    stored = (i + 10 * j + 100 * k).astype(np.int16)  # value encodes its own (i, j, k)
+    affine = _oblique_affine()
+    path = _write_raw(tmp_path, stored, affine, {"Units": "Bq/mL"}, slope=2.5, inter=10.0)
+    vol = load_nifti(path)
+    assert vol.frame == "RAS" and vol.shape == (nk, nj, ni) and vol.data.dtype == np.float32
+    # NIfTI-1: value = stored * scl_slope + scl_inter, at data[k, j, i]
+    expected_kji = np.transpose(stored.astype(np.float64) * 2.5 + 10.0, (2, 1, 0))
+    np.testing.assert_array_equal(vol.data, expected_kji.astype(np.float32))
+    assert vol.data[4, 3, 2] == (2 + 30 + 400) * 2.5 + 10.0
+    # world positions: our (k, j, i) order against nibabel.affines.apply_affine on (i, j, k)
+    ijk = np.array([[0, 0, 0], [6, 5, 4], [2.5, 1.0, 3.75], [3, 0, 1]])
+    np.testing.assert_allclose(vol.index_to_world(ijk[:, ::-1]), nib.affines.apply_affine(affine, ijk), atol=1e-9)
+    np.testing.assert_allclose(vol.affine, affine, atol=1e-6)
+    assert vol.reconstruction.matrix == (6, 7, 5)  # rows, columns, slices
+    np.testing.assert_allclose(vol.reconstruction.voxel_size_mm, (2.0, 2.5, 3.27), rtol=1e-6)
+    np.testing.assert_allclose(vol.spacing_mm, (3.27, 2.5, 2.0), rtol=1e-6)
+
+
+@pytest.mark.parametrize("units, factor", [("Bq/mL", 1.0), ("kBq/mL", 1e3), ("MBq/mL", 1e6), ("BQML", 1.0), ("kbq/ml", 1e3)])
+def test_activity_units_scaled_to_bq_ml(tmp_path, units, factor):
+    stored = np.full((7, 6, 5), 5.3, dtype=np.float32)
+    vol = load_nifti(_write_raw(tmp_path, stored, np.eye(4), {"Units": units}))
+    np.testing.assert_allclose(vol.data, 5.3 * factor, rtol=1e-6)
+
+
+def test_counts_need_a_calibration_factor(tmp_path):
+    stored = np.full((7, 6, 5), 200.0, dtype=np.float32)
+    path = _write_raw(tmp_path, stored, np.eye(4), {"Units": "counts"})
+    np.testing.assert_allclose(load_nifti(path, calibration_factor=26.5).data, 5300.0, rtol=1e-6)
+    with pytest.raises(UnitsError, match="calibration factor"):
+        load_nifti(path)
+    with pytest.raises(UnitsError, match="counts only"):
+        load_nifti(path, units="Bq/mL", calibration_factor=26.5)
+
+
+def test_missing_units_refused(tmp_path):
+    stored = np.ones((7, 6, 5), dtype=np.float32)
+    bare = _write_raw(tmp_path, stored, np.eye(4), None, name="bare.nii.gz")
+    with pytest.raises(UnitsError) as info:
+        load_nifti(bare)
+    msg = str(info.value)
+    assert str(bare) in msg and "--units" in msg and "Units" in msg and "bare.json" in msg
+    no_units = _write_raw(tmp_path, stored, np.eye(4), {"TracerRadionuclide": "F18"}, name="no_units.nii")
+    with pytest.raises(UnitsError, match="--units"):
+        load_nifti(no_units)
+
+
+@pytest.mark.parametrize("units", ["SUV", "g/ml", "Bq"])
+def test_unknown_units_refused_by_name(tmp_path, units):
+    path = _write_raw(tmp_path, np.ones((7, 6, 5), dtype=np.float32), np.eye(4), {"Units": units})
+    with pytest.raises(UnitsError, match=f"Units '{units}' cannot be converted"):
+        load_nifti(path)
+
+
+def test_four_d_refused_single_frame_accepted(tmp_path):
+    frames = np.ones((7, 6, 5, 3), dtype=np.float32)
+    path = _write_raw(tmp_path, frames, np.eye(4), {"Units": "Bq/mL"}, name="dyn.nii.gz")
+    with pytest.raises(UnsupportedSeries, match="3 frames"):
+        load_nifti(path)
+    one = np.arange(7 * 6 * 5, dtype=np.float32).reshape(7, 6, 5, 1)
+    vol = load_nifti(_write_raw(tmp_path, one, np.eye(4), {"Units": "Bq/mL"}, name="one.nii.gz"))
+    np.testing.assert_array_equal(vol.data, one[..., 0].transpose(2, 1, 0))
+
+
+def test_flags_override_sidecar(tmp_path):
+    meta = {
+        "Units": "kBq/mL",
+        "TracerRadionuclide": "Ga68",
+        "AcquisitionDateTime": "2026-11-03T10:30:00+01:00",
+        "ScanStart": 0,
+        "TimeZero": "10:30:00",
+    }
+    stored = np.full((7, 6, 5), 4.0, dtype=np.float32)
+    path = _write_raw(tmp_path, stored, np.eye(4), meta)
+    from_sidecar = load_nifti(path)
+    assert from_sidecar.nuclide == "Ga-68" and from_sidecar.acquired_at == SCAN
+    np.testing.assert_allclose(from_sidecar.data, 4000.0)
+    other_time = datetime(2026, 11, 4, 8, 0, tzinfo=timezone.utc)
+    flagged = load_nifti(path, units="Bq/mL", nuclide="F-18", acquired_at=other_time)
+    np.testing.assert_allclose(flagged.data, 4.0)
+    assert flagged.nuclide == "F-18" and flagged.acquired_at == other_time and flagged.original_units == "Bq/mL"
+    assert load_nifti(path, acquired_at="2026-11-04T09:00:00+01:00").acquired_at == other_time
+    with pytest.raises(InputError, match="no time-zone offset"):
+        load_nifti(path, acquired_at="2026-11-04T09:00:00")
+    # an explicit sidecar replaces the one beside the image
+    elsewhere = tmp_path / "other.json"
+    elsewhere.write_text(json.dumps({"Units": "MBq/mL"}), encoding="utf-8")
+    np.testing.assert_allclose(load_nifti(path, sidecar=elsewhere).data, 4.0e6)
+    with pytest.raises(InputError, match="no such sidecar"):
+        load_nifti(path, sidecar=tmp_path / "missing.json")
+
+
+def test_reference_time_from_bids_times(tmp_path):
+    # BIDS-PET: ScanStart, InjectionStart and ImageDecayCorrectionTime are seconds from TimeZero.
+    # Scan started 10:00+01:00, one hour after TimeZero (injection); decay corrected to TimeZero.
+    meta = {
+        "Units": "Bq/mL",
+        "TimeZero": "09:00:00",
+        "ScanStart": 3600,
+        "InjectionStart": 0,
+        "ImageDecayCorrected": True,
+        "ImageDecayCorrectionTime": 0,
+        "AcquisitionDateTime": "2026-11-03T10:00:00+01:00",
+    }
+    stored = np.ones((7, 6, 5), dtype=np.float32)
+    vol = load_nifti(_write_raw(tmp_path, stored, np.eye(4), meta, name="admin.nii.gz"))
+    assert vol.acquired_at == datetime(2026, 11, 3, 9, 0, tzinfo=CET) and vol.decay_correction == "ADMIN"
+    # corrected to the scan start
+    meta.update(ImageDecayCorrectionTime=3600)
+    vol = load_nifti(_write_raw(tmp_path, stored, np.eye(4), meta, name="start.nii.gz"))
+    assert vol.acquired_at == datetime(2026, 11, 3, 10, 0, tzinfo=CET) and vol.decay_correction == "START"
+    # not decay corrected: the values refer to the scan start
+    meta.update(ImageDecayCorrected=False, ImageDecayCorrectionTime=0)
+    vol = load_nifti(_write_raw(tmp_path, stored, np.eye(4), meta, name="none.nii.gz"))
+    assert vol.acquired_at == datetime(2026, 11, 3, 10, 0, tzinfo=CET) and vol.decay_correction == "NONE"
+    # TimeZero inconsistent with AcquisitionDateTime - ScanStart: warned
+    meta.update(TimeZero="08:00:00")
+    with pytest.warns(SidecarTimeWarning, match="TimeZero 08:00:00"):
+        load_nifti(_write_raw(tmp_path, stored, np.eye(4), meta, name="warn.nii.gz"))
+    # a decay-correction time that cannot be placed
+    meta = {"Units": "Bq/mL", "ImageDecayCorrected": True, "ImageDecayCorrectionTime": 0,
+            "AcquisitionDateTime": "2026-11-03T10:00:00+01:00"}
+    with pytest.raises(InputError, match="without ScanStart"):
+        load_nifti(_write_raw(tmp_path, stored, np.eye(4), meta, name="noscan.nii.gz"))
+    # a naive AcquisitionDateTime is refused
+    meta = {"Units": "Bq/mL", "AcquisitionDateTime": "2026-11-03T10:00:00"}
+    with pytest.raises(InputError, match="AcquisitionDateTime .* no time-zone offset"):
+        load_nifti(_write_raw(tmp_path, stored, np.eye(4), meta, name="naive.nii.gz"))
+
+
+def test_reconstruction_and_scanner_from_bids_keys(tmp_path):
+    meta = {
+        "Units": "Bq/mL",
+        "ReconMethodName": "3D-OSEM",
+        "ReconMethodParameterLabels": ["subsets", "iterations"],
+        "ReconMethodParameterUnits": ["none", "none"],
+        "ReconMethodParameterValues": [21, 3],
+        "ReconFilterType": "Gaussian",
+        "ReconFilterSize": 4,
+        "Manufacturer": "Demo Imaging",
+        "ManufacturersModelName": "DemoPET 600",
+        "InjectedRadioactivity": 51.4,
+    }
+    vol = load_nifti(_write_raw(tmp_path, np.ones((7, 6, 5), np.float32), np.eye(4), meta))
+    assert (vol.reconstruction.method, vol.reconstruction.iterations, vol.reconstruction.subsets) == ("3D-OSEM", 3, 21)
+    assert vol.reconstruction.filter == "Gaussian 4 mm"
+    assert vol.scanner == Scanner(manufacturer="Demo Imaging", model="DemoPET 600")
+
+
+def test_bad_sidecar_values_refused(tmp_path):
+    stored = np.ones((7, 6, 5), np.float32)
+    with pytest.raises(InputError, match="TracerRadionuclide: unknown radionuclide 'Tc99m'"):
+        load_nifti(_write_raw(tmp_path, stored, np.eye(4), {"Units": "Bq/mL", "TracerRadionuclide": "Tc99m"}, name="a.nii"))
+    with pytest.raises(InputError, match="ScanStart is '0', expected a number"):
+        load_nifti(_write_raw(tmp_path, stored, np.eye(4), {"Units": "Bq/mL", "ScanStart": "0"}, name="b.nii"))
+    path = _write_raw(tmp_path, stored, np.eye(4), None, name="c.nii")
+    sidecar_path(path).write_text("{not json", encoding="utf-8")
+    with pytest.raises(InputError, match=r"c\.json: not valid JSON"):
+        load_nifti(path)
+    with pytest.raises(InputError, match="no such NIfTI file"):
+        load_nifti(tmp_path / "absent.nii.gz")
+
+
+# ---------------------------------------------------------------------------- round trip
+def test_round_trip_lps_volume(tmp_path):
+    vol = _volume("LPS")
+    path = write_nifti(vol, tmp_path / "phantom.nii.gz")
+    assert path == tmp_path / "phantom.nii.gz" and sidecar_path(path).is_file()
+    back = load_nifti(path)
+    np.testing.assert_array_equal(back.data, vol.data)  # float32 written with slope 1: exact
+    assert back.frame == "RAS"
+    # the same voxel is at the same physical point: LPS (x, y, z) = RAS (-x, -y, z)
+    idx = np.array([[0, 0, 0], [4, 5, 6], [1.5, 2.25, 3.0], [2, 0, 6]])
+    np.testing.assert_allclose(back.index_to_world(idx), vol.index_to_world(idx) * [-1, -1, 1], atol=1e-4)
+    np.testing.assert_allclose(back.affine, np.diag([-1.0, -1.0, 1.0, 1.0]) @ vol.affine, atol=1e-5)
+    # a physical point maps to the same fractional voxel in both frames
+    p_lps = np.array([[-95.0, 40.0, -35.0]])
+    np.testing.assert_allclose(back.world_to_index(p_lps * [-1, -1, 1]), vol.world_to_index(p_lps), atol=1e-5)
+    # metadata
+    assert back.acquired_at == SCAN and back.acquired_at.utcoffset() == timedelta(hours=1)
+    assert back.nuclide == "F-18" and back.decay_correction == "START" and back.original_units == "Bq/mL"
+    assert back.scanner == vol.scanner
+    rec = back.reconstruction
+    assert (rec.method, rec.iterations, rec.subsets, rec.filter) == ("OSEM", 3, 21, "Gaussian 5 mm")
+    assert rec.matrix == (6, 7, 5)
+    np.testing.assert_allclose(rec.voxel_size_mm, (2.0, 2.5, 3.27), rtol=1e-6)
+    meta = json.loads(sidecar_path(path).read_text())
+    assert meta["Units"] == "Bq/mL" and meta["AcquisitionDateTime"] == "2026-11-03T10:30:00+01:00"
+    assert meta["TimeZero"] == "10:30:00" and meta["ScanStart"] == 0 and meta["ImageDecayCorrected"] is True
+    assert meta["ReconMethodParameterLabels"] == ["iterations", "subsets"] and meta["ReconMethodParameterValues"] == [3, 21]
+
+
+def test_round_trip_ras_volume_and_header(tmp_path):
+    vol = _volume("RAS", decay_correction="ADMIN")
+    path = write_nifti(vol, tmp_path / "ras")  # suffix added
+    assert path.name == "ras.nii.gz"
+    back = load_nifti(path)
+    np.testing.assert_allclose(back.affine, vol.affine, atol=1e-5)
+    idx = np.array([[4, 5, 6], [0.5, 0.5, 0.5]])
+    np.testing.assert_allclose(back.index_to_world(idx), vol.index_to_world(idx), atol=1e-4)
+    assert back.decay_correction == "ADMIN" and back.acquired_at == SCAN
+    hdr = nib.load(str(path)).header
+    assert int(hdr["sform_code"]) == 1 and int(hdr["qform_code"]) == 1
+    assert hdr.get_xyzt_units() == ("mm", "sec")
+
+
+def test_round_trip_minimal_volume_without_sidecar(tmp_path):
+    vol = Volume(data=np.zeros(SHAPE_ZYX, np.float32), affine=np.diag([2.0, 2.0, 3.0, 1.0]), frame="LPS")
+    path = write_nifti(vol, tmp_path / "plain.nii", sidecar=False)
+    assert not sidecar_path(path).exists()
+    back = load_nifti(path, units="Bq/mL")
+    assert back.acquired_at is None and back.nuclide is None and back.decay_correction is None
+    np.testing.assert_allclose(back.affine, np.diag([-2.0, -2.0, 3.0, 1.0]))
+    write_nifti(vol, tmp_path / "with_sidecar.nii.gz")
+    assert json.loads(sidecar_path(tmp_path / "with_sidecar.nii.gz").read_text()) == {"Modality": "PT", "Units": "Bq/mL"}
