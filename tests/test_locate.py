@@ -24,7 +24,7 @@ def test_localisation_accuracy_over_random_poses(voxel):
     # over shifts +-20 mm, any rotation about the axis, tilts +-5 deg, both lying directions.
     rng = np.random.default_rng(20261202 + int(voxel))
     errors = []
-    for trial in range(6 if voxel == 2.0 else 10):
+    for trial in range(4 if voxel == 2.0 else 8):
         spec = SynthSpec(
             voxel_mm=(voxel,) * 3,
             psf_fwhm_mm=6.0,

@@ -12,7 +12,10 @@ Model (documented in the README, "Synthetic scans")
 2. **Point-response function.** A linear, shift-invariant convolution with an isotropic 3-D
    Gaussian of the given FWHM (sigma = FWHM / (2 sqrt(2 ln 2))), applied separably with the
    sampled, normalised kernel truncated at 4 sigma (identical to
-   ``scipy.ndimage.gaussian_filter(..., mode="constant")``; tested).
+   ``scipy.ndimage.gaussian_filter(..., mode="constant")``; tested). Because step 1 gives
+   voxel-cell means, the image equals the true object convolved with the Gaussian *and* the
+   voxel cell: the effective PSF variance is ``sigma^2 + d^2 / 12`` along an axis of spacing
+   ``d`` (the box's variance), as for a real scanner whose voxels integrate.
 3. **Noise.** Reconstructed PET noise is roughly Poisson-driven (variance grows with the local
    mean) and spatially correlated by the reconstruction. We add
    ``cv * sqrt(b * m) * n`` where ``m`` is the blurred image, ``b`` the background
@@ -321,7 +324,7 @@ def synthesize(spec: SynthSpec) -> SynthResult:
         method=spec.reconstruction_method,
         iterations=3,
         subsets=21,
-        filter=f"Gaussian {spec.psf_fwhm_mm:g} mm (synthetic PSF)",
+        filter=f"Gauss {spec.psf_fwhm_mm:.1f}mm",
         matrix=(shape[1], shape[2], shape[0]),
         voxel_size_mm=tuple(float(v) for v in spec.voxel_mm),  # type: ignore[arg-type]
     )

@@ -390,7 +390,7 @@ def write_dicom_series(
     if recon_method:
         base.ReconstructionMethod = recon_method
     if volume.reconstruction.filter:
-        base.ConvolutionKernel = volume.reconstruction.filter
+        base.ConvolutionKernel = volume.reconstruction.filter[:16]  # SH: at most 16 characters
     base.CollimatorType = "NONE"
     base.FrameReferenceTime = "0"
     if decay_correction != "NONE":

@@ -1,0 +1,214 @@
+"""The commands. Each one parses options and calls a library function; no analysis here."""
+
+from __future__ import annotations
+
+import json
+import tempfile
+from datetime import datetime
+from pathlib import Path
+from typing import List, Optional
+
+import typer
+from rich.console import Console
+from rich.markup import escape
+from rich.table import Table
+
+from ..errors import InputError
+from ..results import CAUTION
+from . import app, templates_app
+
+console = Console(highlight=False)
+
+
+def _parse_time(text: Optional[str]) -> Optional[datetime]:
+    if text is None:
+        return None
+    try:
+        t = datetime.fromisoformat(text)
+    except ValueError:
+        raise InputError(f"--acquired-at {text!r}: expected ISO 8601 with a time zone, e.g. 2026-11-03T10:30:00+01:00") from None
+    if t.tzinfo is None:
+        raise InputError(f"--acquired-at {text!r}: give a time-zone offset, e.g. +01:00")
+    return t
+
+
+def _fmt(v, nd=2) -> str:
+    if v is None:
+        return "-"
+    try:
+        return f"{float(v):.{nd}f}"
+    except (TypeError, ValueError):
+        return str(v)
+
+
+def print_sphere_table(analysis) -> None:
+    """The terminal summary: one row per sphere, then background and insert."""
+    t = Table(title=f"{analysis.template.title}", caption=CAUTION, caption_justify="left")
+    t.add_column("ROI", no_wrap=True, min_width=11)
+    t.add_column("fill", no_wrap=True)
+    for col in ("contrast %", "BV %", "RC max", "RC mean", "RC peak", "resid mm"):
+        t.add_column(col, justify="right")
+    for row in analysis.sphere_rows():
+        t.add_row(
+            row["roi"],
+            "hot" if row["hot"] else "cold",
+            _fmt(row.get("percent_contrast"), 1),
+            _fmt(row.get("background_variability_pct"), 2),
+            _fmt(row.get("rc_max"), 3),
+            _fmt(row.get("rc_mean"), 3),
+            _fmt(row.get("rc_peak"), 3),
+            _fmt(row.get("fit_residual_mm"), 2),
+        )
+    console.print(t)
+    for r in analysis.rows:
+        if r.roi in ("background",) or r.metric == "lung_residual_pct":
+            console.print(f"  {r.roi:<12} {r.metric:<20} {_fmt(r.value, 3)} {r.unit}")
+    for w in analysis.warnings:
+        console.print("[bold]WARNING[/bold]: " + escape(w))
+
+
+@app.command("measure")
+def measure_cmd(
+    inputs: List[Path] = typer.Argument(..., help="DICOM folder(s)/file(s) of one series, or a NIfTI file."),
+    template: str = typer.Option("iec-body", "--template", "-t", help="Template name or YAML file."),
+    fill: Path = typer.Option(..., "--fill", "-f", help="Fill record YAML (phantom preparation)."),
+    out: Path = typer.Option(..., "--out", "-o", help="Result folder (written atomically)."),
+    series: Optional[str] = typer.Option(None, "--series", help="Series UID, UID prefix or series number."),
+    centre: Optional[List[str]] = typer.Option(None, "--centre", help="Manual insert centre NAME=x,y,z (world mm); repeatable."),
+    units: Optional[str] = typer.Option(None, "--units", help="NIfTI: pixel units (Bq/mL, kBq/mL)."),
+    acquired_at: Optional[str] = typer.Option(None, "--acquired-at", help="Image reference time, ISO 8601 with offset."),
+    nuclide: Optional[str] = typer.Option(None, "--nuclide", help="NIfTI: radionuclide, e.g. F-18."),
+    calibration: Optional[float] = typer.Option(None, "--calibration", help="Bq/mL per count for CNTS images."),
+    templates_dir: Optional[List[Path]] = typer.Option(None, "--templates", help="Extra folder of templates."),
+) -> None:
+    """Measure a phantom scan: recovery coefficients, contrast, background variability, insert residual."""
+    from ..measure import measure
+
+    analysis = measure(
+        [str(p) for p in inputs],
+        template=template,
+        fill=fill,
+        out=out,
+        series=series,
+        centres=centre,
+        units=units,
+        acquired_at=_parse_time(acquired_at),
+        nuclide=nuclide,
+        calibration_factor=calibration,
+        templates_dirs=[str(d) for d in templates_dir or []],
+    )
+    print_sphere_table(analysis)
+    console.print(f"wrote {out}/measurements.csv, measurements.json, overlay.png", markup=False)
+
+
+@app.command("synth")
+def synth_cmd(
+    out: Path = typer.Argument(..., help="Output folder."),
+    phantom: str = typer.Option("iec-body", "--phantom", help="Template name: iec-body, small-animal, or a user template."),
+    fmt: str = typer.Option("dicom", "--format", help="dicom or nifti."),
+    voxel: float = typer.Option(2.0, "--voxel", help="Isotropic voxel size, mm."),
+    matrix: Optional[str] = typer.Option(None, "--matrix", help="Grid size NX,NY,NZ (default: fits the phantom)."),
+    fwhm: float = typer.Option(6.0, "--fwhm", help="PSF FWHM, mm."),
+    ratio: float = typer.Option(4.0, "--ratio", help="Hot insert : background concentration ratio."),
+    background: float = typer.Option(5.3, "--background", help="Background concentration at scan time, kBq/mL."),
+    noise: float = typer.Option(0.1, "--noise", help="Background voxel coefficient of variation (0 = off)."),
+    cold: Optional[List[str]] = typer.Option(None, "--cold", help="Insert filled with water; repeatable."),
+    shift: str = typer.Option("0,0,0", "--shift", help="Translation x,y,z, mm."),
+    rotate: str = typer.Option("0,0,0", "--rotate", help="Rotation about x,y,z, degrees."),
+    flip: bool = typer.Option(False, "--flip", help="Phantom lying the other way along the bed."),
+    seed: int = typer.Option(0, "--seed", help="Noise seed."),
+) -> None:
+    """Synthesise a phantom scan with known truth (image, fill.yaml, truth.json)."""
+    from ..synth import SynthSpec, synthesize, write_synthetic
+
+    def vec(text: str, n: int, what: str, typ=float):
+        try:
+            vals = [typ(v) for v in text.split(",")]
+        except ValueError:
+            vals = []
+        if len(vals) != n:
+            raise InputError(f"{what} {text!r}: expected {n} comma-separated numbers")
+        return tuple(vals)
+
+    spec = SynthSpec(
+        phantom=phantom,
+        voxel_mm=(voxel, voxel, voxel),
+        matrix=vec(matrix, 3, "--matrix", int) if matrix else None,
+        psf_fwhm_mm=fwhm,
+        sphere_ratio=ratio,
+        background_kbq_ml=background,
+        noise_cv=noise,
+        cold=list(cold or []),
+        shift_mm=vec(shift, 3, "--shift"),
+        rotation_deg=vec(rotate, 3, "--rotate"),
+        flip=flip,
+        seed=seed,
+    )
+    paths = write_synthetic(synthesize(spec), out, fmt)
+    console.print(f"wrote {paths['image']}, {paths['fill']}, {paths['truth']}", markup=False)
+
+
+@app.command("info")
+def info_cmd(
+    inputs: List[Path] = typer.Argument(..., help="DICOM folder(s)/file(s) or a NIfTI file."),
+    series: Optional[str] = typer.Option(None, "--series"),
+    units: Optional[str] = typer.Option(None, "--units"),
+) -> None:
+    """Show the series found and the loaded volume's geometry and metadata."""
+    from ..measure import load_image
+
+    vol = load_image([str(p) for p in inputs], series=series, units=units)
+    console.print_json(json.dumps({k: v for k, v in vol.summary().items() if k != "affine"}))
+
+
+@app.command("demo")
+def demo_cmd(
+    out: Optional[Path] = typer.Option(None, "--out", "-o", help="Folder for the demo scan and results (default: a temporary folder)."),
+    noise: float = typer.Option(0.1, "--noise", help="Background voxel coefficient of variation."),
+) -> None:
+    """Synthesise an IEC body phantom scan (invented scenario) and measure it end to end."""
+    from ..measure import measure
+    from ..synth import SynthSpec, synthesize, write_synthetic
+
+    base = Path(out) if out else Path(tempfile.mkdtemp(prefix="phantometry-demo-"))
+    console.print("[bold]phantometry demo[/bold]: synthetic IEC body phantom (invented site and scanner) in " + escape(str(base)))
+    spec = SynthSpec(voxel_mm=(2.0, 2.0, 2.0), psf_fwhm_mm=6.0, noise_cv=noise, shift_mm=(6.0, -4.0, 3.0), rotation_deg=(1.5, -1.0, 17.0), seed=7)
+    paths = write_synthetic(synthesize(spec), base / "scan", "dicom")
+    analysis = measure([str(paths["image"])], template="iec-body", fill=paths["fill"], out=base / "results")
+    print_sphere_table(analysis)
+    console.print(f"results in {base / 'results'} (measurements.csv, measurements.json, overlay.png)", markup=False)
+
+
+@templates_app.command("list")
+def templates_list(templates_dir: Optional[List[Path]] = typer.Option(None, "--templates")) -> None:
+    """List the templates found (user folders first, then the built-in ones)."""
+    from ..templates import list_templates, load_template_file
+
+    for name, path in list_templates([str(d) for d in templates_dir or []]).items():
+        try:
+            title = load_template_file(path).title
+        except InputError as exc:
+            title = f"(invalid: {exc})"
+        console.print(f"{name:<20} {title}  ({path})", markup=False)
+
+
+@templates_app.command("show")
+def templates_show(name: str, templates_dir: Optional[List[Path]] = typer.Option(None, "--templates")) -> None:
+    """Print a template as validated (JSON)."""
+    from ..templates import load_template
+
+    console.print_json(json.dumps(load_template(name, [str(d) for d in templates_dir or []]).summary()))
+
+
+@templates_app.command("check")
+def templates_check(path: Path) -> None:
+    """Validate a template file: schema and geometry (inserts inside, no overlaps, ROI clearances)."""
+    from ..errors import TemplateError
+    from ..templates import check_template, load_template_file
+
+    tpl = load_template_file(path)
+    problems = check_template(tpl)
+    if problems:
+        raise TemplateError(f"{path}: {len(problems)} problem(s): " + "; ".join(problems))
+    console.print(f"{path}: template {tpl.name} is valid ({len(tpl.inserts)} inserts, "
+                  f"{tpl.background.n_rois if tpl.background else 0} background ROI positions per size)", markup=False)
