@@ -15,7 +15,6 @@ from __future__ import annotations
 import math
 import os
 from functools import cached_property
-from importlib import resources
 from pathlib import Path
 from typing import Annotated, Any, Literal, Union
 
@@ -351,10 +350,10 @@ def load_template_file(path: str | os.PathLike) -> Template:
 
 def builtin_template_dir() -> Path:
     """Folder of the templates shipped with phantometry (inside the installed package)."""
-    try:
-        return Path(str(resources.files("phantometry.roi_templates")))
-    except ModuleNotFoundError:  # editable install from a checkout: the folder beside src/
-        return Path(__file__).resolve().parents[2] / "roi_templates"
+    installed = Path(__file__).resolve().parent / "roi_templates"
+    if installed.is_dir():  # a wheel install: the folder ships inside the package
+        return installed
+    return Path(__file__).resolve().parents[2] / "roi_templates"  # a checkout (editable install)
 
 
 def template_search_path(extra_dirs: list[str | os.PathLike] | None = None) -> list[Path]:
