@@ -1,0 +1,1 @@
+"""Trend ledger: analyses and measurements across sessions (SQLAlchemy; SQLite or PostgreSQL)."""
