@@ -125,3 +125,218 @@ def diagnostic_picture(volume: "Volume", path: str | os.PathLike) -> Path:
     fig.savefig(out, dpi=90)
     plt.close(fig)
     return out
+
+
+def small_animal_overlay(analysis, path: str | os.PathLike) -> Path:
+    """Rod-section slice average with search circles and peaks, and a longitudinal view with
+    the uniform-region and spill-over VOIs (PNG)."""
+    from .rois import sample_plane
+
+    plt = _plt()
+    pl = analysis.placement
+    tpl = analysis.template
+    a = tpl.analysis
+    img = analysis.rod_image
+    fig, axes = plt.subplots(1, 2, figsize=(11, 5.4))
+    ax = axes[0]
+    vmax = float(np.nanpercentile(img.values, 99.8)) or 1.0
+    _show_plane(ax, img, vmax, f"Rod section, mean of slices {a.rod_profile_z_mm[0]:g} to {a.rod_profile_z_mm[1]:g} mm: search circles, peaks (+)")
+    z_ref = a.rod_profile_z_mm[0]
+    for r in tpl.rods:
+        uv = img.world_to_uv(pl.to_world([r.centre_mm[0], r.centre_mm[1], z_ref]))
+        _circle(ax, uv, r.diameter_mm * a.rod_search_diameter_factor, color="#c03000", lw=1.0, ls="--")
+        pk = analysis.rod_peaks_uv[r.name]
+        ax.plot([pk[0]], [pk[1]], marker="+", color="#0050c0", ms=9, mew=1.5)
+        ax.annotate(r.name.replace("rod_", ""), (uv[0], uv[1] + r.diameter_mm * a.rod_search_diameter_factor / 2 + 0.6), ha="center", va="bottom", fontsize=8,
+                    bbox=dict(boxstyle="round,pad=0.15", fc="white", ec="none", alpha=0.8))
+    ax2 = axes[1]
+    u = pl.rotation[:, 0]
+    centre = pl.to_world(tpl.body_centre_mm)
+    lon = sample_plane(analysis.volume, centre, u, pl.axis_world, max(tpl.body_length_mm, 2 * tpl.body.half_extent_xy_mm) / 2 + 3)
+    _show_plane(ax2, lon, float(np.nanpercentile(lon.values, 99.8)) or 1.0, "Longitudinal view: uniform VOI (solid), spill-over VOIs (dotted)")
+    from matplotlib.patches import Rectangle
+
+    def box(centre_t, diameter, length, **kw):
+        c = lon.world_to_uv(pl.to_world(centre_t))
+        ax2.add_patch(Rectangle((c[0] - diameter / 2, c[1] - length / 2), diameter, length, fill=False, **kw))
+
+    uv_ = a.uniform_voi
+    box([0.0, 0.0, uv_.centre_z_mm], uv_.diameter_mm, uv_.length_mm, color="#207020", lw=1.2)
+    for c in tpl.chambers:
+        box(list(c.centre_mm), a.spillover_voi.diameter_mm, a.spillover_voi.length_mm, color="#7030a0", lw=1.2, ls=":")
+    fig.suptitle(f"{tpl.title} | series {analysis.volume.series_description or analysis.volume.series_uid or ''} | rod match {pl.ring_score or 0:.2f}", fontsize=10)
+    fig.text(0.5, 0.01, "Supports, does not replace, a qualified medical physicist's review.", ha="center", fontsize=8, color="#444444")
+    fig.tight_layout(rect=(0, 0.03, 1, 0.95))
+    out = Path(path)
+    fig.savefig(out, dpi=110)
+    plt.close(fig)
+    return out
+
+
+# ----------------------------------------------------------------------------- comparison charts
+# Settings are drawn in black with one marker shape per setting and their number beside each
+# point; colour is kept for meaning only: a value outside its acceptance band is drawn as a red
+# open marker (still told apart in greyscale by being open), the bands as light grey boxes.
+_SETTING_MARKERS = "osD^vP*Xhp<>"
+_FAIL_COLOUR = "#b00020"
+
+
+def _by_key(rows) -> dict:
+    """(roi, metric) -> list of rows (several when several band sets judged the same value)."""
+    out: dict = {}
+    for r in rows:
+        out.setdefault((r.roi, r.metric), []).append(r)
+    return out
+
+
+def _finite(v) -> bool:
+    return v is not None and np.isfinite(v)
+
+
+def _legend_axis(fig, ax, settings) -> None:
+    ax.axis("off")
+    lines = [f"{number}: {label}" for number, label, _ in settings]
+    ncol = 1 if len(lines) <= 6 else 2
+    per = int(np.ceil(len(lines) / ncol))
+    for c in range(ncol):
+        ax.text(0.01 + 0.5 * c, 1.0, "\n".join(lines[c * per:(c + 1) * per]), va="top", ha="left", fontsize=7.5,
+                family="monospace", transform=ax.transAxes)
+
+
+def contrast_noise_chart(settings, sphere_diameters_mm: dict[str, float], path: str | os.PathLike, *, title: str | None = None) -> Path:
+    """Percent contrast against background variability, one panel per sphere (PNG).
+
+    Parameters
+    ----------
+    settings : list of (number, label, rows)
+        Each setting's :class:`~phantometry.results.Measurement` rows; ``percent_contrast``
+        and ``background_variability_pct`` per sphere (NEMA NU 2 Q_H or Q_C, and N), with their
+        standard uncertainties drawn as error bars where present.
+    sphere_diameters_mm : dict
+        Sphere ROI name -> diameter (mm); panels in order of diameter.
+    path : path
+        Output PNG.
+
+    Returns
+    -------
+    Path
+    """
+    plt = _plt()
+    spheres = sorted(sphere_diameters_mm, key=lambda n: sphere_diameters_mm[n])
+    ncols = 3
+    nrows = int(np.ceil(len(spheres) / ncols))
+    legend_h = 0.22 * int(np.ceil(len(settings) / (1 if len(settings) <= 6 else 2))) + 0.4
+    fig = plt.figure(figsize=(11, 3.4 * nrows + legend_h))
+    gs = fig.add_gridspec(nrows + 1, ncols, height_ratios=[3.4] * nrows + [legend_h])
+    for n, name in enumerate(spheres):
+        ax = fig.add_subplot(gs[n // ncols, n % ncols])
+        for number, label, rows in settings:
+            d = _by_key(rows)
+            pc = (d.get((name, "percent_contrast")) or [None])[0]
+            bv = (d.get((name, "background_variability_pct")) or [None])[0]
+            if pc is None or bv is None or not (_finite(pc.value) and _finite(bv.value)):
+                continue
+            failed = any(r.verdict == "fail" for r in d.get((name, "percent_contrast"), []) + d.get((name, "background_variability_pct"), []))
+            marker = _SETTING_MARKERS[(number - 1) % len(_SETTING_MARKERS)]
+            colour = _FAIL_COLOUR if failed else "black"
+            ax.errorbar(bv.value, pc.value,
+                        xerr=bv.uncertainty if _finite(bv.uncertainty) else None,
+                        yerr=pc.uncertainty if _finite(pc.uncertainty) else None,
+                        fmt=marker, ms=5, color=colour, mfc="white" if failed else colour, ecolor="#777777", elinewidth=0.8, capsize=2)
+            ax.annotate(str(number), (bv.value, pc.value), xytext=(4, 3), textcoords="offset points", fontsize=7)
+        ax.set_title(f"{name.replace('sphere_', '')} sphere", fontsize=9)
+        ax.set_xlabel("background variability N (%)", fontsize=8)
+        ax.set_ylabel("percent contrast Q (%)", fontsize=8)
+        ax.tick_params(labelsize=7)
+        ax.grid(True, color="#dddddd", lw=0.5)
+    _legend_axis(fig, fig.add_subplot(gs[nrows, :]), settings)
+    fig.suptitle(title or "Contrast against noise, one point per reconstruction setting (bars: standard uncertainty)", fontsize=10)
+    fig.tight_layout(rect=(0, 0, 1, 0.96))
+    out = Path(path)
+    fig.savefig(out, dpi=100)
+    plt.close(fig)
+    return out
+
+
+def recovery_curves_chart(
+    settings,
+    sphere_diameters_mm: dict[str, float],
+    path: str | os.PathLike,
+    *,
+    hot: dict[str, bool] | None = None,
+    metrics: tuple[str, ...] = ("rc_max", "rc_mean", "rc_peak"),
+    title: str | None = None,
+) -> Path:
+    """Recovery coefficients against sphere diameter, every setting over the bands (PNG).
+
+    Parameters
+    ----------
+    settings : list of (number, label, rows)
+        Rows with ``rc_max``, ``rc_mean``, ``rc_peak`` per hot sphere, and band limits
+        (``band_low``/``band_high``) where bands were applied.
+    sphere_diameters_mm : dict
+        Sphere ROI name -> diameter (mm).
+    hot : dict, optional
+        Sphere name -> hot; cold spheres are left out.
+    metrics : tuple of str
+        Panels, those present in the rows.
+
+    Returns
+    -------
+    Path
+    """
+    plt = _plt()
+    from matplotlib.patches import Rectangle
+
+    spheres = sorted((n for n in sphere_diameters_mm if (hot or {}).get(n, True)), key=lambda n: sphere_diameters_mm[n])
+    keyed = [(number, label, _by_key(rows)) for number, label, rows in settings]
+    present = [m for m in metrics if any((s, m) in d for _, _, d in keyed for s in spheres)]
+    if not present:
+        present = [metrics[0]]
+    legend_h = 0.22 * int(np.ceil(len(settings) / (1 if len(settings) <= 6 else 2))) + 0.4
+    fig = plt.figure(figsize=(4.0 * len(present) + 1, 4.2 + legend_h))
+    gs = fig.add_gridspec(2, len(present), height_ratios=[4.2, legend_h])
+    jitter = np.linspace(-0.35, 0.35, max(1, len(settings))) if len(settings) > 1 else np.zeros(1)
+    for p, metric in enumerate(present):
+        ax = fig.add_subplot(gs[0, p])
+        # bands: one grey box per (sphere, band), drawn once
+        seen = set()
+        for _, _, d in keyed:
+            for s in spheres:
+                for r in d.get((s, metric), []):
+                    if _finite(r.band_low) and _finite(r.band_high) and (s, r.band, r.band_low, r.band_high) not in seen:
+                        seen.add((s, r.band, r.band_low, r.band_high))
+                        x = sphere_diameters_mm[s]
+                        ax.add_patch(Rectangle((x - 1.2, r.band_low), 2.4, r.band_high - r.band_low, fc="#e4e4e4", ec="#999999", lw=0.6, hatch="///", zorder=0))
+        for (number, label, d), dx in zip(keyed, jitter):
+            xs, ys, es, fails = [], [], [], []
+            for s in spheres:
+                rs = d.get((s, metric))
+                if not rs or not _finite(rs[0].value):
+                    continue
+                xs.append(sphere_diameters_mm[s] + dx)
+                ys.append(rs[0].value)
+                es.append(rs[0].uncertainty if _finite(rs[0].uncertainty) else 0.0)
+                fails.append(any(r.verdict == "fail" for r in rs))
+            if not xs:
+                continue
+            marker = _SETTING_MARKERS[(number - 1) % len(_SETTING_MARKERS)]
+            ax.plot(xs, ys, color="#555555", lw=0.8, zorder=1)
+            ax.errorbar(xs, ys, yerr=es, fmt="none", ecolor="#888888", elinewidth=0.7, capsize=1.5, zorder=2)
+            ok = [i for i, f in enumerate(fails) if not f]
+            bad = [i for i, f in enumerate(fails) if f]
+            ax.plot([xs[i] for i in ok], [ys[i] for i in ok], marker, color="black", ms=4.5, ls="none", zorder=3)
+            ax.plot([xs[i] for i in bad], [ys[i] for i in bad], marker, color=_FAIL_COLOUR, mfc="white", mew=1.3, ms=6, ls="none", zorder=4)
+            ax.annotate(str(number), (xs[-1], ys[-1]), xytext=(5, 0), textcoords="offset points", fontsize=7, va="center")
+        ax.set_title(metric.replace("_", " ").upper().replace("RC ", "RC "), fontsize=9)
+        ax.set_xlabel("sphere diameter (mm)", fontsize=8)
+        ax.set_ylabel("recovery coefficient", fontsize=8)
+        ax.tick_params(labelsize=7)
+        ax.grid(True, color="#dddddd", lw=0.5)
+    _legend_axis(fig, fig.add_subplot(gs[1, :]), settings)
+    fig.suptitle(title or "Recovery coefficients; grey boxes: acceptance bands; red open markers: outside the band", fontsize=10)
+    fig.tight_layout(rect=(0, 0, 1, 0.95))
+    out = Path(path)
+    fig.savefig(out, dpi=100)
+    plt.close(fig)
+    return out

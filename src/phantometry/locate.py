@@ -183,9 +183,9 @@ class _Body:
     extent_mm: np.ndarray  # sorted extents of the body (PCA), mm
 
 
-def find_body(volume: Volume, where: str) -> _Body:
+def find_body(volume: Volume, where: str, target_mm: float = 6.0) -> _Body:
     """Body mask, background level and noise on a coarse grid (step 1)."""
-    coarse, factors = _coarse(volume)
+    coarse, factors = _coarse(volume, target_mm)
     finite = np.isfinite(coarse)
     vals = coarse[finite]
     if vals.size == 0 or float(np.max(vals)) <= 0:
@@ -225,6 +225,41 @@ def _template_extent(template: Template) -> np.ndarray:
     else:
         xy = (2 * body.arc_radius_mm, body.arc_radius_mm + body.corner_radius_mm)
     return np.sort([*xy, template.body_length_mm])
+
+
+def check_body_size(volume: Volume, template: Template, where: str) -> None:
+    """Raise :class:`PhantomNotFound` (suggesting a fitting template) when the object in the
+    image is not the size of the template's phantom."""
+    body = template.body
+    body_r = body.diameter_mm / 2 if body.shape == "cylinder" else body.arc_radius_mm
+    found = find_body(volume, where, max(float(np.min(np.abs(volume.spacing_mm))), min(6.0, 2 * body_r / 15)))
+    rel = found.extent_mm / _template_extent(template)
+    if np.any(rel < 0.6) or np.any(rel > 1.6):
+        raise PhantomNotFound(size_mismatch_message(where, found.extent_mm, template))
+
+
+def size_mismatch_message(where: str, extent_mm: np.ndarray, template: Template) -> str:
+    """Message for an object whose size does not fit the template, suggesting one that does."""
+    from .templates import list_templates, load_template_file
+
+    expected = _template_extent(template)
+    suggestion = ""
+    for name, path in list_templates().items():
+        try:
+            other = load_template_file(path)
+        except Exception:
+            continue
+        if other.name == template.name:
+            continue
+        rel = extent_mm / _template_extent(other)
+        if np.all((rel > 0.6) & (rel < 1.6)):
+            suggestion = f"; it looks like the {other.name} phantom: try --template {other.name}"
+            break
+    return (
+        f"{where}: the object found measures {' x '.join(f'{e:.0f}' for e in extent_mm)} mm but template "
+        f"{template.name} describes {' x '.join(f'{e:.0f}' for e in expected)} mm{suggestion or '; use the template for this phantom (phantometry templates list)'}"
+        ", or check that the whole phantom is in the field of view"
+    )
 
 
 def find_axis(volume: Volume, body: _Body, axis_insert: Insert, where: str) -> tuple[np.ndarray, np.ndarray]:
@@ -313,12 +348,12 @@ def _ring_profile_model(template: Template, amplitudes: dict[str, float], n_bins
     return model
 
 
-def _match_rotation(profile: np.ndarray, model: np.ndarray) -> tuple[float, int, float]:
+def _match_rotation(profile: np.ndarray, model: np.ndarray, hands: tuple[int, ...] = (1, -1)) -> tuple[float, int, float]:
     """Best circular shift and handedness: returns (theta0_rad, hand, normalised score)."""
     n = len(profile)
     f = profile - profile.mean()
     best = (-np.inf, 0.0, 1)
-    for hand in (1, -1):
+    for hand in hands:
         m = model if hand == 1 else np.roll(model[::-1], 1)
         m = m - m.mean()
         # corr[k] = sum_j f[j] m[j - k]  -> shift k means theta = theta0 + hand*phi with theta0 = k bins
@@ -433,11 +468,7 @@ def locate(
     expected = _template_extent(template)
     rel = body.extent_mm / expected
     if np.any(rel < 0.6) or np.any(rel > 1.6):
-        raise PhantomNotFound(
-            f"{where}: the object found measures {' x '.join(f'{e:.0f}' for e in body.extent_mm)} mm but template "
-            f"{template.name} describes {' x '.join(f'{e:.0f}' for e in expected)} mm; use the template for this "
-            "phantom (phantometry templates list), or check that the whole phantom is in the field of view"
-        )
+        raise PhantomNotFound(size_mismatch_message(where, body.extent_mm, template))
     bg = body.background
     sphere_overrides = [s for s in spheres if s.name in overrides]
     ring_score = None
@@ -532,3 +563,175 @@ def locate(
                 "override" if c is not None else "template",
             )
     return Placement(template, rot, t, bg, body.noise_sd, fits, ring_score, warnings)
+
+
+# =============================================================================== small animal
+def locate_small_animal(
+    volume: Volume,
+    template: Template,
+    *,
+    overrides: dict[str, np.ndarray] | None = None,
+    where: str | None = None,
+) -> Placement:
+    """Find a small-animal image-quality phantom (rods, uniform region, cold chambers).
+
+    Method (phantometry's own):
+
+    1. Body on a coarse copy (about 1/15 of the phantom diameter), Otsu threshold as for the
+       body phantom; size checked against the template.
+    2. Axis: the phantom lies roughly along the bed (tilt up to ~10 degrees); in slices
+       perpendicular to the slice axis the centroid of the filled body cross-section is taken
+       and a line fitted through the centroids (principal component).
+    3. Direction and axial position: along the axis, the mean in a disc of 0.8 x the body radius
+       drops at both ends of the uniform region; the end followed by hot rods is the solid
+       section. The interface is where the profile crosses halfway between the uniform and the
+       solid-section levels.
+    4. Rotation: the slices over the rod profile range are averaged and the angular profile on
+       the rod circle is matched (circular cross-correlation) against the rods' widths.
+    """
+    where = where or (volume.source or "image")
+    overrides = {k: np.asarray(v, float) for k, v in (overrides or {}).items()}
+    for name in overrides:
+        template.insert(name)
+    a = template.analysis
+    body_r = template.body.diameter_mm / 2 if template.body.shape == "cylinder" else template.body.arc_radius_mm
+    target = max(float(np.min(np.abs(volume.spacing_mm))), min(6.0, 2 * body_r / 15))
+    body = find_body(volume, where, target)
+    expected = _template_extent(template)
+    rel = body.extent_mm / expected
+    if np.any(rel < 0.6) or np.any(rel > 1.6):
+        raise PhantomNotFound(size_mismatch_message(where, body.extent_mm, template))
+    bg = body.background
+    # ---- first axis from slice centroids of the filled body (coarse)
+    k_idx = np.arange(body.mask.shape[0])
+    counts = body.mask.sum(axis=(1, 2))
+    use = counts >= max(3, 0.8 * counts.max())
+    if use.sum() < 3:
+        raise PhantomNotFound(f"{where}: the phantom spans too few slices to find its axis")
+    jj, ii = np.meshgrid(np.arange(body.mask.shape[1]), np.arange(body.mask.shape[2]), indexing="ij")
+    cj = (body.mask * jj).sum(axis=(1, 2))[use] / counts[use]
+    ci = (body.mask * ii).sum(axis=(1, 2))[use] / counts[use]
+    pts = _coarse_to_world(volume, np.c_[k_idx[use], cj, ci], body.factors)
+    centre = pts.mean(axis=0)
+    _, _, vt = np.linalg.svd(pts - centre, full_matrices=False)
+    d = vt[0] / np.linalg.norm(vt[0])
+    u, v = _orthonormal_basis(d)
+    rods = template.rods
+    ring_r = float(np.median([math.hypot(r.centre_mm[0], r.centre_mm[1]) for r in rods]))
+    solid_len = float(template.insert(a.solid_section).length_mm)
+    uniform_len = template.body_length_mm - solid_len
+    step = max(0.25, float(np.min(np.abs(volume.spacing_mm))) / 2)
+    s = np.arange(-template.body_length_mm, template.body_length_mm + step / 2, step)
+    prof = _axial_profile(volume, centre, d, s, 0.8 * body_r)
+    high = prof > 0.5 * bg
+    if not high.any():
+        raise PhantomNotFound(f"{where}: no uniform region found along the phantom axis")
+    i0, i1 = int(np.argmax(high)), len(high) - 1 - int(np.argmax(high[::-1]))
+    u, v = _orthonormal_basis(d)
+    th = np.deg2rad(np.arange(0, 360, 10.0))
+    ring = ring_r * (np.cos(th)[:, None] * u + np.sin(th)[:, None] * v)
+
+    def rod_signal(s_edge: float, sign: int) -> float:
+        ss = s_edge + sign * np.linspace(2, solid_len - 2, 9)
+        vals = np.nan_to_num(sample_world(volume, centre + ss[:, None, None] * d + ring[None]), nan=0.0)
+        return float(vals.max())
+
+    if rod_signal(s[i0], -1) >= rod_signal(s[i1], +1):
+        s_face_rough = float(s[i0])  # the solid section comes before the uniform region along d
+    else:
+        d, s_face_rough = -d, -float(s[i1])  # make +d run from the solid section into the uniform region
+    # refine the axis on the full-resolution image: centroids of the filled cross-section of the
+    # uniform region (rods excluded, chambers filled as holes), fitted by a line
+    for _ in range(2):
+        centre, d = _refine_cylinder_axis(volume, centre + s_face_rough * d, d, 2.0, uniform_len - 2.0, body_r, bg, where)
+        s_face_rough = 0.0
+        s = np.arange(-10.0, 10.0 + step / 2, step)
+        prof_face = _axial_profile(volume, centre, d, s, 0.8 * body_r)
+        # the face: halfway between the uniform level and the solid-section level
+        uniform_level = float(np.median(_axial_profile(volume, centre, d, np.linspace(3, uniform_len / 2, 9), 0.8 * body_r)))
+        solid_level = float(np.median(_axial_profile(volume, centre, d, -np.linspace(5, min(15.0, solid_len - 2), 9), 0.8 * body_r)))
+        level = 0.5 * (uniform_level + solid_level)
+        cross = np.nonzero((prof_face[:-1] < level) & (prof_face[1:] >= level))[0]
+        if len(cross) == 0:
+            raise PhantomNotFound(f"{where}: the face between the solid section and the uniform region was not found")
+        c0 = cross[np.argmin(np.abs(s[cross]))]
+        s_face = float(s[c0] + (level - prof_face[c0]) / (prof_face[c0 + 1] - prof_face[c0]) * step)
+        centre = centre + s_face * d
+    face = centre
+    u, v = _orthonormal_basis(d)
+    # ---- rotation from the rods
+    z0, z1 = a.rod_profile_z_mm
+    zs = np.arange(z0, z1 + 1e-9, max(step, 0.5))
+    n_bins = 360
+    theta = (np.arange(n_bins) + 0.5) * 2 * np.pi / n_bins
+    radii = ring_r + np.linspace(-0.5, 0.5, 3)
+    ring_pts = (radii[:, None, None] * np.cos(theta)[None, :, None]) * u + (radii[:, None, None] * np.sin(theta)[None, :, None]) * v
+    vals = sample_world(volume, face + zs[:, None, None, None] * d + ring_pts[None])
+    if np.isnan(vals).mean() > 0.2:
+        raise PhantomNotFound(f"{where}: the rods lie outside the field of view; centre the phantom in the image")
+    profile = np.nanmean(vals, axis=(0, 1)) - solid_level
+    model = np.zeros(n_bins)
+    for r in rods:
+        phi = math.atan2(r.centre_mm[1], r.centre_mm[0])
+        hw = math.asin(min(1.0, (r.diameter_mm / 2 + 0.5) / ring_r))
+        dth = np.angle(np.exp(1j * (theta - phi)))
+        model += r.diameter_mm * np.clip(1 - (dth / hw) ** 2, 0, None) ** 0.5
+    theta0, _, score = _match_rotation(np.nan_to_num(profile), model, hands=(1,))
+    if score < 0.3:
+        raise PhantomNotFound(
+            f"{where}: the rods do not match template {template.name} (match score {score:.2f} < 0.30); is this the right phantom?"
+        )
+    ex = math.cos(theta0) * u + math.sin(theta0) * v
+    ey = -math.sin(theta0) * u + math.cos(theta0) * v
+    rot = np.column_stack([ex, ey, d])
+    t = face  # template origin: on the axis at the solid/uniform face
+    fits: dict[str, InsertFit] = {}
+    warnings: list[str] = []
+    for ins in template.inserts:
+        pred = rot @ np.asarray(ins.centre_mm, float) + t
+        c = overrides.get(ins.name)
+        fits[ins.name] = InsertFit(ins.name, c if c is not None else pred, None, None, None, "override" if c is not None else "template")
+    smallest = min(r.diameter_mm for r in rods)
+    if float(np.max(np.abs(volume.spacing_mm))) > smallest / 2:
+        warnings.append(
+            f"voxel size {float(np.max(np.abs(volume.spacing_mm))):.2f} mm is coarse for the {smallest:g} mm rod "
+            f"(more than half its diameter); its recovery is measured but poorly sampled"
+        )
+    return Placement(template, rot, t, bg, body.noise_sd, fits, score, warnings)
+
+
+def _axial_profile(volume: Volume, point: np.ndarray, d: np.ndarray, s: np.ndarray, radius: float) -> np.ndarray:
+    """Mean over a disc of ``radius`` perpendicular to ``d`` at each position ``point + s d``."""
+    u, v = _orthonormal_basis(d)
+    rr = np.linspace(0, radius, 6)
+    th = np.deg2rad(np.arange(0, 360, 20.0))
+    R, T = np.meshgrid(rr, th, indexing="ij")
+    disc = (R * np.cos(T))[..., None] * u + (R * np.sin(T))[..., None] * v
+    vals = sample_world(volume, point + np.asarray(s, float)[:, None, None, None] * d + disc[None])
+    return np.nan_to_num(vals, nan=0.0).mean(axis=(1, 2))
+
+
+def _refine_cylinder_axis(volume: Volume, face: np.ndarray, d: np.ndarray, z_from: float, z_to: float, body_r: float, bg: float, where: str) -> tuple[np.ndarray, np.ndarray]:
+    """Line through the centroids of the filled body cross-sections between ``z_from`` and
+    ``z_to`` mm along ``d`` from ``face``; returns (a point on the axis at the face, direction)."""
+    from .rois import sample_plane
+
+    u, v = _orthonormal_basis(d)
+    pix = float(np.min(np.abs(volume.spacing_mm)))
+    pts = []
+    for z in np.arange(z_from, z_to + 1e-9, max(1.0, pix)):
+        plane = sample_plane(volume, face + z * d, u, v, body_r + 4 * pix, pixel_mm=pix)
+        mask = ndimage.binary_fill_holes(np.nan_to_num(plane.values) > 0.5 * bg)
+        if mask.sum() < 10:
+            continue
+        r_idx, c_idx = np.nonzero(mask)
+        pts.append(plane.uv_to_world(np.array([c_idx.mean() * plane.pixel_mm, r_idx.mean() * plane.pixel_mm])))
+    if len(pts) < 3:
+        raise PhantomNotFound(f"{where}: the uniform region is too short to find the phantom axis")
+    pts = np.array(pts)
+    c = pts.mean(axis=0)
+    _, _, vt = np.linalg.svd(pts - c, full_matrices=False)
+    new_d = vt[0] if vt[0] @ d > 0 else -vt[0]
+    # back to a point on the new axis level with the old face
+    c_face = c + ((face - c) @ new_d) * new_d
+    return c_face, new_d / np.linalg.norm(new_d)

@@ -16,7 +16,7 @@ from typing import Any, Sequence
 import numpy as np
 
 from . import __version__
-from .errors import InputError, PhantomNotFound, PhantometryError
+from .errors import FillRecordError, InputError, PhantomNotFound, PhantometryError
 from .fill import FillRecord, load_fill_record
 from .locate import Placement, locate
 from .metrics.nu2 import background_variability, lung_residual, percent_contrast_cold, percent_contrast_hot
@@ -86,18 +86,29 @@ def measure_volume(
     BodyAnalysis with :class:`~phantometry.results.Measurement` rows.
     """
     where = where or volume.source or "image"
+    if template.analysis.kind == "small_animal_image_quality":
+        from .small_animal import measure_small_animal
+
+        return measure_small_animal(volume, template, fill, overrides=overrides, where=where)  # type: ignore[return-value]
     if template.analysis.kind != "body_image_quality":
-        raise InputError(f"template {template.name} is not a body image-quality template")
+        raise InputError(f"template {template.name}: analysis kind {template.analysis.kind} is not measurable yet")
     if volume.acquired_at is None:
         raise InputError(f"{where}: the image has no acquisition time; give it (NIfTI: --acquired-at) so the fill record can be decay-corrected")
     if volume.nuclide and volume.nuclide != fill.nuclide.name:
         raise InputError(f"{where}: image nuclide {volume.nuclide} differs from the fill record's {fill.nuclide.name}")
     at = volume.acquired_at
     spheres = template.spheres
-    true_bg = fill.background_bq_ml(at)
-    true_ins = {s.name: fill.insert_bq_ml(s.name, at) for s in spheres}
-    hot = {s.name: not fill.is_cold(s.name) for s in spheres}
-    ratio = {s.name: (fill.activity_ratio(s.name) if hot[s.name] else 0.0) for s in spheres}
+    try:
+        true_bg = fill.background_bq_ml(at)
+        true_ins = {s.name: fill.insert_bq_ml(s.name, at) for s in spheres}
+        hot = {s.name: not fill.is_cold(s.name) for s in spheres}
+        ratio = {s.name: (fill.activity_ratio(s.name) if hot[s.name] else 0.0) for s in spheres}
+    except FillRecordError:
+        # a fill record that does not fit the template often means the wrong template: say so
+        from .locate import check_body_size
+
+        check_body_size(volume, template, where)
+        raise
     placement = locate(volume, template, hot=hot, activity_ratio=ratio, overrides=overrides, where=where)
     analysis = template.analysis
     bg_set = template.background
@@ -303,7 +314,12 @@ def measure(
         if overlay:
             from .figures import overlay_picture
 
-            overlay_picture(analysis, tmp / "overlay.png")
+            if isinstance(analysis, BodyAnalysis):
+                overlay_picture(analysis, tmp / "overlay.png")
+            else:
+                from .figures import small_animal_overlay
+
+                small_animal_overlay(analysis, tmp / "overlay.png")
     return analysis
 
 

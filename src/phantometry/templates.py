@@ -204,7 +204,39 @@ class BodyImageQuality(_Strict):
     isocontour_fraction: float = Field(default=0.5, gt=0, lt=1)
 
 
-Analysis = Annotated[Union[BodyImageQuality], Field(discriminator="kind")]
+class CylinderVoi(_Strict):
+    """A cylindrical VOI along the phantom axis (template frame)."""
+
+    centre_z_mm: float = 0.0
+    diameter_mm: float = Field(gt=0)
+    length_mm: float = Field(gt=0)
+
+
+class SpilloverVoi(_Strict):
+    diameter_mm: float = Field(gt=0)
+    length_mm: float = Field(gt=0)
+
+
+class SmallAnimalImageQuality(_Strict):
+    """Analysis options of the NEMA NU 4 small-animal image-quality phantom."""
+
+    kind: Literal["small_animal_image_quality"]
+    solid_section: str
+    uniform_voi: CylinderVoi
+    rod_profile_z_mm: Vec2
+    rod_search_diameter_factor: float = Field(default=2.0, gt=0)
+    spillover_voi: SpilloverVoi
+
+
+class InsertsOnly(_Strict):
+    """A user phantom measured insert by insert (mean, recovery or spill-over per insert)."""
+
+    kind: Literal["inserts"]
+    reference_voi: CylinderVoi
+    insert_voi_fraction: float = Field(default=0.8, gt=0, le=1)
+
+
+Analysis = Annotated[Union[BodyImageQuality, SmallAnimalImageQuality, InsertsOnly], Field(discriminator="kind")]
 
 
 class Template(_Strict):
@@ -232,7 +264,7 @@ class Template(_Strict):
             if ins.inside is not None and ins.inside not in names:
                 raise ValueError(f"insert {ins.name}: inside names unknown insert {ins.inside!r}")
         a = self.analysis
-        for key in ("axis_insert", "lung_insert"):
+        for key in ("axis_insert", "lung_insert", "solid_section"):
             ref = getattr(a, key, None)
             if ref is not None and ref not in names:
                 raise ValueError(f"analysis.{key} names unknown insert {ref!r}; inserts: {', '.join(names)}")
@@ -241,6 +273,11 @@ class Template(_Strict):
                 raise ValueError("analysis kind body_image_quality needs a background ROI set")
             if not self.spheres:
                 raise ValueError("analysis kind body_image_quality needs inserts with role: sphere")
+        if a.kind == "small_animal_image_quality":
+            if not self.rods:
+                raise ValueError("analysis kind small_animal_image_quality needs inserts with role: rod")
+            if not self.chambers:
+                raise ValueError("analysis kind small_animal_image_quality needs inserts with role: chamber")
         return self
 
     # -------------------------------------------------------------------------- queries
@@ -258,10 +295,23 @@ class Template(_Strict):
         return sorted((i for i in self.inserts if i.role == "sphere"), key=lambda i: i.diameter_mm)
 
     @property
+    def rods(self) -> list[Insert]:
+        """Rod inserts, thinnest first."""
+        return sorted((i for i in self.inserts if i.role == "rod"), key=lambda i: i.diameter_mm)
+
+    @property
+    def chambers(self) -> list[Insert]:
+        return [i for i in self.inserts if i.role == "chamber"]
+
+    @property
     def roi_names(self) -> list[str]:
         names = [i.name for i in self.inserts]
         if self.background is not None:
             names.append("background")
+        if self.analysis.kind == "small_animal_image_quality":
+            names.append("uniform_region")
+        if self.analysis.kind == "inserts":
+            names.append("reference")
         return names
 
     def body_inside(self, points_mm: np.ndarray) -> np.ndarray:
@@ -411,6 +461,9 @@ def check_template(tpl: Template) -> list[str]:
     for idx, ins in enumerate(tpl.inserts):
         key = f"inserts[{idx}] ({ins.name})"
         pts = _insert_surface_points(ins)
+        # pull surface points 1 um inwards so a section exactly as wide as the body passes
+        centre = np.asarray(ins.centre_mm, float)
+        pts = centre + (pts - centre) * (1 - 1e-6 / max(ins.outer_diameter_mm, 1e-9))
         outside = ~tpl.body_inside(pts)
         if outside.any():
             worst = pts[outside][0]
@@ -449,6 +502,8 @@ def check_template(tpl: Template) -> list[str]:
                         f"{ins.name}, less than min_clearance_mm {bg.min_clearance_mm:g}"
                     )
     a = tpl.analysis
+    if a.kind == "small_animal_image_quality":
+        problems += _check_small_animal(tpl)
     if a.kind == "body_image_quality":
         if a.reference_background_diameter_mm not in (bg.diameters_mm if bg else []):
             problems.append(
@@ -459,6 +514,37 @@ def check_template(tpl: Template) -> list[str]:
             if bg is not None and s.diameter_mm not in bg.diameters_mm:
                 problems.append(f"background.diameters_mm: no {s.diameter_mm:g} mm size for {s.name} (NEMA NU 2 needs one per sphere)")
     return problems
+
+
+def _check_small_animal(tpl: Template) -> list[str]:
+    """VOIs of the NU 4 analysis lie in their regions (uniform VOI clear of the solid section
+    and the chambers, spill-over VOI inside each chamber, rod profile along the rods)."""
+    a = tpl.analysis
+    out: list[str] = []
+    u = a.uniform_voi
+    uz0, uz1 = u.centre_z_mm - u.length_mm / 2, u.centre_z_mm + u.length_mm / 2
+    z0, z1 = tpl.body.z_range_mm
+    r_body = tpl.body.diameter_mm / 2 if tpl.body.shape == "cylinder" else tpl.body.arc_radius_mm
+    if uz0 < z0 or uz1 > z1 or u.diameter_mm / 2 > r_body:
+        out.append("analysis.uniform_voi: extends outside the body")
+    solid = tpl.insert(a.solid_section)
+    sz0, sz1 = solid.centre_mm[2] - solid.length_mm / 2, solid.centre_mm[2] + solid.length_mm / 2
+    if uz0 < sz1 and uz1 > sz0:
+        out.append(f"analysis.uniform_voi: z {uz0:g}..{uz1:g} mm overlaps the solid section ({sz0:g}..{sz1:g} mm)")
+    for c in tpl.chambers:
+        half = c.length_mm / 2 + c.wall_mm
+        cz0, cz1 = c.centre_mm[2] - half, c.centre_mm[2] + half
+        radial = math.hypot(c.centre_mm[0], c.centre_mm[1]) - c.outer_diameter_mm / 2
+        if uz0 < cz1 and uz1 > cz0 and radial < u.diameter_mm / 2:
+            out.append(f"analysis.uniform_voi: overlaps chamber {c.name}")
+        if a.spillover_voi.diameter_mm > c.diameter_mm or a.spillover_voi.length_mm > c.length_mm:
+            out.append(f"analysis.spillover_voi: larger than chamber {c.name} ({c.diameter_mm:g} x {c.length_mm:g} mm)")
+    r0, r1 = a.rod_profile_z_mm
+    for r in tpl.rods:
+        rz0, rz1 = r.centre_mm[2] - r.length_mm / 2, r.centre_mm[2] + r.length_mm / 2
+        if r0 < rz0 or r1 > rz1 or r0 >= r1:
+            out.append(f"analysis.rod_profile_z_mm: {r0:g}..{r1:g} mm is not within {r.name} ({rz0:g}..{rz1:g} mm)")
+    return out
 
 
 def _insert_surface_points(ins: Insert, n: int = 24) -> np.ndarray:

@@ -43,6 +43,17 @@ def _fmt(v, nd=2) -> str:
 
 def print_sphere_table(analysis) -> None:
     """The terminal summary: one row per sphere, then background and insert."""
+    if not hasattr(analysis, "sphere_rows"):  # another phantom kind: its own table
+        cols, body = analysis.table()
+        t = Table(title=analysis.template.title, caption=CAUTION, caption_justify="left")
+        for c in cols:
+            t.add_column(c, no_wrap=True, justify="left" if c in ("ROI", "metric") else "right")
+        for row in body:
+            t.add_row(*row)
+        console.print(t)
+        for w in analysis.warnings:
+            console.print("[bold]WARNING[/bold]: " + escape(w))
+        return
     t = Table(title=f"{analysis.template.title}", caption=CAUTION, caption_justify="left")
     t.add_column("ROI", no_wrap=True, min_width=11)
     t.add_column("fill", no_wrap=True)
@@ -106,11 +117,11 @@ def synth_cmd(
     out: Path = typer.Argument(..., help="Output folder."),
     phantom: str = typer.Option("iec-body", "--phantom", help="Template name: iec-body, small-animal, or a user template."),
     fmt: str = typer.Option("dicom", "--format", help="dicom or nifti."),
-    voxel: float = typer.Option(2.0, "--voxel", help="Isotropic voxel size, mm."),
+    voxel: Optional[float] = typer.Option(None, "--voxel", help="Isotropic voxel size, mm (default 2; 0.5 for small-animal)."),
     matrix: Optional[str] = typer.Option(None, "--matrix", help="Grid size NX,NY,NZ (default: fits the phantom)."),
-    fwhm: float = typer.Option(6.0, "--fwhm", help="PSF FWHM, mm."),
+    fwhm: Optional[float] = typer.Option(None, "--fwhm", help="PSF FWHM, mm (default 6; 1.8 for small-animal)."),
     ratio: float = typer.Option(4.0, "--ratio", help="Hot insert : background concentration ratio."),
-    background: float = typer.Option(5.3, "--background", help="Background concentration at scan time, kBq/mL."),
+    background: Optional[float] = typer.Option(None, "--background", help="Background at scan time, kBq/mL (default 5.3; 150 for small-animal)."),
     noise: float = typer.Option(0.1, "--noise", help="Background voxel coefficient of variation (0 = off)."),
     cold: Optional[List[str]] = typer.Option(None, "--cold", help="Insert filled with water; repeatable."),
     shift: str = typer.Option("0,0,0", "--shift", help="Translation x,y,z, mm."),
@@ -119,7 +130,12 @@ def synth_cmd(
     seed: int = typer.Option(0, "--seed", help="Noise seed."),
 ) -> None:
     """Synthesise a phantom scan with known truth (image, fill.yaml, truth.json)."""
-    from ..synth import SynthSpec, synthesize, write_synthetic
+    from ..synth import SynthSpec, default_scan_settings, synthesize, write_synthetic
+
+    defaults = default_scan_settings(phantom)
+    voxel = defaults["voxel_mm"] if voxel is None else voxel
+    fwhm = defaults["psf_fwhm_mm"] if fwhm is None else fwhm
+    background = defaults["background_kbq_ml"] if background is None else background
 
     def vec(text: str, n: int, what: str, typ=float):
         try:
@@ -210,5 +226,5 @@ def templates_check(path: Path) -> None:
     problems = check_template(tpl)
     if problems:
         raise TemplateError(f"{path}: {len(problems)} problem(s): " + "; ".join(problems))
-    console.print(f"{path}: template {tpl.name} is valid ({len(tpl.inserts)} inserts, "
-                  f"{tpl.background.n_rois if tpl.background else 0} background ROI positions per size)", markup=False)
+    extra = f", {tpl.background.n_rois} background ROI positions per size" if tpl.background else ""
+    console.print(f"{path}: template {tpl.name} is valid ({len(tpl.inserts)} inserts{extra})", markup=False)
