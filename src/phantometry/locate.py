@@ -735,3 +735,163 @@ def _refine_cylinder_axis(volume: Volume, face: np.ndarray, d: np.ndarray, z_fro
     # back to a point on the new axis level with the old face
     c_face = c + ((face - c) @ new_d) * new_d
     return c_face, new_d / np.linalg.norm(new_d)
+
+
+# =============================================================================== generic
+def _template_value_at(template: Template, pts: np.ndarray, conc: dict[str, float], background: float) -> np.ndarray:
+    """Point samples of the expected concentration of a template at template-frame points."""
+    from .synth import _painting_order  # the same painting order as the synthesizer
+
+    val = np.where(template.body_inside(pts), background, 0.0)
+    for ins in _painting_order(template):
+        rel = pts - np.asarray(ins.centre_mm, float)
+        r_out = ins.outer_diameter_mm / 2
+        if ins.shape == "sphere":
+            dist = np.linalg.norm(rel, axis=-1)
+            in_outer, in_inner = dist <= r_out, dist <= ins.diameter_mm / 2
+        else:
+            ax = ins.axis_unit
+            t_ax = rel @ ax
+            radial = np.linalg.norm(rel - t_ax[..., None] * ax, axis=-1)
+            half = float(ins.length_mm) / 2
+            in_outer = (radial <= r_out) & (np.abs(t_ax) <= half + ins.wall_mm)
+            in_inner = (radial <= ins.diameter_mm / 2) & (np.abs(t_ax) <= half)
+        val = np.where(in_outer, 0.0, val)
+        val = np.where(in_inner, conc.get(ins.name, 0.0), val)
+    return val
+
+
+def locate_generic(
+    volume: Volume,
+    template: Template,
+    *,
+    concentrations: dict[str, float],
+    overrides: dict[str, np.ndarray] | None = None,
+    where: str | None = None,
+) -> Placement:
+    """Find a user-defined phantom (cylindrical or body-shaped, inserts anywhere).
+
+    Method (phantometry's own): body and axis as for the small-animal phantom (coarse slice
+    centroids, then a line through the centroids of the filled cross-sections on the full
+    image); the body centre along the axis from the two ends of the axial profile; then the
+    rotation about the axis and the lying direction by correlating the image with the
+    template's expected concentrations on a cylindrical grid (z, r, theta), by FFT along theta,
+    for both directions; finally each insert with enough signal is refined by a signed centroid
+    and a weighted Kabsch fit when at least three inserts qualify.
+
+    Parameters
+    ----------
+    concentrations : dict insert name -> expected Bq/mL (from the fill record).
+    """
+    where = where or (volume.source or "image")
+    overrides = {k: np.asarray(v, float) for k, v in (overrides or {}).items()}
+    for name in overrides:
+        template.insert(name)
+    body_t = template.body
+    body_r = body_t.diameter_mm / 2 if body_t.shape == "cylinder" else body_t.arc_radius_mm
+    target = max(float(np.min(np.abs(volume.spacing_mm))), min(6.0, 2 * body_r / 15))
+    body = find_body(volume, where, target)
+    rel = body.extent_mm / _template_extent(template)
+    if np.any(rel < 0.6) or np.any(rel > 1.6):
+        raise PhantomNotFound(size_mismatch_message(where, body.extent_mm, template))
+    bg = body.background
+    counts = body.mask.sum(axis=(1, 2))
+    use = counts >= max(3, 0.8 * counts.max())
+    jj, ii = np.meshgrid(np.arange(body.mask.shape[1]), np.arange(body.mask.shape[2]), indexing="ij")
+    cj = (body.mask * jj).sum(axis=(1, 2))[use] / counts[use]
+    ci = (body.mask * ii).sum(axis=(1, 2))[use] / counts[use]
+    pts = _coarse_to_world(volume, np.c_[np.nonzero(use)[0], cj, ci], body.factors)
+    centre = pts.mean(axis=0)
+    if len(pts) >= 3:
+        _, _, vt = np.linalg.svd(pts - centre, full_matrices=False)
+        d = vt[0] / np.linalg.norm(vt[0])
+    else:
+        d = volume.axes_world[0]
+    if d @ volume.axes_world[0] < 0:
+        d = -d
+    half_len = template.body_length_mm / 2
+    centre, d = _refine_cylinder_axis(volume, centre, d, -half_len + 5, half_len - 5, body_r, bg, where)
+    # body ends along the axis: centre the template there
+    step = max(0.25, float(np.min(np.abs(volume.spacing_mm))) / 2)
+    s = np.arange(-template.body_length_mm, template.body_length_mm + step / 2, step)
+    prof = _axial_profile(volume, centre, d, s, 0.5 * body_r)
+    high = np.nonzero(prof > 0.5 * bg)[0]
+    if len(high) == 0:
+        raise PhantomNotFound(f"{where}: no phantom body found along its axis")
+    centre = centre + 0.5 * (s[high[0]] + s[high[-1]]) * d
+    body_centre_t = template.body_centre_mm
+    # rotation and direction: correlation on a cylindrical grid
+    n_t = 180
+    theta = np.arange(n_t) * 2 * np.pi / n_t
+    radii = np.linspace(0.1 * body_r, 0.95 * body_r, 12)
+    zs = np.linspace(-half_len * 0.95, half_len * 0.95, 24)
+    u, v = _orthonormal_basis(d)
+    Z, R, T = np.meshgrid(zs, radii, theta, indexing="ij")
+    world = centre + Z[..., None] * d + (R * np.cos(T))[..., None] * u + (R * np.sin(T))[..., None] * v
+    img = np.nan_to_num(sample_world(volume, world), nan=0.0)
+    img = img - img.mean()
+    best = (-np.inf, 0.0, 1)
+    for hand in (1, -1):
+        # template point for grid (z, r, theta) with theta0 = 0: x = r cos(hand*theta), y = r sin(hand*theta), z = hand*z
+        tp = np.stack([R * np.cos(hand * T), R * np.sin(hand * T), hand * Z], axis=-1) + body_centre_t
+        model = _template_value_at(template, tp, concentrations, bg)
+        model = ndimage.gaussian_filter1d(model, 1.5, axis=2, mode="wrap")
+        model = model - model.mean()
+        corr = np.real(np.fft.ifft(np.fft.fft(img, axis=2) * np.conj(np.fft.fft(model, axis=2)), axis=2))
+        corr = (corr * R[..., :1]).sum(axis=(0, 1))
+        k = int(np.argmax(corr))
+        norm = np.linalg.norm(img * np.sqrt(R)) * np.linalg.norm(model * np.sqrt(R))
+        score = float(corr[k] / norm) if norm > 0 else 0.0
+        if score > best[0]:
+            y0, y1, y2 = corr[(k - 1) % n_t], corr[k], corr[(k + 1) % n_t]
+            den = y0 - 2 * y1 + y2
+            frac = 0.5 * (y0 - y2) / den if den < 0 else 0.0
+            best = (score, (k + frac) * 2 * np.pi / n_t, hand)
+    score, theta0, hand = best
+    if score < 0.3:
+        raise PhantomNotFound(f"{where}: the image does not match template {template.name} (match score {score:.2f} < 0.30)")
+    # image angle theta = theta0 + hand * template angle; z_world = hand * z_template
+    ex = math.cos(theta0) * u + math.sin(theta0) * v
+    ey = hand * (-math.sin(theta0) * u + math.cos(theta0) * v)
+    ez = hand * d
+    rot = np.column_stack([ex, ey, ez])
+    t = centre - rot @ body_centre_t
+    # refinement of insert centres, then a Kabsch fit when three or more inserts qualify
+    noise = max(body.noise_sd, 1e-6 * bg)
+    fits: dict[str, InsertFit] = {}
+    pairs = []
+    refined: dict[str, tuple[np.ndarray, float]] = {}
+    for ins in template.inserts:
+        contrast = concentrations.get(ins.name, 0.0) - bg
+        if ins.name in overrides or abs(contrast) < 0.2 * bg or ins.fill == "solid":
+            continue
+        pred = rot @ np.asarray(ins.centre_mm, float) + t
+        win = ins.diameter_mm / 2 + 0.5 * max(4.0, float(np.max(volume.spacing_mm)))
+        try:
+            c, signal = refine_centre(volume, pred, win, 1.0 if contrast > 0 else -1.0, bg)
+        except PhantomNotFound:
+            raise PhantomNotFound(f"{where}: {ins.name} would lie outside the image; is the phantom in the field of view?") from None
+        if ins.shape == "cylinder":  # only the position across the cylinder's axis is determined
+            ax_w = rot @ ins.axis_unit
+            c = pred + (c - pred) - ((c - pred) @ ax_w) * ax_w
+        n_vox = 4 / 3 * math.pi * win**3 / (volume.voxel_volume_ml * 1000.0)
+        snr = signal / (noise * math.sqrt(max(n_vox, 1.0)))
+        refined[ins.name] = (c, snr)
+        if snr > 5 and np.linalg.norm(c - pred) < ins.diameter_mm / 2 + 6:
+            pairs.append((np.asarray(ins.centre_mm, float), c, ins.diameter_mm**2 * min(snr, 50.0)))
+    if len(pairs) >= 3:
+        rot_k, t_k = kabsch(np.array([p for p, _, _ in pairs]), np.array([q for _, q, _ in pairs]), np.array([w for *_, w in pairs]))
+        # accept the fit only if it keeps the axis (cylinder inserts constrain no axial shift)
+        if abs(float(rot_k[:, 2] @ rot[:, 2])) > 0.995:
+            shift_along = ((t_k - t) @ rot[:, 2]) * rot[:, 2]
+            rot, t = rot_k, t_k - shift_along
+    for ins in template.inserts:
+        pred = rot @ np.asarray(ins.centre_mm, float) + t
+        if ins.name in overrides:
+            fits[ins.name] = InsertFit(ins.name, overrides[ins.name], None, None, None, "override")
+        elif ins.name in refined:
+            c, snr = refined[ins.name]
+            fits[ins.name] = InsertFit(ins.name, pred, c, float(np.linalg.norm(c - pred)), snr, "fit")
+        else:
+            fits[ins.name] = InsertFit(ins.name, pred, None, None, None, "template")
+    return Placement(template, rot, t, bg, body.noise_sd, fits, score, [])
