@@ -1,1 +1,64 @@
-"""Trend ledger: analyses and measurements across sessions (SQLAlchemy; SQLite or PostgreSQL)."""
+"""Trend ledger: analyses and measurements across sessions (SQLAlchemy; SQLite or PostgreSQL).
+
+Monthly QC is about change over time: one scanner's numbers against its own history and its
+limits. :class:`Ledger` records analyses (``phantometry measure --record``, ``ledger add``),
+lists and filters them, trends one metric with control limits from a baseline and the drift
+rules of :mod:`phantometry.ledger.rules`, and exports/imports long-format CSV for a lab
+database. The store is SQLite by default (a file in the user data directory) or any
+SQLAlchemy URL (``--db URL`` / ``$PHANTOMETRY_DB``), PostgreSQL being the shared option.
+No patient identity is ever stored.
+"""
+
+from ..errors import LedgerError
+from .rules import RULES, ControlLimits, Flag, control_limits, drift_flags
+from .schema import DB_ENV, default_url, head_revision
+from .store import (
+    LEDGER_CSV_COLUMNS,
+    UNTRENDED_UNITS,
+    AnalysisInfo,
+    BaselineInfo,
+    CheckResult,
+    ExportReport,
+    ImportReport,
+    Ledger,
+    RecordResult,
+    ScannerInfo,
+    Trend,
+    TrendFlag,
+    TrendPoint,
+    analysis_verdict,
+    default_protocol_label,
+    default_scanner_label,
+    default_site_label,
+    settings_hash,
+)
+
+__all__ = [
+    "DB_ENV",
+    "LEDGER_CSV_COLUMNS",
+    "RULES",
+    "UNTRENDED_UNITS",
+    "AnalysisInfo",
+    "BaselineInfo",
+    "CheckResult",
+    "ControlLimits",
+    "ExportReport",
+    "Flag",
+    "ImportReport",
+    "Ledger",
+    "LedgerError",
+    "RecordResult",
+    "ScannerInfo",
+    "Trend",
+    "TrendFlag",
+    "TrendPoint",
+    "analysis_verdict",
+    "control_limits",
+    "default_protocol_label",
+    "default_scanner_label",
+    "default_site_label",
+    "default_url",
+    "drift_flags",
+    "head_revision",
+    "settings_hash",
+]

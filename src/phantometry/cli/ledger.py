@@ -1,0 +1,307 @@
+"""``phantometry ledger ...``: the trend ledger commands (thin wiring over phantometry.ledger.Ledger).
+
+Every command takes ``--db URL`` (or ``$PHANTOMETRY_DB``; default a SQLite file in the user
+data directory). Times given on the command line are ISO 8601: a date (``2026-11-03``, read
+as UTC; as an end bound it covers that whole day) or a date and time with an offset.
+"""
+
+from __future__ import annotations
+
+import sys
+from datetime import datetime, time, timedelta, timezone
+from pathlib import Path
+from typing import List, Optional
+
+import typer
+from rich.console import Console
+from rich.markup import escape
+from rich.table import Table
+
+from ..errors import InputError, LedgerError
+from ..results import CAUTION
+from . import app
+
+ledger_app = typer.Typer(
+    no_args_is_help=True,
+    help="Trend ledger: record analyses, list them, trend one metric with control limits, "
+    "baselines, drift checks, CSV export/import. --db URL or $PHANTOMETRY_DB selects the store.",
+)
+app.add_typer(ledger_app, name="ledger")
+
+
+
+class _Console:
+    """Rich output at the terminal's width, or 200 columns when piped (no folded tables in files)."""
+
+    def print(self, *args, **kwargs) -> None:
+        Console(highlight=False, width=None if sys.stdout.isatty() else 200).print(*args, **kwargs)
+
+
+console = _Console()
+
+DB_HELP = "Ledger database: SQLAlchemy URL (sqlite:///..., postgresql+psycopg://...) or a file path. Default: $PHANTOMETRY_DB, else ledger.sqlite3 in the user data folder."
+
+
+def _db_option():
+    return typer.Option(None, "--db", envvar="PHANTOMETRY_DB", help=DB_HELP, show_envvar=True)
+
+
+def parse_cli_time(text: Optional[str], option: str, *, end_of_day: bool = False) -> Optional[datetime]:
+    """An aware datetime from ``YYYY-MM-DD`` (UTC) or ISO 8601 with an offset; None passes."""
+    if text is None:
+        return None
+    text = text.strip()
+    try:
+        if len(text) == 10:
+            d = datetime.fromisoformat(text).date()
+            t = datetime.combine(d, time(0, 0), tzinfo=timezone.utc)
+            return t + timedelta(days=1) - timedelta(microseconds=1) if end_of_day else t
+        t = datetime.fromisoformat(text)
+    except ValueError:
+        raise InputError(f"{option} {text!r}: expected a date 2026-11-03 or a time 2026-11-03T10:30:00+01:00") from None
+    if t.tzinfo is None:
+        raise InputError(f"{option} {text!r}: give a time-zone offset, e.g. +01:00 (or just a date, read as UTC)")
+    return t
+
+
+def _open(db: Optional[str]):
+    from ..ledger import Ledger
+
+    return Ledger(db)
+
+
+def _when(t: Optional[datetime]) -> str:
+    return t.astimezone(timezone.utc).strftime("%Y-%m-%d %H:%M") if t else "-"
+
+
+def _num(v, nd: int = 4) -> str:
+    if v is None:
+        return "-"
+    return f"{float(v):.{nd}g}"
+
+
+def _pick_scanner(ledger, scanner: Optional[str], site: Optional[str]) -> str:
+    if scanner:
+        return scanner
+    known = [s for s in ledger.scanners() if site is None or s.site == site]
+    if len(known) == 1:
+        return known[0].name
+    names = ", ".join(sorted({s.name for s in known})) or "(none recorded yet)"
+    raise LedgerError(f"ledger {ledger.display_url}: give --scanner; scanners: {names}")
+
+
+def record_after_measure(analysis, db: Optional[str], *, site: Optional[str], scanner: Optional[str],
+                         protocol: Optional[str], replace: bool) -> None:
+    """What ``phantometry measure --record`` runs once the result folder is written."""
+    with _open(db) as ledger:
+        rec = ledger.record_analysis(analysis, site=site, scanner=scanner, protocol=protocol, replace=replace)
+        console.print(
+            f"{'replaced' if rec.replaced else 'recorded'} analysis #{rec.analysis_id} ({rec.site} / {rec.scanner} / "
+            f"{rec.protocol}, {rec.n_measurements} measurements) in {ledger.display_url}",
+            markup=False,
+        )
+
+
+@ledger_app.command("add")
+def add_cmd(
+    paths: List[Path] = typer.Argument(..., help="Result folder(s) of phantometry measure, or their measurements.json."),
+    site: Optional[str] = typer.Option(None, "--site", help="Site label (default: the fill record's site)."),
+    scanner: Optional[str] = typer.Option(None, "--scanner", help="Scanner label (default: station name from the headers)."),
+    protocol: Optional[str] = typer.Option(None, "--protocol", help="Protocol label (default: the reconstruction settings)."),
+    replace: bool = typer.Option(False, "--replace", help="Replace an analysis of the same series + template + settings."),
+    db: Optional[str] = _db_option(),
+) -> None:
+    """Record analyses from result folders into the ledger."""
+    with _open(db) as ledger:
+        for p in paths:
+            rec = ledger.add_from_result_dir(p, site=site, scanner=scanner, protocol=protocol, replace=replace)
+            console.print(
+                f"{'replaced' if rec.replaced else 'recorded'} analysis #{rec.analysis_id} from {p} "
+                f"({rec.site} / {rec.scanner} / {rec.protocol}, {rec.n_measurements} measurements)",
+                markup=False,
+            )
+
+
+@ledger_app.command("list")
+def list_cmd(
+    site: Optional[str] = typer.Option(None, "--site"),
+    scanner: Optional[str] = typer.Option(None, "--scanner"),
+    protocol: Optional[str] = typer.Option(None, "--protocol"),
+    template: Optional[str] = typer.Option(None, "--template"),
+    since: Optional[str] = typer.Option(None, "--since", help="Acquired on or after (date or ISO time)."),
+    until: Optional[str] = typer.Option(None, "--until", help="Acquired on or before (a date covers the whole day)."),
+    verdict: Optional[str] = typer.Option(None, "--verdict", help="fail, pass, n/a or none (worst verdict of the analysis)."),
+    limit: Optional[int] = typer.Option(None, "--limit", help="Only the most recent N."),
+    db: Optional[str] = _db_option(),
+) -> None:
+    """List recorded analyses (acquisition order), filtered."""
+    with _open(db) as ledger:
+        rows = ledger.analyses(
+            site=site, scanner=scanner, protocol=protocol, template=template,
+            since=parse_cli_time(since, "--since"), until=parse_cli_time(until, "--until", end_of_day=True),
+            verdict=verdict, limit=limit,
+        )
+        t = Table(title=f"{len(rows)} analyses in {escape(ledger.display_url)}")
+        for col in ("id", "acquired (UTC)", "site", "scanner", "protocol", "template", "verdict", "series UID", "recorded (UTC)"):
+            t.add_column(col, overflow="fold")
+        for a in rows:
+            uid = a.series_uid or "-"
+            t.add_row(str(a.id), _when(a.acquired_at), escape(a.site), escape(a.scanner), escape(a.protocol), escape(a.template),
+                      a.verdict or "-", escape(uid if len(uid) <= 24 else "..." + uid[-21:]), _when(a.recorded_at))
+        console.print(t)
+
+
+@ledger_app.command("trend")
+def trend_cmd(
+    roi: str = typer.Argument(..., help="ROI, e.g. sphere_10mm."),
+    metric: str = typer.Argument(..., help="Metric, e.g. rc_max."),
+    scanner: Optional[str] = typer.Option(None, "--scanner", help="Scanner label (may be left out when there is one)."),
+    protocol: Optional[str] = typer.Option(None, "--protocol", help="Protocol label (may be left out when the scanner has one)."),
+    site: Optional[str] = typer.Option(None, "--site"),
+    since: Optional[str] = typer.Option(None, "--since"),
+    until: Optional[str] = typer.Option(None, "--until"),
+    chart: Optional[Path] = typer.Option(None, "--chart", help="Write the control chart PNG here."),
+    db: Optional[str] = _db_option(),
+) -> None:
+    """Trend one metric of one ROI for one scanner and protocol: table, control limits, drift flags, chart."""
+    with _open(db) as ledger:
+        tr = ledger.trend(
+            _pick_scanner(ledger, scanner, site), protocol, roi, metric, site=site,
+            since=parse_cli_time(since, "--since"), until=parse_cli_time(until, "--until", end_of_day=True),
+        )
+    lim = tr.limits
+    caption = CAUTION
+    title = f"{tr.scanner} ({tr.site}) / {tr.protocol}: {tr.roi} {tr.metric} [{tr.unit}]"
+    t = Table(title=escape(title), caption=caption, caption_justify="left")
+    for col, just in (("id", "right"), ("acquired (UTC)", "left"), ("value", "right"), ("uncert.", "right"),
+                      ("band", "left"), ("verdict", "left"), ("baseline", "left"), ("flags", "left")):
+        t.add_column(col, justify=just, overflow="fold")
+    for p in tr.points:
+        band = "-" if p.band_low is None and p.band_high is None else f"{_num(p.band_low)}..{_num(p.band_high)}"
+        flags = "; ".join(f.description for f in tr.flags_at(p.analysis_id))
+        t.add_row(str(p.analysis_id), _when(p.acquired_at), _num(p.value, 5), _num(p.uncertainty, 3), band, p.verdict or "-",
+                  "yes" if p.in_baseline else "", escape(flags))
+    console.print(t)
+    if lim is not None:
+        console.print(
+            f"limits from {lim.source}: mean {_num(lim.mean, 5)}, sigma {_num(lim.sigma, 3)} (n = {lim.n}); "
+            f"warning {_num(lim.warning_low, 5)}..{_num(lim.warning_high, 5)}, action {_num(lim.action_low, 5)}..{_num(lim.action_high, 5)}",
+            markup=False,
+        )
+    for note in tr.notes:
+        console.print(f"note: {note}", markup=False)
+    console.print(f"{len(tr.flags)} drift flag(s)" if tr.flags else "no drift flags", markup=False)
+    if chart is not None:
+        console.print(f"wrote {tr.chart(chart)}", markup=False)
+
+
+@ledger_app.command("baseline")
+def baseline_cmd(
+    scanner: Optional[str] = typer.Option(None, "--scanner"),
+    protocol: Optional[str] = typer.Option(None, "--protocol"),
+    site: Optional[str] = typer.Option(None, "--site"),
+    ids: Optional[str] = typer.Option(None, "--ids", help="Analysis ids, comma-separated (see ledger list)."),
+    date_from: Optional[str] = typer.Option(None, "--from", help="First acquisition date/time of the baseline."),
+    date_to: Optional[str] = typer.Option(None, "--to", help="Last acquisition date/time (a date covers the whole day)."),
+    note: Optional[str] = typer.Option(None, "--note", help="Why this baseline (e.g. after acceptance testing)."),
+    db: Optional[str] = _db_option(),
+) -> None:
+    """Set the baseline (analyses or a date range) that control limits come from; without a selection, show it."""
+    id_list = None
+    if ids is not None:
+        try:
+            id_list = [int(v) for v in ids.replace(" ", "").split(",") if v]
+        except ValueError:
+            raise InputError(f"--ids {ids!r}: expected comma-separated analysis ids, e.g. 3,4,5") from None
+    with _open(db) as ledger:
+        name = _pick_scanner(ledger, scanner, site)
+        if id_list is None and date_from is None and date_to is None:
+            b = ledger.baseline(name, protocol, site=site)
+            if b is None:
+                console.print(f"no baseline set for {name}; set one with --ids or --from/--to", markup=False)
+                return
+        else:
+            b = ledger.set_baseline(
+                name, protocol, analysis_ids=id_list, site=site, note=note,
+                since=parse_cli_time(date_from, "--from"), until=parse_cli_time(date_to, "--to", end_of_day=True),
+            )
+    console.print(
+        f"baseline #{b.id} of {b.scanner} ({b.site}) / {b.protocol}: {len(b.analysis_ids)} analyses acquired "
+        f"{_when(b.first_acquired_at)} .. {_when(b.last_acquired_at)} UTC (set {_when(b.created_at)})"
+        + (f"; note: {b.note}" if b.note else ""),
+        markup=False,
+    )
+
+
+@ledger_app.command("check")
+def check_cmd(
+    site: Optional[str] = typer.Option(None, "--site"),
+    scanner: Optional[str] = typer.Option(None, "--scanner"),
+    protocol: Optional[str] = typer.Option(None, "--protocol"),
+    since: Optional[str] = typer.Option(None, "--since", help="Report only flags at points acquired since then."),
+    all_metrics: bool = typer.Option(False, "--all-metrics", help="Also check positions (mm) and absolute concentrations (Bq/mL)."),
+    strict: bool = typer.Option(False, "--strict", help="Exit code 1 when any flag is found (scripted QC)."),
+    db: Optional[str] = _db_option(),
+) -> None:
+    """Run the drift rules on every metric of every scanner and protocol."""
+    with _open(db) as ledger:
+        results = ledger.check(site=site, scanner=scanner, protocol=protocol, since=parse_cli_time(since, "--since"), all_metrics=all_metrics)
+    flagged = [r for r in results if r.flags]
+    if flagged:
+        t = Table(title="drift flags", caption=CAUTION, caption_justify="left")
+        for col in ("scanner", "protocol", "roi", "metric", "acquired (UTC)", "value", "rule"):
+            t.add_column(col, overflow="fold")
+        for r in flagged:
+            for f in r.flags:
+                t.add_row(escape(f"{r.scanner} ({r.site})"), escape(r.protocol), r.roi, r.metric, _when(f.acquired_at), _num(f.value, 5), escape(f.description))
+        console.print(t)
+    n_flags = sum(len(r.flags) for r in flagged)
+    console.print(f"{n_flags} drift flag(s) in {len(flagged)} of {len(results)} metric series checked", markup=False)
+    if strict and n_flags:
+        raise SystemExit(1)  # (typer.Exit is swallowed by click's non-standalone mode in cli.main)
+
+
+@ledger_app.command("export")
+def export_cmd(
+    out: Path = typer.Argument(..., help="CSV file to write (long format, one row per measurement)."),
+    since: Optional[str] = typer.Option(None, "--since", help="Only analyses recorded since then (incremental export)."),
+    db: Optional[str] = _db_option(),
+) -> None:
+    """Export measurements as CSV for a lab database (stable columns; see the README)."""
+    with _open(db) as ledger:
+        rep = ledger.export_csv(out, since=parse_cli_time(since, "--since"))
+    console.print(f"wrote {rep.rows} rows of {rep.analyses} analyses to {rep.path}; next incremental export: --since {rep.started_at.isoformat()}", markup=False)
+
+
+@ledger_app.command("import")
+def import_cmd(
+    path: Path = typer.Argument(..., help="CSV written by phantometry ledger export."),
+    replace: bool = typer.Option(False, "--replace", help="Replace analyses of the same series + template + settings."),
+    db: Optional[str] = _db_option(),
+) -> None:
+    """Import a ledger CSV (analyses already present are skipped)."""
+    with _open(db) as ledger:
+        rep = ledger.import_csv(path, replace=replace)
+    console.print(f"imported {rep.added} analyses ({rep.rows} rows read), replaced {rep.replaced}, skipped {rep.skipped} already present", markup=False)
+
+
+@ledger_app.command("info")
+def info_cmd(db: Optional[str] = _db_option()) -> None:
+    """Show the store (URL without password), its schema revision and counts."""
+    with _open(db) as ledger:
+        info = ledger.info()
+        scanners = ledger.scanners()
+    for k, v in info.items():
+        console.print(f"{k:<13} {v}", markup=False)
+    for s in scanners:
+        protos = "; ".join(f"{p} ({n})" for p, n in s.protocols.items()) or "no analyses"
+        console.print(f"scanner       {s.name} ({s.site}): {protos}", markup=False)
+
+
+@ledger_app.command("remove")
+def remove_cmd(analysis_id: int = typer.Argument(..., help="Analysis id (see ledger list)."), db: Optional[str] = _db_option()) -> None:
+    """Remove one analysis and its measurements."""
+    with _open(db) as ledger:
+        if not ledger.remove(analysis_id):
+            raise LedgerError(f"ledger {ledger.display_url}: no analysis #{analysis_id}; see phantometry ledger list")
+    console.print(f"removed analysis #{analysis_id}", markup=False)
