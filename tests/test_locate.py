@@ -87,3 +87,13 @@ def test_empty_image_is_refused():
 
     with pytest.raises(PhantomNotFound, match="empty"):
         locate(Volume(np.zeros((10, 10, 10), np.float32), np.eye(4)), TPL)
+
+
+def test_ten_to_one_fill_with_strong_noise():
+    # EANM harmonisation fill (10:1, 2 kBq/mL background; Boellaard et al. 2015): hot spheres
+    # must not be mistaken for the body
+    for seed in range(2):
+        res = synthesize(SynthSpec(voxel_mm=(4, 4, 4), sphere_ratio=10, background_kbq_ml=2.0, noise_cv=0.2, seed=seed, rotation_deg=(0, 0, 70 * seed)))
+        pl = locate(res.volume, TPL, activity_ratio={s.name: 10.0 for s in TPL.spheres})
+        assert max(_sphere_errors(res, pl)) < 1.0
+        assert pl.background_estimate_bq_ml == pytest.approx(2000, rel=0.05)

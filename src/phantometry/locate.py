@@ -191,7 +191,7 @@ def find_body(volume: Volume, where: str, target_mm: float = 6.0) -> _Body:
     if vals.size == 0 or float(np.max(vals)) <= 0:
         raise PhantomNotFound(f"{where}: the image is empty (no positive voxels); is this the right series?")
     try:
-        otsu = float(threshold_otsu(vals[vals > 0]))
+        otsu = float(threshold_otsu(vals))  # air included: the split is air | phantom, not background | hot inserts
     except ValueError:
         raise PhantomNotFound(f"{where}: the image has no contrast between air and phantom") from None
     above = coarse > otsu

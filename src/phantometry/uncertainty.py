@@ -1,0 +1,886 @@
+"""Standard uncertainties of the phantom metrics, estimated from the image's own noise.
+
+Method (documented in the README, "Uncertainties")
+-------------------------------------------------
+1. **Noise autocovariance.** Reconstructed PET noise is spatially correlated, so an ROI of
+   ``n`` voxels holds far fewer than ``n`` independent samples. :func:`estimate_noise` takes
+   the voxels of the uniform background inside the body, in a slab of up to +- 50 mm about
+   the background planes (at most 400 000 voxels in its box), at least ``clearance_mm`` (default: the template's NU 2 ROI clearance,
+   15 mm) from the body edge and from every insert. It removes a smooth trend (a
+   least-squares quadratic polynomial, so slow non-uniformity is not taken for noise) and
+   estimates the 3-D autocovariance ``C(tau)`` of the rest by FFT, as the masked estimator
+   ``C(tau) = sum_x m(x) m(x+tau) e(x) e(x+tau) / sum_x m(x) m(x+tau)``
+   (``m`` the background mask, ``e`` the detrended values; both correlations by FFT with zero
+   padding). Lags are kept inside the ellipsoid reaching one lag beyond the first where the
+   correlation along each array axis falls below 0.05 (at most 30 mm); beyond, ``C = 0``
+   (the far lags hold mostly estimation noise).
+2. **Level law.** Noise grows with the local activity: the variance at level ``L`` is
+   ``sigma_b^2 (L / b)^p`` with ``sigma_b^2 = C(0)`` and ``b`` the background level; ``p = 1``
+   by default (Poisson-like variance proportional to the mean, common practice; iterative
+   reconstructions can come closer to ``p = 2``, a constant coefficient of variation,
+   Barrett et al., Phys Med Biol 1994;39:833-846, recalled: set ``variance_power``).
+3. **ROI means** (disc ROIs of percent contrast, background and insert): a weighted mean
+   ``sum_x w_x v_x / sum_x w_x`` has variance ``sum_x a_x (C * a)_x (L_x / b)^p`` with
+   ``a = w / sum w`` and ``C * a`` the convolution with the autocovariance (FFT); for a
+   uniform level this is ``sum_tau C(tau) (a * a)(tau)`` with ``(a * a)`` the
+   autocorrelation of ``a``. (The level factor of two nearby voxels, ``sqrt(L_x L_y)``, is
+   taken as their mean, which for ``p = 1`` makes the form linear in the image, so the noisy
+   image is an unbiased level.) The *effective number of independent samples* of an ROI is
+   ``N_eff = (sum w)^2 / sum_tau rho(tau) (w * w)(tau)`` with ``rho = C / C(0)``. Disc ROIs
+   on resampled planes are first spread back onto the voxels they interpolate (the
+   trilinear weights of every plane node), so interpolation is accounted for exactly. The
+   K background ROIs of one size are combined into one weight field, so their overlaps and
+   correlations, within a plane and across the 10 mm slices, are included. In the cold
+   low-density insert the level changes by orders of magnitude within a few voxels, so there
+   the noise-free spill-in of the blurred cold cylinder at the fitted effective resolution,
+   ``b (1 - g(rho))`` (:func:`_cylinder_level`), is the level, with the exact ``s_x s_y``.
+4. **Propagation.** First-order propagation of the ROI-mean variances (JCGM 100:2008, the
+   GUM, law of propagation of uncertainty), the sphere ROI, the background ROIs and the
+   insert ROI being independent (at least 15 mm apart, beyond the noise correlation):
+   ``Q_H``, ``Q_C``, lung residual and activity recovery follow from their formulas
+   (:func:`u_percent_contrast_hot` ...). The fill record's own uncertainty (dose calibrator,
+   volumes) is *not* included: these are noise-only uncertainties.
+5. **Background variability** ``N = SD / C_B x 100``: the standard error of a sample SD of
+   K independent normal values, ``SD / sqrt(2 (K - 1))`` (common practice; large-sample
+   normal theory), propagated with ``u(C_B)``.
+6. **RC max, RC mean, RC peak** are found by *searching* the image (the hottest voxel, the
+   isocontour VOI whose threshold is set by that hottest voxel, the best-placed 1 mL
+   sphere): extreme-value statistics whose spread linear propagation misses (it
+   underestimated RC mean by 20-50 % in our Monte Carlo check, because the threshold moves
+   with the noise). Their uncertainty is propagated by Monte Carlo instead (JCGM 101:2008,
+   GUM Supplement 1): :data:`BOOTSTRAP_DRAWS` noise fields with the estimated
+   autocovariance and level law are added to the fitted noise-free blurred-sphere image
+   (:mod:`phantometry.metrics.resolution`), the three searches are repeated on each draw,
+   and the SD over the draws is the standard uncertainty (:func:`bootstrap_search_sd`;
+   a fixed seed per sphere makes results reproducible).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import TYPE_CHECKING, Any, Sequence
+
+import numpy as np
+from scipy import fft as sfft
+from scipy import ndimage
+
+from .errors import PhantomNotFound
+from .volume import Volume
+
+if TYPE_CHECKING:  # pragma: no cover
+    from .locate import Placement
+    from .rois import PlaneImage
+    from .templates import Template
+
+__all__ = [
+    "NoiseModel",
+    "estimate_noise",
+    "background_mask",
+    "masked_autocovariance",
+    "plane_voxel_weights",
+    "level_map",
+    "sd_standard_error",
+    "u_percent_contrast_hot",
+    "u_percent_contrast_cold",
+    "u_ratio",
+    "u_background_variability",
+    "simulate_noise",
+    "bootstrap_search_sd",
+    "body_uncertainties",
+    "discs_variance",
+    "weights_variance",
+]
+
+#: SD (voxels) of a Gaussian smoothing the image into the level map of the level law (0: none;
+#: smoothing mixes hot edges into cold ROIs and lowers hot peaks, and a noisy level is unbiased).
+LEVEL_SMOOTH_VOXELS = 0.0
+#: Noise draws of the RC max / mean / peak simulation (its SD known to about 1/sqrt(2 n), 7 %).
+BOOTSTRAP_DRAWS = 100
+#: Largest lag (mm) of the autocovariance kept.
+MAX_LAG_MM = 30.0
+#: Correlation below which the autocovariance is taken to have ended (along an axis): the
+#: window keeps one lag more. Estimates of single lags scatter by about 0.01-0.02.
+CORRELATION_FLOOR = 0.05
+
+
+# =========================================================================== noise model
+@dataclass
+class NoiseModel:
+    """Estimated noise of an image: autocovariance in the background and its level law.
+
+    Attributes
+    ----------
+    autocov_bq2_ml2 : ndarray, shape (2 Lk + 1, 2 Lj + 1, 2 Li + 1)
+        ``C(tau)`` at array-order voxel lags ``tau = (dk, dj, di)``, centre = lag 0, (Bq/mL)^2.
+    variance_bq2_ml2 : float
+        ``C(0)``: the background voxel variance, (Bq/mL)^2.
+    background_bq_ml : float
+        Mean of the background voxels used, Bq/mL (the level ``b`` of the level law).
+    n_voxels : int
+        Background voxels used.
+    spacing_mm : (dz, dy, dx)
+    variance_power : float
+        ``p`` of ``var(L) = C(0) (L / b)^p``.
+    """
+
+    autocov_bq2_ml2: np.ndarray
+    variance_bq2_ml2: float
+    background_bq_ml: float
+    n_voxels: int
+    spacing_mm: tuple[float, float, float]
+    variance_power: float = 1.0
+
+    @property
+    def half_lags(self) -> tuple[int, int, int]:
+        return tuple(int(n // 2) for n in self.autocov_bq2_ml2.shape)  # type: ignore[return-value]
+
+    @property
+    def correlation(self) -> np.ndarray:
+        """``rho(tau) = C(tau) / C(0)`` (dimensionless); zeros for a noise-free image."""
+        if self.variance_bq2_ml2 <= 0:
+            out = np.zeros_like(self.autocov_bq2_ml2)
+            out[self.half_lags] = 1.0
+            return out
+        return self.autocov_bq2_ml2 / self.variance_bq2_ml2
+
+    @property
+    def correlation_volume_voxels(self) -> float:
+        """``sum_tau rho(tau)``: voxels per independent sample in a large uniform ROI."""
+        return float(max(1.0, self.correlation.sum()))
+
+    @property
+    def sd_bq_ml(self) -> float:
+        return math.sqrt(max(self.variance_bq2_ml2, 0.0))
+
+    def sd_at(self, level_bq_ml: np.ndarray | float) -> np.ndarray:
+        """Noise SD (Bq/mL) at activity level(s) ``L``: ``sigma_b (L / b)^(p/2)``, at least 5 % of ``sigma_b``.
+
+        The floor keeps residual weights finite in cold regions (used by the resolution fit).
+        """
+        return self.sd_bq_ml * np.maximum(self.scale_at(level_bq_ml), 0.05)
+
+    def scale_at(self, level_bq_ml: np.ndarray | float) -> np.ndarray:
+        """``(L / b)^(p/2)``: noise SD at level L relative to the background's (no floor below 0)."""
+        rel = np.clip(np.asarray(level_bq_ml, float) / max(self.background_bq_ml, 1e-12), 0.0, None)
+        return rel ** (0.5 * self.variance_power)
+
+    # ------------------------------------------------------------------ quadratic forms
+    def quadratic_form(self, a: np.ndarray, *, correlation: bool = False) -> float:
+        """``sum_{x,y} a_x a_y C(x - y)`` for a coefficient array ``a`` on a box of the grid.
+
+        Computed as ``sum_tau C(tau) (a * a)(tau)`` with the autocorrelation of ``a`` by FFT
+        (zero padded by the lag window). ``correlation=True`` uses ``rho`` instead of ``C``.
+        """
+        a = np.asarray(a, float)
+        kern = self.correlation if correlation else self.autocov_bq2_ml2
+        L = np.array(self.half_lags)
+        shape = np.array(a.shape)
+        size = [sfft.next_fast_len(int(n + l), real=True) for n, l in zip(shape, L)]
+        fa = sfft.rfftn(a, size)
+        acf = sfft.irfftn(fa * np.conj(fa), size)
+        # lags -L..L (wrap-around indexing), in the window's order
+        idx = [np.r_[np.arange(-l, 0) % s, np.arange(0, l + 1)] for l, s in zip(L, size)]
+        win = acf[np.ix_(*idx)]
+        # lags beyond the box size are zero in acf only if size >= n + l (true by construction)
+        return float(np.sum(win * kern))
+
+    def quadratic_form_flat(self, g: np.ndarray, flat: np.ndarray, shape: tuple[int, int, int], *, correlation: bool = True) -> float:
+        """:meth:`quadratic_form` of values ``g`` at flat voxel indices ``flat`` of a grid ``shape``."""
+        kji = np.array(np.unravel_index(np.asarray(flat), shape))
+        lo = kji.min(axis=1)
+        hi = kji.max(axis=1)
+        box = np.zeros(tuple(hi - lo + 1))
+        np.add.at(box, tuple(kji - lo[:, None]), np.asarray(g, float))
+        return self.quadratic_form(box, correlation=correlation)
+
+    def weighted_mean_variance(self, weights: np.ndarray, level: np.ndarray | None = None) -> float:
+        """Variance (Bq/mL)^2 of ``sum w v / sum w`` for weights on a box (level: same box, Bq/mL)."""
+        w = np.asarray(weights, float)
+        total = float(w.sum())
+        if total <= 0:
+            raise PhantomNotFound("uncertainty: ROI has no weight; check the ROI position")
+        a = w / total
+        if level is not None:
+            a = a * self.scale_at(level)
+        return max(self.quadratic_form(a), 0.0)
+
+    def effective_samples(self, weights: np.ndarray) -> float:
+        """Effective number of independent samples ``(sum w)^2 / sum_tau rho (w * w)`` of an ROI."""
+        w = np.asarray(weights, float)
+        q = self.quadratic_form(w, correlation=True)
+        return float(w.sum() ** 2 / q) if q > 0 else float("inf")
+
+    def correlation_fwhm_mm(self) -> tuple[float, float, float]:
+        """Full width at half maximum of ``rho`` along the array axes (z, y, x), mm (linear interpolation)."""
+        rho = self.correlation
+        c = self.half_lags
+        out = []
+        for axis in range(3):
+            sl = [c[0], c[1], c[2]]
+            sl[axis] = slice(None)
+            prof = rho[tuple(sl)][c[axis]:]
+            below = np.flatnonzero(prof < 0.5)
+            if below.size == 0:
+                out.append(float("nan"))
+                continue
+            i = int(below[0])
+            x = (i - 1) + (prof[i - 1] - 0.5) / (prof[i - 1] - prof[i]) if i > 0 else 0.0
+            out.append(2.0 * x * self.spacing_mm[axis])
+        return tuple(out)  # type: ignore[return-value]
+
+    def as_dict(self) -> dict[str, Any]:
+        fw = self.correlation_fwhm_mm()
+        return {
+            "method": "masked FFT autocovariance of detrended background voxels",
+            "background_bq_ml": round(self.background_bq_ml, 3),
+            "voxel_sd_bq_ml": round(self.sd_bq_ml, 4),
+            "voxel_cv_pct": round(100 * self.sd_bq_ml / self.background_bq_ml, 3) if self.background_bq_ml > 0 else None,
+            "correlation_volume_voxels": round(self.correlation_volume_voxels, 3),
+            "correlation_fwhm_mm_zyx": [None if not math.isfinite(v) else round(v, 3) for v in fw],
+            "lag_window_voxels_zyx": list(self.half_lags),
+            "n_voxels": self.n_voxels,
+            "variance_power": self.variance_power,
+        }
+
+
+# =========================================================================== estimation
+def background_mask(
+    volume: Volume,
+    placement: "Placement",
+    template: "Template",
+    *,
+    clearance_mm: float | None = None,
+    slab_mm: tuple[float, float] | None = None,
+    max_voxels: int = 400_000,
+) -> tuple[tuple[slice, slice, slice], np.ndarray]:
+    """Box and mask of the uniform-background voxels used for the noise estimate.
+
+    Voxel centres inside the body at least ``clearance_mm`` from its edge (3-D Euclidean
+    distance transform of the body mask) and from every insert's outer surface, within the
+    slab ``slab_mm`` (template z, mm; default the background slice offsets +- 50 mm, within
+    the body), thinned about its middle so that its box holds at most ``max_voxels`` voxels
+    (enough for a precise estimate; fine grids need far fewer millimetres).
+    """
+    bg = template.background
+    clearance = float(clearance_mm if clearance_mm is not None else (bg.min_clearance_mm if bg is not None else 15.0))
+    if slab_mm is None:
+        offs = bg.slice_offsets_mm if bg is not None else [0.0]
+        slab_mm = (min(offs) - 50.0, max(offs) + 50.0)
+    z0, z1 = template.body.z_range_mm
+    h = template.body.half_extent_xy_mm + 2.0 * float(np.max(volume.spacing_mm))
+    cx, cy = template.body.centre_xy_mm
+    shape = np.array(volume.shape)
+    zmid = 0.5 * (slab_mm[0] + slab_mm[1])
+    half = 0.5 * (slab_mm[1] - slab_mm[0])
+    min_half = 6.0 * float(np.max(volume.spacing_mm))
+    for _ in range(4):  # thin the slab (about its middle) until the box holds at most max_voxels
+        zlo, zhi = max(zmid - half, z0), min(zmid + half, z1)
+        corners_t = np.array([[cx + sx * h, cy + sy * h, z] for sx in (-1, 1) for sy in (-1, 1) for z in (zlo, zhi)])
+        idx = volume.world_to_index(placement.to_world(corners_t))
+        lo = np.clip(np.floor(idx.min(axis=0)).astype(int) - 1, 0, shape - 1)
+        hi = np.clip(np.ceil(idx.max(axis=0)).astype(int) + 1, 0, shape - 1)
+        count = int(np.prod(hi - lo + 1))
+        if count <= max_voxels or half <= min_half:
+            break
+        half = max(min_half, half * max_voxels / count * 0.95)
+    box = tuple(slice(int(a), int(b) + 1) for a, b in zip(lo, hi))
+    nb = tuple(int(b - a + 1) for a, b in zip(lo, hi))
+    kk, jj, ii = np.meshgrid(*[np.arange(a, b + 1, dtype=float) for a, b in zip(lo, hi)], indexing="ij")
+    q = placement.to_template(volume.index_to_world(np.stack([kk, jj, ii], axis=-1)))
+    del kk, jj, ii
+    body = template.body.inside_xy(q[..., 0], q[..., 1]) & (q[..., 2] >= z0) & (q[..., 2] <= z1)
+    # distance to the body edge; the slab's own ends are not edges (distance only in-body)
+    dist = ndimage.distance_transform_edt(body, sampling=volume.spacing_mm)
+    mask = body & (dist >= clearance) & (q[..., 2] >= zlo) & (q[..., 2] <= zhi)
+    for ins in template.inserts:
+        c = np.asarray(ins.centre_mm, float)
+        rel = q - c
+        r_out = 0.5 * ins.outer_diameter_mm + clearance
+        if ins.shape == "sphere":
+            mask &= np.einsum("...i,...i->...", rel, rel) > r_out * r_out
+        else:
+            a = ins.axis_unit
+            ax = rel @ a
+            rho2 = np.einsum("...i,...i->...", rel, rel) - ax * ax
+            mask &= (rho2 > r_out * r_out) | (np.abs(ax) > 0.5 * float(ins.length_mm) + clearance)
+    mask &= np.isfinite(volume.data[box])
+    assert mask.shape == nb
+    return box, mask  # type: ignore[return-value]
+
+
+def masked_autocovariance(values: np.ndarray, mask: np.ndarray, half_lags: Sequence[int]) -> tuple[np.ndarray, np.ndarray]:
+    """Masked autocovariance of zero-mean ``values`` (where ``mask``) at lags ``-L..L``.
+
+    Returns ``(C, pairs)``: the estimate and the number of voxel pairs behind each lag.
+    """
+    m = mask.astype(float)
+    e = np.where(mask, values, 0.0)
+    L = np.asarray(half_lags, int)
+    size = [sfft.next_fast_len(int(n + l), real=True) for n, l in zip(e.shape, L)]
+    fe = sfft.rfftn(e, size)
+    fm = sfft.rfftn(m, size)
+    num = sfft.irfftn(fe * np.conj(fe), size)
+    den = sfft.irfftn(fm * np.conj(fm), size)
+    idx = [np.r_[np.arange(-l, 0) % s, np.arange(0, l + 1)] for l, s in zip(L, size)]
+    num_w = num[np.ix_(*idx)]
+    den_w = np.rint(den[np.ix_(*idx)])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        cov = np.where(den_w > 0.5, num_w / np.maximum(den_w, 1.0), 0.0)
+    return cov, den_w
+
+
+def _quadratic_trend(values: np.ndarray, mask: np.ndarray) -> np.ndarray:
+    """Least-squares quadratic polynomial in the voxel indices fitted to ``values`` where ``mask``.
+
+    Ten coefficients: slow non-uniformity is removed while the noise keeps almost all its
+    power (10 degrees of freedom out of thousands of independent samples).
+    """
+    idx = np.nonzero(mask)
+    centre = np.array([np.mean(i) for i in idx])
+    scale = np.array([max(1.0, np.ptp(i) / 2) for i in idx])
+    z, y, x = [(i - c) / s for i, c, s in zip(idx, centre, scale)]
+    A = np.stack([np.ones_like(z), z, y, x, z * z, y * y, x * x, z * y, z * x, y * x], axis=1)
+    coef = np.linalg.solve(A.T @ A, A.T @ values[idx])  # normal equations: 10 x 10, well scaled
+    grids = np.meshgrid(*[(np.arange(n) - c) / s for n, c, s in zip(values.shape, centre, scale)], indexing="ij", sparse=True)
+    Z, Y, X = grids
+    terms = [1.0, Z, Y, X, Z * Z, Y * Y, X * X, Z * Y, Z * X, Y * X]
+    out = np.zeros(values.shape)
+    for c, t in zip(coef, terms):
+        out = out + c * t
+    return out
+
+
+def estimate_noise(
+    volume: Volume,
+    placement: "Placement",
+    template: "Template",
+    *,
+    clearance_mm: float | None = None,
+    variance_power: float = 1.0,
+    where: str | None = None,
+) -> NoiseModel:
+    """Estimate the noise autocovariance from the uniform background (module notes, step 1).
+
+    Parameters
+    ----------
+    volume : Volume in Bq/mL.
+    placement : where the template sits in the image.
+    template : the body phantom template (body, inserts, background slice offsets).
+    clearance_mm : distance kept from the body edge and the inserts, mm (default the
+        template's background ``min_clearance_mm``).
+    variance_power : ``p`` of the level law ``var(L) = C(0) (L / b)^p``.
+
+    Raises
+    ------
+    PhantomNotFound
+        When fewer than 500 background voxels remain (phantom mostly outside the image).
+    """
+    where = where or volume.source or "image"
+    box, mask = background_mask(volume, placement, template, clearance_mm=clearance_mm)
+    n = int(mask.sum())
+    if n < 500:
+        raise PhantomNotFound(f"{where}: only {n} background voxels away from the inserts and edges; cannot estimate the noise (is the phantom in the field of view?)")
+    vals = volume.data[box].astype(np.float64)
+    spacing = np.asarray(volume.spacing_mm, float)
+    background = float(vals[mask].mean())
+    resid = np.where(mask, vals - _quadratic_trend(vals, mask), 0.0)
+    L0 = np.minimum(np.ceil(MAX_LAG_MM / spacing).astype(int), np.maximum(np.array(mask.shape) // 3, 1))
+    cov, _ = masked_autocovariance(resid, mask, L0)
+    c0 = float(cov[tuple(L0)])
+    # window: one lag beyond the first where the correlation along each axis drops below the floor
+    L = []
+    for axis in range(3):
+        sl: list[Any] = [int(v) for v in L0]
+        sl[axis] = slice(None)
+        prof = cov[tuple(sl)][L0[axis]:] / c0 if c0 > 0 else np.zeros(L0[axis] + 1)
+        below = np.flatnonzero(prof < CORRELATION_FLOOR)
+        first = int(below[0]) if below.size else int(L0[axis])
+        L.append(int(min(L0[axis], first + 1)))
+    crop = tuple(slice(int(l0 - l), int(l0 + l + 1)) for l0, l in zip(L0, L))
+    cov = cov[crop]
+    # the kept window: an ellipsoid in lag space (the box's corners hold only estimation noise)
+    g = np.meshgrid(*[np.arange(-l, l + 1) / max(l, 1) for l in L], indexing="ij")
+    inside = (g[0] ** 2 + g[1] ** 2 + g[2] ** 2) <= 1.0 + 1e-9
+    cov = np.where(inside, cov, 0.0)
+    return NoiseModel(
+        autocov_bq2_ml2=cov,
+        variance_bq2_ml2=max(c0, 0.0),
+        background_bq_ml=background,
+        n_voxels=n,
+        spacing_mm=tuple(float(s) for s in spacing),  # type: ignore[arg-type]
+        variance_power=float(variance_power),
+    )
+
+
+# =========================================================================== ROI weights
+def plane_voxel_weights(volume: Volume, plane: "PlaneImage", box2d: tuple[slice, slice], weights2d: np.ndarray) -> tuple[tuple[slice, slice, slice], np.ndarray]:
+    """Voxel weights equivalent to a weighted ROI on a resampled plane.
+
+    Each plane node ``(u, v)`` is a trilinear interpolation of 8 voxels
+    (:func:`phantometry.rois.sample_plane`, ``order=1``); its ROI weight is spread over those
+    voxels with the interpolation weights, so that ``sum_x W_x v_x = sum_nodes w_n p_n``.
+
+    Returns
+    -------
+    (box, W) : array-order box of the volume and the voxel weights on it.
+    """
+    rows = np.arange(box2d[0].start, box2d[0].stop, dtype=float)
+    cols = np.arange(box2d[1].start, box2d[1].stop, dtype=float)
+    used = weights2d > 0
+    rr, cc = np.meshgrid(rows, cols, indexing="ij")
+    uv = np.stack([cc[used] * plane.pixel_mm, rr[used] * plane.pixel_mm], axis=-1)
+    w = weights2d[used].astype(float)
+    idx = volume.world_to_index(plane.uv_to_world(uv))
+    snapped = np.rint(idx)
+    idx = np.where(np.abs(idx - snapped) < 1e-6, snapped, idx)
+    base = np.floor(idx).astype(int)
+    frac = idx - base
+    shape = np.array(volume.shape)
+    lo = np.clip(base.min(axis=0), 0, shape - 1)
+    hi = np.clip(base.max(axis=0) + 1, 0, shape - 1)
+    out = np.zeros(tuple(hi - lo + 1))
+    for corner in np.ndindex(2, 2, 2):
+        c = np.array(corner)
+        cw = np.prod(np.where(c == 1, frac, 1.0 - frac), axis=1) * w
+        pos = np.clip(base + c, 0, shape - 1) - lo  # map_coordinates mode "nearest" at the faces
+        np.add.at(out, tuple(pos.T), cw)
+    box = tuple(slice(int(a), int(b) + 1) for a, b in zip(lo, hi))
+    return box, out  # type: ignore[return-value]
+
+
+def level_map(volume: Volume, box: tuple[slice, slice, slice]) -> np.ndarray:
+    """The activity level on a box for the level law: the image values clipped at 0 (Bq/mL).
+
+    (Smoothed by :data:`LEVEL_SMOOTH_VOXELS` when that is set above 0.)
+    """
+    # smooth on a box grown by 3 voxels so the edges see their neighbours
+    shape = np.array(volume.shape)
+    lo = np.array([s.start for s in box])
+    hi = np.array([s.stop for s in box])
+    glo = np.maximum(lo - 3, 0)
+    ghi = np.minimum(hi + 3, shape)
+    big = np.nan_to_num(volume.data[tuple(slice(int(a), int(b)) for a, b in zip(glo, ghi))].astype(np.float64))
+    sm = ndimage.gaussian_filter(big, LEVEL_SMOOTH_VOXELS, mode="nearest") if LEVEL_SMOOTH_VOXELS > 0 else big
+    inner = tuple(slice(int(a - g), int(a - g + (b - a))) for a, b, g in zip(lo, hi, glo))
+    return np.clip(sm[inner], 0.0, None)
+
+
+def combine_weights(parts: Sequence[tuple[tuple[slice, slice, slice], np.ndarray, float]]) -> tuple[tuple[slice, slice, slice], np.ndarray]:
+    """Sum of scaled weight boxes ``sum coef * W`` on their common bounding box."""
+    lo = np.min([[s.start for s in b] for b, _, _ in parts], axis=0)
+    hi = np.max([[s.stop for s in b] for b, _, _ in parts], axis=0)
+    out = np.zeros(tuple(hi - lo))
+    for b, w, coef in parts:
+        sl = tuple(slice(int(s.start - l), int(s.stop - l)) for s, l in zip(b, lo))
+        out[sl] += coef * w
+    return tuple(slice(int(a), int(b)) for a, b in zip(lo, hi)), out  # type: ignore[return-value]
+
+
+# =========================================================================== propagation
+def sd_standard_error(sd: float, k: int) -> float:
+    """Standard error of a sample SD of ``k`` independent normal values: ``SD / sqrt(2 (k - 1))``.
+
+    Large-sample normal theory (common practice).
+    """
+    if k < 2:
+        return float("nan")
+    return float(sd) / math.sqrt(2.0 * (k - 1))
+
+
+def u_ratio(a: float, u_a: float, b: float, u_b: float) -> float:
+    """Standard uncertainty of ``a / b`` for independent ``a``, ``b`` (first order, GUM)."""
+    return abs(a / b) * math.sqrt((u_a / a) ** 2 + (u_b / b) ** 2) if a != 0 else abs(u_a / b)
+
+
+def u_percent_contrast_hot(c_h: float, u_h: float, c_b: float, u_b: float, ratio: float) -> float:
+    """``u(Q_H)`` in % for ``Q_H = (C_H / C_B - 1) / (ratio - 1) x 100`` (first order, GUM)."""
+    return 100.0 / (ratio - 1.0) * math.hypot(u_h / c_b, c_h * u_b / c_b**2)
+
+
+def u_percent_contrast_cold(c_c: float, u_c: float, c_b: float, u_b: float) -> float:
+    """``u(Q_C)`` in % for ``Q_C = (1 - C_C / C_B) x 100`` (first order, GUM)."""
+    return 100.0 * math.hypot(u_c / c_b, c_c * u_b / c_b**2)
+
+
+def u_background_variability(n_pct: float, k: int, c_b: float, u_b: float) -> float:
+    """``u(N)`` in % for ``N = SD / C_B x 100`` with ``u(SD) = SD / sqrt(2 (K - 1))``."""
+    if not math.isfinite(n_pct) or k < 2:
+        return float("nan")
+    return abs(n_pct) * math.sqrt(1.0 / (2.0 * (k - 1)) + (u_b / c_b) ** 2)
+
+
+# =========================================================================== simulation
+def simulate_noise(noise: NoiseModel, shape: tuple[int, int, int], n_draws: int, rng: np.random.Generator) -> np.ndarray:
+    """Stationary Gaussian noise fields with the model's autocovariance, shape ``(n_draws, *shape)``.
+
+    Spectral synthesis: the autocovariance is embedded (circularly) in a grid larger than
+    ``shape`` by the lag window (so every lag within the box is exact), its power spectrum (negative parts, which an estimate can
+    have, clipped to 0) gives the filter ``sqrt(S)`` applied to white noise by FFT.
+    Background-level noise (variance ``C(0)``), single precision; scale by
+    :meth:`NoiseModel.scale_at`.
+    """
+    L = np.array(noise.half_lags)
+    # a period of n + L keeps every wrapped lag between two points of the box beyond the window
+    size = [sfft.next_fast_len(int(n + l), real=True) for n, l in zip(shape, L)]
+    emb = np.zeros(size)
+    idx = [np.r_[np.arange(-l, 0) % s, np.arange(0, l + 1)] for l, s in zip(L, size)]
+    emb[np.ix_(*idx)] = noise.autocov_bq2_ml2
+    spec = np.clip(sfft.rfftn(emb).real, 0.0, None)
+    amp = np.sqrt(spec).astype(np.float32)
+    white = rng.standard_normal((n_draws, *size), dtype=np.float32)  # single precision: twice as fast, ample here
+    field = sfft.irfftn(sfft.rfftn(white, axes=(1, 2, 3)) * amp[None], size, axes=(1, 2, 3))
+    return field[:, : shape[0], : shape[1], : shape[2]]
+
+
+# =========================================================================== ROI helpers
+def _centres_within(volume: Volume, centre_mm: np.ndarray, radius_mm: float) -> tuple[tuple[slice, slice, slice], np.ndarray]:
+    """Box and mask of the voxels whose centres lie within ``radius_mm`` of ``centre_mm``.
+
+    The same voxel set as the searches of :mod:`phantometry.rois` (``max_in_sphere``, the
+    isocontour VOI); when no centre lies within, the voxel holding ``centre_mm`` alone.
+    """
+    c = np.asarray(centre_mm, float)
+    c_idx = volume.world_to_index(c)
+    g = np.linalg.inv(volume.affine[:3, :3])[::-1]
+    half = radius_mm * np.linalg.norm(g, axis=1)
+    shape = np.array(volume.shape)
+    lo = np.maximum(np.ceil(c_idx - half - 0.5).astype(int), 0)
+    hi = np.minimum(np.floor(c_idx + half + 0.5).astype(int), shape - 1)
+    if np.all(hi >= lo):
+        box = tuple(slice(int(a), int(b) + 1) for a, b in zip(lo, hi))
+        kk, jj, ii = np.meshgrid(*[np.arange(a, b + 1, dtype=float) for a, b in zip(lo, hi)], indexing="ij")
+        rel = volume.index_to_world(np.stack([kk, jj, ii], axis=-1)) - c
+        mask = np.einsum("...i,...i->...", rel, rel) <= radius_mm * radius_mm
+        if mask.any():
+            return box, mask  # type: ignore[return-value]
+    nearest = np.clip(np.rint(c_idx).astype(int), 0, shape - 1)
+    return tuple(slice(int(n), int(n) + 1) for n in nearest), np.ones((1, 1, 1), bool)  # type: ignore[return-value]
+
+
+def _box_world(volume: Volume, box: tuple[slice, slice, slice]) -> np.ndarray:
+    kk, jj, ii = np.meshgrid(*[np.arange(s.start, s.stop, dtype=float) for s in box], indexing="ij")
+    return volume.index_to_world(np.stack([kk, jj, ii], axis=-1))
+
+
+def weights_variance(
+    noise: NoiseModel,
+    volume: Volume,
+    parts: Sequence[tuple[tuple[slice, slice, slice], np.ndarray, float]],
+    *,
+    heteroscedastic: bool = True,
+) -> float:
+    """Variance (Bq/mL)^2 of ``sum_i coef_i sum(W_i v) / sum(W_i)`` for weight boxes ``(box, W_i, coef_i)``.
+
+    With ``heteroscedastic`` the variance is scaled by the level law at the ROI's own level
+    ``L`` (its weighted mean): ``(L / b)^p``.
+    """
+    scaled = [(b, w / float(w.sum()), c) for b, w, c in parts if float(w.sum()) > 0]
+    if not scaled:
+        raise PhantomNotFound("uncertainty: ROI has no weight; check the ROI position")
+    box, a = combine_weights(scaled)
+    return _scaled_quadratic_form(noise, volume, box, a, heteroscedastic)
+
+
+def _scaled_quadratic_form(noise: NoiseModel, volume: Volume, box, a: np.ndarray, heteroscedastic: bool, level_fn=None) -> float:
+    """Variance of ``sum a v`` under the level law (module notes, step 3).
+
+    ``sum_{x,y} a_x a_y C(x - y) s_x s_y`` with ``s = (L / b)^(p/2)``; the product
+    ``s_x s_y`` of two nearby voxels (C is short-ranged) is taken as the mean of ``s_x^2`` and
+    ``s_y^2``, which makes the form ``sum_x a_x (C * a)_x (L_x / b)^p``. For ``p = 1`` it is
+    linear in the image values, so the noisy image itself is an unbiased level (no clipping of
+    single voxels; only the total is kept >= 0); for other ``p`` the level is clipped at 0.
+    With ``level_fn(points_mm) -> Bq/mL`` (a noise-free model of the level) the exact form
+    with ``s_x s_y`` is used instead.
+    """
+    if not heteroscedastic:
+        return max(noise.quadratic_form(a), 0.0)
+    if level_fn is not None:  # a noise-free level is known: the exact form with s_x s_y
+        return max(noise.quadratic_form(a * noise.scale_at(level_fn(_box_world(volume, box)))), 0.0)
+    from scipy import signal
+
+    field = signal.fftconvolve(a, noise.autocov_bq2_ml2, mode="same")
+    vals = np.nan_to_num(volume.data[box].astype(np.float64)) / max(noise.background_bq_ml, 1e-12)
+    if noise.variance_power != 1.0:
+        vals = np.clip(vals, 0.0, None) ** noise.variance_power
+    return max(float(np.sum(a * field * vals)), 0.0)
+
+
+def discs_variance(
+    noise: NoiseModel,
+    volume: Volume,
+    discs: Sequence[tuple["PlaneImage", np.ndarray]],
+    diameter_mm: float,
+    *,
+    heteroscedastic: bool = True,
+    level_fn=None,
+) -> float:
+    """Variance (Bq/mL)^2 of the average of disc-ROI means (same diameter) on resampled planes.
+
+    ``discs`` is a list of ``(plane, centre_uv_mm)``. Discs on one plane are combined into a
+    single weight image before being spread onto the voxels (:func:`plane_voxel_weights`),
+    so the covariance of every pair of discs, on one plane or across planes, is included.
+    """
+    from .rois import disc_weights
+
+    k = len(discs)
+    by_plane: dict[int, tuple["PlaneImage", list[tuple[tuple[slice, slice], np.ndarray]]]] = {}
+    for plane, uv in discs:
+        box2d, w2d = disc_weights(plane, np.asarray(uv, float), diameter_mm)
+        by_plane.setdefault(id(plane), (plane, []))[1].append((box2d, w2d / float(w2d.sum()) / k))
+    parts = []
+    for plane, items in by_plane.values():
+        r0 = min(b[0].start for b, _ in items)
+        r1 = max(b[0].stop for b, _ in items)
+        c0 = min(b[1].start for b, _ in items)
+        c1 = max(b[1].stop for b, _ in items)
+        img = np.zeros((r1 - r0, c1 - c0))
+        for b, w in items:
+            img[b[0].start - r0 : b[0].stop - r0, b[1].start - c0 : b[1].stop - c0] += w
+        box3, w3 = plane_voxel_weights(volume, plane, (slice(r0, r1), slice(c0, c1)), img)
+        parts.append((box3, w3, 1.0))
+    box, a = combine_weights(parts)
+    return _scaled_quadratic_form(noise, volume, box, a, heteroscedastic, level_fn)
+
+
+def bootstrap_search_sd(
+    noise: NoiseModel,
+    volume: Volume,
+    centre_mm: np.ndarray,
+    diameter_mm: float,
+    background_bq_ml: float,
+    model_fn=None,
+    *,
+    fraction: float = 0.5,
+    peak_diameter_mm: float = 12.41,
+    n_draws: int = 200,
+    seed: int = 0,
+) -> dict[str, float]:
+    """SDs (Bq/mL) of the hottest voxel, the isocontour VOI mean and the peak, by simulation.
+
+    The propagation of distributions by Monte Carlo (JCGM 101:2008, GUM Supplement 1) for
+    the three statistics that *search* the image (extreme values, for which linear
+    propagation fails): ``n_draws`` noise fields with the model's autocovariance
+    (:func:`simulate_noise`), scaled by the level law, are added to the noise-free image
+    ``model_fn(points_mm) -> Bq/mL`` (the fitted blurred-sphere model; None: the image
+    itself, :func:`level_map`), and on each draw the searches of
+    :mod:`phantometry.rois` are repeated on the same voxels: the hottest voxel centred within
+    the sphere (``max_in_sphere``), the 26-connected VOI ``>= B + fraction (max - B)`` within
+    the sphere grown by one voxel that holds it (``isocontour_mean``), and the highest mean
+    of a ``peak_diameter_mm`` sphere centred on a voxel within the sphere (``peak_search``).
+    ``B`` is held at ``background_bq_ml``. The draws use ``seed``, so results are
+    reproducible.
+
+    Returns
+    -------
+    dict with keys ``max``, ``mean``, ``peak``: SD over the draws, Bq/mL.
+    """
+    from scipy import signal
+
+    from .rois import sphere_weights
+
+    r = 0.5 * float(diameter_mm)
+    r_peak = 0.5 * float(peak_diameter_mm)
+    step = float(np.max(volume.spacing_mm))
+    c = np.asarray(centre_mm, float)
+    box, _ = _centres_within(volume, c, r + r_peak + 2.0 * step)
+    world = _box_world(volume, box)
+    rel = world - c
+    dist2 = np.einsum("...i,...i->...", rel, rel)
+    search = dist2 <= r * r
+    grown = dist2 <= (r + step) ** 2
+    if not search.any():  # no voxel centre within the sphere: the nearest voxel (as rois does)
+        nearest = np.unravel_index(int(np.argmin(dist2)), dist2.shape)
+        search = np.zeros(dist2.shape, bool)
+        search[nearest] = True
+        grown = grown | search
+    model = level_map(volume, box) if model_fn is None else np.asarray(model_fn(world), float)
+    scale = noise.scale_at(model).astype(np.float32)
+    model = model.astype(np.float32)
+    # the peak kernel: partial-volume weights of the peak sphere about a voxel centre
+    mid = np.array(volume.shape) // 2
+    kern = sphere_weights(volume, volume.index_to_world(mid.astype(float)), peak_diameter_mm).weights.astype(float)
+    kern_flipped = kern[::-1, ::-1, ::-1]
+    ksum = float(kern.sum())
+    half = np.array(kern.shape) // 2
+    valid = np.zeros(search.shape, bool)
+    inner = tuple(slice(int(h), int(n - h)) for h, n in zip(half, search.shape))
+    valid[inner] = True
+    peak_cand = search & valid
+    if not peak_cand.any():
+        peak_cand = search
+    bg = float(background_bq_ml)
+    rng = np.random.default_rng(seed)
+    maxes, means, peaks = [], [], []
+    chunk = max(1, min(n_draws, int(2_000_000 // max(1, search.size))))
+    structure = np.ones((3, 3, 3), bool)
+    done = 0
+    while done < n_draws:
+        n = min(chunk, n_draws - done)
+        sims = (model[None] + simulate_noise(noise, search.shape, n, rng) * scale[None]).astype(np.float32)
+        flat = np.where(search[None], sims, -np.inf).reshape(n, -1)
+        arg = np.argmax(flat, axis=1)
+        vmax = flat[np.arange(n), arg]
+        maxes.append(vmax)
+        conv = signal.fftconvolve(sims, kern_flipped[None].astype(np.float32), mode="same", axes=(1, 2, 3)) / ksum
+        peaks.append(np.where(peak_cand[None], conv, -np.inf).reshape(n, -1).max(axis=1))
+        thr = bg + float(fraction) * (vmax - bg)
+        for i in range(n):
+            labels, _ = ndimage.label(grown & (sims[i] >= thr[i]), structure=structure)
+            lab = labels.reshape(-1)[arg[i]]
+            voi = labels == lab
+            means.append(float(sims[i][voi].mean(dtype=np.float64)))
+        done += n
+    return {
+        "max": float(np.std(np.concatenate(maxes), ddof=1)),
+        "mean": float(np.std(means, ddof=1)),
+        "peak": float(np.std(np.concatenate(peaks), ddof=1)),
+    }
+
+
+# =========================================================================== the body phantom
+def body_uncertainties(
+    analysis: Any,
+    noise: NoiseModel,
+    *,
+    resolution_fit: Any = None,
+    overrides: dict[str, np.ndarray] | None = None,
+    n_draws: int | None = None,
+) -> dict[tuple[str, str], float]:
+    """Standard uncertainty of every ROI-mean based metric of a body image-quality analysis.
+
+    Parameters
+    ----------
+    analysis : :class:`phantometry.measure.BodyAnalysis` (rows, planes, placement, template,
+        fill, volume); the ROIs are rebuilt exactly as :func:`phantometry.measure.measure_volume`
+        placed them.
+    noise : the image's noise model (:func:`estimate_noise`).
+    resolution_fit : the blurred-sphere fit (:func:`phantometry.metrics.resolution.fit_body`);
+        its model image is the noise-free image of the RC max bootstrap (else the image
+        smoothed by one voxel).
+    overrides : the manual insert centres the analysis used (the low-density insert's ROI
+        follows its override as in the measurement).
+    n_draws : noise draws of the RC max / mean / peak simulation (default
+        :data:`BOOTSTRAP_DRAWS`).
+
+    Returns
+    -------
+    dict (roi, metric) -> standard uncertainty in the metric's unit (see the module notes).
+    """
+    from .rois import disc_means, sample_plane
+
+    n_draws = BOOTSTRAP_DRAWS if n_draws is None else int(n_draws)
+    vol = analysis.volume
+    tpl = analysis.template
+    fill = analysis.fill
+    pl = analysis.placement
+    a = tpl.analysis
+    bg = tpl.background
+    u_dir, v_dir, axis = pl.rotation[:, 0], pl.rotation[:, 1], pl.rotation[:, 2]
+    values = {(r.roi, r.metric): r.value for r in analysis.rows}
+    out: dict[tuple[str, str], float] = {}
+    # ---- background ROI sets: the mean of K ROI means per size (level = background)
+    centres_xy = np.asarray(bg.centres_xy_mm, float)
+    discs_by_offset = []
+    for off in bg.slice_offsets_mm:
+        plane = analysis.planes[off]
+        uv = plane.world_to_uv(pl.to_world(np.c_[centres_xy, np.full(len(centres_xy), off)]))
+        discs_by_offset.extend((plane, c) for c in uv)
+    u_cb: dict[float, float] = {}
+    c_b: dict[float, float] = {}
+    for d, means in analysis.background_roi_means.items():
+        c_b[d] = float(np.mean(means))
+        u_cb[d] = math.sqrt(discs_variance(noise, vol, discs_by_offset, d, heteroscedastic=False))
+    ref = a.reference_background_diameter_mm
+    cb_ref, ucb_ref = c_b[ref], u_cb[ref]
+    # ---- spheres
+    spacing_max = float(np.max(vol.spacing_mm))
+    model_fn = resolution_fit.model_at if resolution_fit is not None else None
+    for s in tpl.spheres:
+        name = s.name
+        centre = pl.insert_centre(name)
+        sp = sample_plane(vol, centre, u_dir, v_dir, s.diameter_mm / 2 + 4 * spacing_max)
+        uv = sp.world_to_uv(centre[None])
+        c_sphere = float(disc_means(sp, uv, s.diameter_mm)[0])
+        u_sphere = math.sqrt(discs_variance(noise, vol, [(sp, uv[0])], s.diameter_mm, heteroscedastic=True))
+        cb = c_b.get(s.diameter_mm, cb_ref)
+        ucb = u_cb.get(s.diameter_mm, ucb_ref)
+        hot = not fill.is_cold(name)
+        if hot:
+            ratio = float(fill.activity_ratio(name))
+            out[(name, "percent_contrast")] = u_percent_contrast_hot(c_sphere, u_sphere, cb, ucb, ratio)
+        else:
+            out[(name, "percent_contrast")] = u_percent_contrast_cold(c_sphere, u_sphere, cb, ucb)
+        n_pct = values.get((name, "background_variability_pct"), math.nan)
+        if s.diameter_mm in analysis.background_roi_means:
+            k = len(analysis.background_roi_means[s.diameter_mm])
+            out[(name, "background_variability_pct")] = u_background_variability(n_pct, k, cb, ucb)
+        if not hot:
+            continue
+        true = float(analysis.true_insert_bq_ml[name])
+        if true <= 0:
+            continue
+        if noise.sd_bq_ml <= 1e-6 * max(noise.background_bq_ml, 1e-12):
+            # no measurable noise (a noise-free image: float32 rounding only): nothing to simulate
+            out[(name, "rc_max")] = out[(name, "rc_mean")] = out[(name, "rc_peak")] = 0.0
+            continue
+        sds = bootstrap_search_sd(
+            noise, vol, centre, s.diameter_mm, cb_ref, model_fn,
+            fraction=a.isocontour_fraction, peak_diameter_mm=a.peak_diameter_mm, n_draws=n_draws, seed=_seed(name),
+        )
+        out[(name, "rc_max")] = sds["max"] / true
+        out[(name, "rc_mean")] = sds["mean"] / true
+        out[(name, "rc_peak")] = sds["peak"] / true
+    # ---- low-density insert
+    if a.lung_insert is not None and (a.lung_insert, "lung_residual_pct") in values:
+        lung = tpl.insert(a.lung_insert)
+        offsets = a.lung_slice_offsets_mm or bg.slice_offsets_mm
+        half_width = tpl.body.half_extent_xy_mm + 10
+        discs = []
+        lung_vals = []
+        for off in offsets:
+            plane = analysis.planes.get(off)
+            if plane is None:
+                plane = sample_plane(vol, pl.to_world([0.0, 0.0, off]), u_dir, v_dir, half_width)
+            lc = pl.to_world([lung.centre_mm[0], lung.centre_mm[1], off])
+            if a.lung_insert in (overrides or {}):
+                lc = pl.insert_centre(lung.name) + (off - float(pl.to_template(pl.insert_centre(lung.name))[2])) * axis
+            uv = plane.world_to_uv(lc[None])
+            lung_vals.append(float(disc_means(plane, uv, a.lung_roi_diameter_mm)[0]))
+            discs.append((plane, uv[0]))
+        c_lung = float(np.mean(lung_vals))
+        level_fn = None
+        if resolution_fit is not None and lung.shape == "cylinder":
+            level_fn = _cylinder_level(resolution_fit, pl.insert_centre(lung.name), pl.direction_to_world(lung.axis_unit), 0.5 * lung.outer_diameter_mm)
+        u_lung = math.sqrt(discs_variance(noise, vol, discs, a.lung_roi_diameter_mm, heteroscedastic=True, level_fn=level_fn))
+        out[(a.lung_insert, "lung_residual_pct")] = 100.0 * u_ratio(c_lung, u_lung, cb_ref, ucb_ref)
+    # ---- background level and calibration check
+    out[("background", "mean_bq_ml")] = ucb_ref
+    if analysis.true_background_bq_ml > 0:
+        out[("background", "activity_recovery")] = ucb_ref / analysis.true_background_bq_ml
+    return out
+
+
+def _cylinder_level(fit: Any, centre: np.ndarray, axis: np.ndarray, radius_mm: float):
+    """Noise-free level inside a long cold cylinder: background minus the blurred cylinder.
+
+    ``b (1 - g(rho))`` with ``g`` the blurred disc profile at the fitted effective SD
+    (:func:`phantometry.metrics.resolution.blurred_disc_profile`); the spill-in a cold insert
+    receives from the background around it.
+    """
+    from .metrics.resolution import blurred_disc_profile
+
+    a = np.asarray(axis, float) / np.linalg.norm(axis)
+
+    def level(points: np.ndarray) -> np.ndarray:
+        rel = np.asarray(points, float) - centre
+        ax = rel @ a
+        rho = np.sqrt(np.maximum(np.einsum("...i,...i->...", rel, rel) - ax * ax, 0.0))
+        return fit.background_bq_ml * (1.0 - blurred_disc_profile(rho, radius_mm, fit.sigma_eff_mm))
+
+    return level
+
+
+def _seed(name: str) -> int:
+    """A fixed seed per ROI name (reproducible bootstrap draws)."""
+    return int.from_bytes(name.encode("utf-8")[:8].ljust(8, b"\0"), "little") % (2**32)
