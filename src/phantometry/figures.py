@@ -244,6 +244,7 @@ def contrast_noise_chart(settings, sphere_diameters_mm: dict[str, float], path: 
                         yerr=pc.uncertainty if _finite(pc.uncertainty) else None,
                         fmt=marker, ms=5, color=colour, mfc="white" if failed else colour, ecolor="#777777", elinewidth=0.8, capsize=2)
             ax.annotate(str(number), (bv.value, pc.value), xytext=(4, 3), textcoords="offset points", fontsize=7)
+        ax.margins(0.15)
         ax.set_title(f"{name.replace('sphere_', '')} sphere", fontsize=9)
         ax.set_xlabel("background variability N (%)", fontsize=8)
         ax.set_ylabel("percent contrast Q (%)", fontsize=8)
@@ -328,7 +329,7 @@ def recovery_curves_chart(
             ax.plot([xs[i] for i in ok], [ys[i] for i in ok], marker, color="black", ms=4.5, ls="none", zorder=3)
             ax.plot([xs[i] for i in bad], [ys[i] for i in bad], marker, color=_FAIL_COLOUR, mfc="white", mew=1.3, ms=6, ls="none", zorder=4)
             ax.annotate(str(number), (xs[-1], ys[-1]), xytext=(5, 0), textcoords="offset points", fontsize=7, va="center")
-        ax.set_title(metric.replace("_", " ").upper().replace("RC ", "RC "), fontsize=9)
+        ax.set_title("RC " + metric.removeprefix("rc_"), fontsize=9)
         ax.set_xlabel("sphere diameter (mm)", fontsize=8)
         ax.set_ylabel("recovery coefficient", fontsize=8)
         ax.tick_params(labelsize=7)
@@ -336,6 +337,133 @@ def recovery_curves_chart(
     _legend_axis(fig, fig.add_subplot(gs[1, :]), settings)
     fig.suptitle(title or "Recovery coefficients; grey boxes: acceptance bands; red open markers: outside the band", fontsize=10)
     fig.tight_layout(rect=(0, 0, 1, 0.95))
+    out = Path(path)
+    fig.savefig(out, dpi=100)
+    plt.close(fig)
+    return out
+
+
+def inserts_overlay(analysis, path: str | os.PathLike) -> Path:
+    """A user-defined phantom: a transverse and a longitudinal view through the inserts' mean
+    position with every insert VOI drawn and labelled (PNG)."""
+    from .rois import sample_plane
+
+    plt = _plt()
+    pl = analysis.placement
+    tpl = analysis.template
+    inserts = [i for i in tpl.inserts if i.fill != "solid"]
+    z_mid = float(np.mean([i.centre_mm[2] for i in inserts])) if inserts else 0.0
+    half = tpl.body.half_extent_xy_mm + 5
+    tra = sample_plane(analysis.volume, pl.to_world([*tpl.body.centre_xy_mm, z_mid]), pl.rotation[:, 0], pl.rotation[:, 1], half)
+    lon = sample_plane(analysis.volume, pl.to_world(tpl.body_centre_mm), pl.rotation[:, 0], pl.axis_world, max(half, tpl.body_length_mm / 2 + 5))
+    vmax = float(np.nanpercentile(tra.values, 99.5)) or 1.0
+    fig, axes = plt.subplots(1, 2, figsize=(11, 5.4))
+    _show_plane(axes[0], tra, vmax, f"Transverse view at z = {z_mid:g} mm (template frame)")
+    _show_plane(axes[1], lon, vmax, "Longitudinal view along the phantom axis")
+    for ins in inserts:
+        c = pl.insert_centre(ins.name)
+        hot = analysis.true_insert_bq_ml.get(ins.name, 0.0) > analysis.true_background_bq_ml
+        col = "#c03000" if hot else "#0050c0"
+        uv = tra.world_to_uv(c)
+        _circle(axes[0], uv, ins.diameter_mm, color=col, lw=1.2)
+        axes[0].annotate(ins.name, (uv[0], uv[1] + ins.diameter_mm / 2 + 2), ha="center", va="bottom", fontsize=8,
+                         bbox=dict(boxstyle="round,pad=0.15", fc="white", ec="none", alpha=0.8))
+    fig.suptitle(f"{tpl.title} | match {pl.ring_score or 0:.2f}", fontsize=10)
+    fig.text(0.5, 0.01, "Supports, does not replace, a qualified medical physicist's review.", ha="center", fontsize=8, color="#444444")
+    fig.tight_layout(rect=(0, 0.03, 1, 0.95))
+    out = Path(path)
+    fig.savefig(out, dpi=100)
+    plt.close(fig)
+    return out
+
+
+def recovery_curve_picture(analysis: "BodyAnalysis", path: str | os.PathLike) -> Path:
+    """Measured recovery coefficients with the fitted blurred-sphere curves and the bands (PNG).
+
+    One panel per metric (RC max, RC mean, RC peak): the hot spheres' values with their
+    standard uncertainties (bars), the model curve of the effective-resolution fit
+    (:mod:`phantometry.metrics.resolution`, continuous in diameter, at the fitted FWHM, sphere
+    scale and background), and the active acceptance bands as grey hatched boxes; values
+    outside a band are red open markers.
+    """
+    from matplotlib.patches import Rectangle
+
+    from .metrics.resolution import model_rc_max, model_rc_mean, model_rc_peak
+
+    plt = _plt()
+    tpl = analysis.template
+    hot = [s for s in tpl.spheres if not analysis.fill.is_cold(s.name)]
+    rows = _by_key(analysis.rows)
+    fit = getattr(analysis, "resolution", None)
+    metrics = ("rc_max", "rc_mean", "rc_peak")
+    fig, axes = plt.subplots(1, 3, figsize=(13, 4.6))
+    d_all = [s.diameter_mm for s in tpl.spheres]
+    d_grid = np.linspace(max(2.0, min(d_all) * 0.6), max(d_all) * 1.12, 120)
+    band_sets = list(getattr(analysis, "band_sets", []))
+    labelled: set = set()
+    hatches = ("///", "\\\\\\", "...", "xxx")
+    for ax, metric in zip(axes, metrics):
+        n_sets = max(1, len(band_sets))
+        for j, bs in enumerate(band_sets):
+            for s in hot:
+                e = bs.entry(s.name, metric)
+                if e is None:
+                    continue
+                lo = e.low if e.low is not None else 0.0
+                hi = e.high if e.high is not None else 1.5
+                width = 2.4 / n_sets
+                label = None
+                if bs.name not in labelled:
+                    labelled.add(bs.name)
+                    label = f"band {bs.name}"
+                ax.add_patch(Rectangle((s.diameter_mm - 1.2 + j * width, lo), width, hi - lo, fc="#e4e4e4", ec="#999999", lw=0.6,
+                                       hatch=hatches[j % len(hatches)], zorder=0, label=label))
+        if fit is not None and hot:
+            wall = float(np.mean([s.wall_mm for s in hot]))
+            true = float(np.mean([analysis.true_insert_bq_ml[s.name] for s in hot]))
+            k = fit.sphere_scale
+            ratio = k * true / fit.background_bq_ml if fit.background_bq_ml > 0 else 1e9
+            kw = dict(activity_ratio=ratio, wall_mm=wall, voxel_mm=fit.voxel_mm)
+            if metric == "rc_max":
+                curve = model_rc_max(d_grid, fit.fwhm_mm, **kw)
+            elif metric == "rc_mean":
+                curve = model_rc_mean(d_grid, fit.fwhm_mm, fraction=tpl.analysis.isocontour_fraction, **kw)
+            else:
+                curve = model_rc_peak(d_grid, fit.fwhm_mm, peak_diameter_mm=tpl.analysis.peak_diameter_mm, **kw)
+            ax.plot(d_grid, k * np.asarray(curve), color="#1f5fa0", lw=1.3, zorder=1, label=f"model (noise-free), FWHM {fit.fwhm_mm:.2f} mm")
+        xs, ys, es, fails = [], [], [], []
+        for s in hot:
+            rs = rows.get((s.name, metric))
+            if not rs or not _finite(rs[0].value):
+                continue
+            xs.append(s.diameter_mm)
+            ys.append(rs[0].value)
+            es.append(rs[0].uncertainty if _finite(rs[0].uncertainty) else 0.0)
+            fails.append(any(r.verdict == "fail" for r in rs))
+        if xs:
+            ax.errorbar(xs, ys, yerr=es, fmt="none", ecolor="#666666", elinewidth=0.8, capsize=2, zorder=2)
+            ok = [i for i, f in enumerate(fails) if not f]
+            bad = [i for i, f in enumerate(fails) if f]
+            ax.plot([xs[i] for i in ok], [ys[i] for i in ok], "o", color="black", ms=5, ls="none", zorder=3, label="measured")
+            if bad:
+                ax.plot([xs[i] for i in bad], [ys[i] for i in bad], "o", color=_FAIL_COLOUR, mfc="white", mew=1.3, ms=6.5, ls="none", zorder=4, label="outside a band")
+        ax.set_title("RC " + metric.removeprefix("rc_"), fontsize=9)
+        ax.set_xlabel("sphere inner diameter (mm)", fontsize=8)
+        ax.set_ylabel("recovery coefficient", fontsize=8)
+        ax.tick_params(labelsize=7)
+        ax.grid(True, color="#dddddd", lw=0.5)
+        ax.set_ylim(bottom=0)
+        if ax.get_legend_handles_labels()[0]:
+            ax.legend(fontsize=7, loc="lower right")
+    if fit is not None:
+        lo, hi = fit.ci95_mm
+        head = f"Effective FWHM {fit.fwhm_mm:.2f} mm (95 % interval {lo:.2f}-{hi:.2f} mm), blurred-sphere fit"
+    else:
+        head = "Recovery coefficients (no resolution fit)"
+    bands = ", ".join(b.name for b in band_sets) or "none"
+    fig.suptitle(f"{head} | bands: {bands} | bars: standard uncertainty; grey boxes: acceptance bands", fontsize=9.5)
+    fig.text(0.5, 0.01, "Supports, does not replace, a qualified medical physicist's review.", ha="center", fontsize=8, color="#444444")
+    fig.tight_layout(rect=(0, 0.03, 1, 0.94))
     out = Path(path)
     fig.savefig(out, dpi=100)
     plt.close(fig)

@@ -44,6 +44,12 @@ class BodyAnalysis:
     true_background_bq_ml: float
     true_insert_bq_ml: dict[str, float]
     warnings: list[str] = field(default_factory=list)
+    #: noise model (phantometry.uncertainty.NoiseModel) behind the uncertainties, if estimated
+    noise: Any = None
+    #: blurred-sphere fit (phantometry.metrics.resolution.ResolutionFit), if made
+    resolution: Any = None
+    #: acceptance band sets applied (phantometry.bands.BandSet)
+    band_sets: list[Any] = field(default_factory=list)
 
     def sphere_rows(self) -> list[dict[str, Any]]:
         """One dict per sphere (for the terminal table)."""
@@ -71,6 +77,10 @@ def measure_volume(
     *,
     overrides: dict[str, np.ndarray] | None = None,
     where: str | None = None,
+    bands: Sequence[Any] | None = None,
+    uncertainties: bool = True,
+    resolution: bool = True,
+    variance_power: float = 1.0,
 ) -> BodyAnalysis:
     """Locate the phantom and compute every NEMA NU 2 and recovery metric.
 
@@ -80,6 +90,14 @@ def measure_volume(
     template : a body image-quality template (``iec-body``).
     fill : the fill record; true concentrations are decay-corrected to ``volume.acquired_at``.
     overrides : manual insert centres, world mm.
+    bands : acceptance band sets (:class:`phantometry.bands.BandSet`, names or files) whose
+        verdicts fill the rows' ``band``, ``band_low``, ``band_high``, ``verdict``
+        (:func:`phantometry.bands.apply_bands`).
+    uncertainties : estimate the noise and give every ROI-mean based metric its standard
+        uncertainty (:mod:`phantometry.uncertainty`).
+    resolution : fit the blurred-sphere model and add ``effective_fwhm_mm`` on ROI
+        ``phantom`` (:mod:`phantometry.metrics.resolution`).
+    variance_power : ``p`` of the noise level law ``var ~ level^p`` (1: Poisson-like).
 
     Returns
     -------
@@ -89,7 +107,11 @@ def measure_volume(
     if template.analysis.kind == "small_animal_image_quality":
         from .small_animal import measure_small_animal
 
-        return measure_small_animal(volume, template, fill, overrides=overrides, where=where)  # type: ignore[return-value]
+        return _with_bands(measure_small_animal(volume, template, fill, overrides=overrides, where=where), bands, template)  # type: ignore[return-value]
+    if template.analysis.kind == "inserts":
+        from .generic import measure_inserts
+
+        return _with_bands(measure_inserts(volume, template, fill, overrides=overrides, where=where), bands, template)  # type: ignore[return-value]
     if template.analysis.kind != "body_image_quality":
         raise InputError(f"template {template.name}: analysis kind {template.analysis.kind} is not measurable yet")
     if volume.acquired_at is None:
@@ -203,7 +225,76 @@ def measure_volume(
         )
         warnings.append(note)
     add("background", "activity_recovery", recovery, "1", note)
-    return BodyAnalysis(volume, template, fill, placement, rows, planes, roi_means, true_bg, true_ins, warnings)
+    result = BodyAnalysis(volume, template, fill, placement, rows, planes, roi_means, true_bg, true_ins, warnings)
+    _judge_body(result, overrides=overrides, uncertainties=uncertainties, resolution=resolution, variance_power=variance_power)
+    return _with_bands(result, bands, template)
+
+
+def _judge_body(analysis: BodyAnalysis, *, overrides, uncertainties: bool, resolution: bool, variance_power: float) -> None:
+    """Add the noise model, the standard uncertainties and the effective FWHM row (in place).
+
+    A step that cannot be done (too little background, a failed fit) leaves its numbers out
+    and says so in the warnings; it never stops the measurement.
+    """
+    import dataclasses
+
+    noise = None
+    if uncertainties or resolution:
+        from .uncertainty import estimate_noise
+
+        try:
+            noise = estimate_noise(analysis.volume, analysis.placement, analysis.template, variance_power=variance_power)
+        except PhantometryError as exc:
+            analysis.warnings.append(f"no uncertainties: the noise could not be estimated ({exc})")
+    analysis.noise = noise
+    fit = None
+    if resolution:
+        from .metrics.resolution import fit_body
+
+        try:
+            fit = fit_body(analysis, noise)
+        except PhantometryError as exc:
+            analysis.warnings.append(f"effective resolution not fitted: {exc}")
+        else:
+            note = fit.note()
+            if fit.rms_weighted_residual is not None and fit.rms_weighted_residual > 2.0:
+                warn = (
+                    f"the blurred-sphere model fits the sphere voxels poorly (RMS residual {fit.rms_weighted_residual:.1f} noise SDs); "
+                    "effective_fwhm_mm may not describe this reconstruction (edge overshoot, non-Gaussian response, wrong fill record)"
+                )
+                analysis.warnings.append(warn)
+                note = f"WARNING: poor model fit; {note}"
+            r0 = analysis.rows[0]
+            analysis.rows.append(Measurement(series_uid=r0.series_uid, acquired_at=r0.acquired_at, template=r0.template, roi="phantom",
+                                             metric="effective_fwhm_mm", value=fit.fwhm_mm, unit="mm", uncertainty=fit.se_mm, note=note))
+    analysis.resolution = fit
+    if uncertainties and noise is not None:
+        from .uncertainty import body_uncertainties
+
+        try:
+            us = body_uncertainties(analysis, noise, resolution_fit=fit, overrides=overrides)
+        except PhantometryError as exc:
+            analysis.warnings.append(f"no uncertainties: {exc}")
+        else:
+            analysis.rows[:] = [
+                dataclasses.replace(r, uncertainty=float(us[(r.roi, r.metric)])) if (r.roi, r.metric) in us and r.uncertainty is None else r
+                for r in analysis.rows
+            ]
+
+
+def _with_bands(analysis: Any, bands: Sequence[Any] | None, template: Template) -> Any:
+    """Apply acceptance band sets to an analysis's rows (in place); warnings join its warnings."""
+    if not bands:
+        return analysis
+    from .bands import apply_bands, load_band_set
+
+    sets = [load_band_set(b) for b in bands]
+    rows, warns = apply_bands(analysis.rows, sets, fill=getattr(analysis, "fill", None), template=template)
+    analysis.rows[:] = rows
+    analysis.warnings.extend(warns)
+    if hasattr(analysis, "band_sets"):
+        analysis.band_sets = sets
+    return analysis
 
 
 def analysis_json(analysis: BodyAnalysis) -> dict[str, Any]:
@@ -217,6 +308,9 @@ def analysis_json(analysis: BodyAnalysis) -> dict[str, Any]:
         "true_concentrations_bq_ml": {"background": analysis.true_background_bq_ml, **analysis.true_insert_bq_ml},
         "localisation": analysis.placement.as_dict(),
         "warnings": analysis.warnings,
+        "noise": analysis.noise.as_dict() if getattr(analysis, "noise", None) is not None else None,
+        "effective_resolution": analysis.resolution.as_dict() if getattr(analysis, "resolution", None) is not None else None,
+        "bands": [{k: v for k, v in b.summary().items() if k != "entries"} for b in getattr(analysis, "band_sets", [])],
         "measurements": [r.as_dict() for r in analysis.rows],
     }
 
@@ -286,8 +380,19 @@ def measure(
     calibration_factor: float | None = None,
     templates_dirs: Sequence[str] | None = None,
     overlay: bool = True,
+    report: bool = False,
+    seg: bool = False,
+    bands: Sequence[Any] | None = None,
 ) -> BodyAnalysis:
     """Measure a phantom scan from files and write ``out/`` (CSV, JSON, overlay picture).
+
+    ``report=True`` adds ``report.html`` (:mod:`phantometry.report`); ``seg=True`` adds
+    ``rois_seg.dcm``, the placed ROIs as a DICOM Segmentation (:mod:`phantometry.seg`; DICOM
+    input and body image-quality templates only, refused before measuring otherwise).
+
+    ``bands`` (names or files of acceptance band sets, :mod:`phantometry.bands`) fill the
+    rows' verdicts; they are loaded and checked against the template before measuring. Body
+    phantoms also get ``recovery_curve.png`` (measured RC, fitted model curves, bands).
 
     The folder appears only when everything succeeded; if localisation fails, a diagnostic
     picture is written to ``out.failed.png`` beside it and :class:`PhantomNotFound` is raised.
@@ -295,11 +400,22 @@ def measure(
     tpl = load_template(template, list(templates_dirs or []))
     fill_record = load_fill_record(fill)
     overrides = parse_centre_overrides(centres, tpl)
+    band_sets = None
+    if bands:
+        from .bands import check_band_set, load_band_set
+
+        band_sets = [load_band_set(b, templates_dirs=list(templates_dirs or [])) for b in bands]
+        for b in band_sets:
+            check_band_set(b, tpl)
     volume = load_image(inputs, series=series, units=units, acquired_at=acquired_at, nuclide=nuclide, calibration_factor=calibration_factor)
     where = str(inputs if isinstance(inputs, (str, os.PathLike)) else ", ".join(map(str, inputs)))
+    if seg:
+        from .seg import check_seg_request
+
+        check_seg_request(volume, tpl, where)
     out = Path(out)
     try:
-        analysis = measure_volume(volume, tpl, fill_record, overrides=overrides, where=where)
+        analysis = measure_volume(volume, tpl, fill_record, overrides=overrides, where=where, bands=band_sets)
     except PhantomNotFound:
         try:
             from .figures import diagnostic_picture
@@ -316,10 +432,25 @@ def measure(
 
             if isinstance(analysis, BodyAnalysis):
                 overlay_picture(analysis, tmp / "overlay.png")
-            else:
+                from .figures import recovery_curve_picture
+
+                recovery_curve_picture(analysis, tmp / "recovery_curve.png")
+            elif hasattr(analysis, "rod_image"):
                 from .figures import small_animal_overlay
 
                 small_animal_overlay(analysis, tmp / "overlay.png")
+            else:
+                from .figures import inserts_overlay
+
+                inserts_overlay(analysis, tmp / "overlay.png")
+        if seg:
+            from .seg import write_seg
+
+            write_seg(analysis, tmp / "rois_seg.dcm", source_paths=[inputs] if isinstance(inputs, (str, os.PathLike)) else list(inputs))
+        if report:
+            from .report import write_measure_report
+
+            write_measure_report(analysis, tmp / "report.html", folder=tmp)
     return analysis
 
 

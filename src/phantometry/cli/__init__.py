@@ -43,6 +43,9 @@ def _root(
 
 
 from . import commands  # noqa: E402,F401  (registers the commands)
+from . import bands as _bands  # noqa: E402,F401
+from . import ledger as _ledger  # noqa: E402,F401
+from . import compare as _compare  # noqa: E402,F401
 
 
 def main(argv: Optional[list[str]] = None) -> int:
@@ -50,7 +53,7 @@ def main(argv: Optional[list[str]] = None) -> int:
     args = list(sys.argv[1:] if argv is None else argv)
     debug = "--debug" in args
     try:
-        app(args=args, prog_name="phantometry", standalone_mode=False)
+        rc = app(args=args, prog_name="phantometry", standalone_mode=False)
     except PhantometryError as exc:
         if debug:
             traceback.print_exc()
@@ -80,7 +83,8 @@ def main(argv: Optional[list[str]] = None) -> int:
             file=sys.stderr,
         )
         return 1
-    return 0
+    # with standalone_mode=False click returns the exit code of typer.Exit / ctx.exit
+    return rc if isinstance(rc, int) else 0
 
 
 if __name__ == "__main__":  # pragma: no cover

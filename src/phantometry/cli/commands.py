@@ -91,8 +91,26 @@ def measure_cmd(
     nuclide: Optional[str] = typer.Option(None, "--nuclide", help="NIfTI: radionuclide, e.g. F-18."),
     calibration: Optional[float] = typer.Option(None, "--calibration", help="Bq/mL per count for CNTS images."),
     templates_dir: Optional[List[Path]] = typer.Option(None, "--templates", help="Extra folder of templates."),
+    report: bool = typer.Option(False, "--report", help="Also write report.html (self-contained, printable)."),
+    seg: bool = typer.Option(False, "--seg", help="Also write rois_seg.dcm: the ROIs as a DICOM Segmentation (DICOM input only)."),
+    record: bool = typer.Option(False, "--record", help="Record the analysis in the trend ledger after writing the results."),
+    db: Optional[str] = typer.Option(None, "--db", envvar="PHANTOMETRY_DB", help="Ledger database URL or file (with --record)."),
+    site: Optional[str] = typer.Option(None, "--site", help="Ledger site label (with --record; default: the fill record's site)."),
+    scanner: Optional[str] = typer.Option(None, "--scanner", help="Ledger scanner label (with --record; default: station name)."),
+    protocol: Optional[str] = typer.Option(None, "--protocol", help="Ledger protocol label (with --record; default: reconstruction)."),
+    replace: bool = typer.Option(False, "--replace", help="With --record: replace an analysis of the same series + template + settings."),
+    bands: Optional[List[str]] = typer.Option(None, "--bands", help="Acceptance band set (name or YAML file; phantometry bands list); repeatable."),
+    strict: bool = typer.Option(False, "--strict", help="Exit code 3 when any banded value fails (results are still written)."),
 ) -> None:
-    """Measure a phantom scan: recovery coefficients, contrast, background variability, insert residual."""
+    """Measure a phantom scan: recovery coefficients, contrast, background variability, insert residual.
+
+    With --bands, every banded value gets a verdict (pass, fail, n/a); with --strict the exit
+    code is 3 when any verdict is fail (for scripted QC), 0 otherwise.
+    """
+    if strict and not bands:
+        raise InputError("--strict needs at least one --bands NAME to judge against (phantometry bands list)")
+    if not record and (site or scanner or protocol or replace):
+        raise InputError("--site, --scanner, --protocol and --replace apply with --record; add --record")
     from ..measure import measure
 
     analysis = measure(
@@ -107,9 +125,74 @@ def measure_cmd(
         nuclide=nuclide,
         calibration_factor=calibration,
         templates_dirs=[str(d) for d in templates_dir or []],
+        report=report,
+        seg=seg,
+        bands=list(bands or []),
     )
     print_sphere_table(analysis)
+    _print_resolution_and_verdicts(analysis, bool(bands))
     console.print(f"wrote {out}/measurements.csv, measurements.json, overlay.png", markup=False)
+    if (Path(out) / "recovery_curve.png").exists():
+        console.print(f"wrote {out}/recovery_curve.png", markup=False)
+    if report or seg:
+        console.print(f"wrote {out}/" + ", ".join(n for n, on in (("report.html", report), ("rois_seg.dcm", seg)) if on), markup=False)
+    if record:
+        from .ledger import record_after_measure
+
+        record_after_measure(analysis, db, site=site, scanner=scanner, protocol=protocol, replace=replace)
+    if strict:
+        from ..bands import any_failed
+
+        if any_failed(analysis.rows):
+            failed = sum(1 for r in analysis.rows if r.verdict == "fail")
+            console.print(f"[bold]--strict[/bold]: {failed} banded value(s) fail; exit code 3")
+            # SystemExit, not typer.Exit: with standalone_mode=False click returns typer.Exit's
+            # code from app() instead of raising it, and main() would report 0
+            raise SystemExit(3)
+
+
+def _print_resolution_and_verdicts(analysis, banded: bool) -> None:
+    """The effective FWHM line and, with bands, a verdict table (one row per banded value)."""
+    for r in analysis.rows:
+        if r.roi == "phantom" and r.metric == "effective_fwhm_mm":
+            fit = getattr(analysis, "resolution", None)
+            ci = f" (95 % interval {fit.ci95_mm[0]:.2f}-{fit.ci95_mm[1]:.2f} mm)" if fit is not None else ""
+            console.print(f"  effective FWHM {_fmt(r.value, 2)} +- {_fmt(r.uncertainty, 2)} mm{ci}", markup=False)
+    if not banded:
+        return
+    sets = list(getattr(analysis, "band_sets", []))
+    caption = "Limits inclusive; u = standard uncertainty (noise only)."
+    if len(sets) > 1:
+        caption += " verdict: the worst over the bands; each band's limits are in measurements.csv (note)."
+    from rich import box
+
+    t = Table(title="Acceptance bands", caption=caption, caption_justify="left", box=box.SIMPLE_HEAD)
+    t.add_column("ROI", no_wrap=True)
+    t.add_column("metric", no_wrap=True)
+    t.add_column("value", justify="right", no_wrap=True, min_width=5)
+    t.add_column("u", justify="right", no_wrap=True, min_width=5)
+    for bs in sets:
+        t.add_column(escape(bs.name), justify="right", no_wrap=len(sets) == 1, overflow="fold")
+    t.add_column("verdict", no_wrap=True)
+    colour = {"pass": "green", "fail": "bold red", "n/a": "yellow"}
+
+    def cell(verdict: str, text: str = "") -> str:
+        return f"[{colour.get(verdict, 'white')}]{verdict}[/]{text}"
+
+    for r in analysis.rows:
+        if r.verdict is None:
+            continue
+        cells = []
+        for bs in sets:
+            e = bs.entry(r.roi, r.metric)
+            if e is None:
+                cells.append("-")
+                continue
+            lo = "-inf" if e.low is None else f"{e.low:.3g}"
+            hi = "+inf" if e.high is None else f"{e.high:.3g}"
+            cells.append(cell(e.judge(r.value), f" {lo}..{hi}") if len(sets) == 1 else cell(e.judge(r.value)))
+        t.add_row(escape(r.roi), escape(r.metric), _fmt(r.value, 3), _fmt(r.uncertainty, 3), *cells, cell(r.verdict))
+    console.print(t)
 
 
 @app.command("synth")
