@@ -260,7 +260,11 @@ def test_cli_compare_exit_code_and_table(family, tmp_path, capsys):
                  "--out", str(tmp_path / "o"), "--workers", "1"])
     out = capsys.readouterr().out
     assert code == 4
-    assert "FAILED" in out and "PhantomNotFound" not in out and "no phantom body" in out
+    summary = json.loads((tmp_path / "o" / "summary.json").read_text())
+    error = next(s["error"] for s in summary["series"] if s["status"] == "error")
+    assert "wrong" in error
+    flat = " ".join(out.split())
+    assert f"FAILED #2 {family['root'] / 'in' / 'wrong'}: {' '.join(error.split())}" in flat  # the message itself, on one line
     assert "Gauss" in out and "rank" in out
     assert (tmp_path / "o" / "comparison.csv").is_file()
     # a bad fill record is a problem common to all: exit 2, nothing written

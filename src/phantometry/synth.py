@@ -106,7 +106,7 @@ class SynthSpec:
     nuclide: str = "F-18"
     acquired_at: datetime = DEMO_SCAN_TIME
     series_description: str = "QC phantom (synthetic)"
-    reconstruction_method: str = "OSEM 3i21s (synthetic)"
+    reconstruction_method: str = "OSEM (synthetic)"
     templates_dirs: list[str] = field(default_factory=list)
 
     def validate(self) -> None:
