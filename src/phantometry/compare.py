@@ -717,19 +717,12 @@ def comparison_csv(outcomes: Sequence[SeriesOutcome]) -> str:
 
 def read_comparison_csv(path: str | os.PathLike) -> list[tuple[str, Measurement]]:
     """Read ``comparison.csv`` back as ``(label, Measurement)`` pairs."""
-    from dataclasses import fields
+    from .results import measurement_from_record
 
     out = []
     with open(path, newline="", encoding="utf-8") as fh:
         for rec in csv.DictReader(fh):
-            kw: dict[str, Any] = {}
-            for f in fields(Measurement):
-                raw = rec.get(f.name, "")
-                if f.name in ("value", "uncertainty", "band_low", "band_high"):
-                    kw[f.name] = float(raw) if raw not in ("", None) else (math.nan if f.name == "value" else None)
-                else:
-                    kw[f.name] = raw if raw != "" else None
-            out.append((rec["label"], Measurement(**kw)))
+            out.append((rec["label"], measurement_from_record(rec)))
     return out
 
 

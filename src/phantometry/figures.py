@@ -27,6 +27,17 @@ def _plt():
     return plt
 
 
+def _finish(fig, path: str | os.PathLike, dpi: int) -> Path:
+    """Add the caution line, lay out, save as PNG and close the figure."""
+    plt = _plt()
+    fig.text(0.5, 0.01, "Supports, does not replace, a qualified medical physicist's review.", ha="center", fontsize=8, color="#444444")
+    fig.tight_layout(rect=(0, 0.03, 1, 0.95))
+    out = Path(path)
+    fig.savefig(out, dpi=dpi)
+    plt.close(fig)
+    return out
+
+
 def _show_plane(ax, plane, vmax: float, title: str) -> None:
     nv, nu = plane.values.shape
     extent = (-0.5 * plane.pixel_mm, (nu - 0.5) * plane.pixel_mm, -0.5 * plane.pixel_mm, (nv - 0.5) * plane.pixel_mm)
@@ -100,12 +111,7 @@ def overlay_picture(analysis: "BodyAnalysis", path: str | os.PathLike) -> Path:
         f"{tpl.title} | series {vol.series_description or vol.series_uid or ''} | axis tilt {tilt:.1f} deg | ring match {pl.ring_score or 0:.2f}",
         fontsize=10,
     )
-    fig.text(0.5, 0.01, "Supports, does not replace, a qualified medical physicist's review.", ha="center", fontsize=8, color="#444444")
-    fig.tight_layout(rect=(0, 0.03, 1, 0.95))
-    out = Path(path)
-    fig.savefig(out, dpi=110)
-    plt.close(fig)
-    return out
+    return _finish(fig, path, dpi=110)
 
 
 def diagnostic_picture(volume: "Volume", path: str | os.PathLike) -> Path:
@@ -165,12 +171,7 @@ def small_animal_overlay(analysis, path: str | os.PathLike) -> Path:
     for c in tpl.chambers:
         box(list(c.centre_mm), a.spillover_voi.diameter_mm, a.spillover_voi.length_mm, color="#7030a0", lw=1.2, ls=":")
     fig.suptitle(f"{tpl.title} | series {analysis.volume.series_description or analysis.volume.series_uid or ''} | rod match {pl.ring_score or 0:.2f}", fontsize=10)
-    fig.text(0.5, 0.01, "Supports, does not replace, a qualified medical physicist's review.", ha="center", fontsize=8, color="#444444")
-    fig.tight_layout(rect=(0, 0.03, 1, 0.95))
-    out = Path(path)
-    fig.savefig(out, dpi=110)
-    plt.close(fig)
-    return out
+    return _finish(fig, path, dpi=110)
 
 
 # ----------------------------------------------------------------------------- comparison charts
@@ -369,12 +370,7 @@ def inserts_overlay(analysis, path: str | os.PathLike) -> Path:
         axes[0].annotate(ins.name, (uv[0], uv[1] + ins.diameter_mm / 2 + 2), ha="center", va="bottom", fontsize=8,
                          bbox=dict(boxstyle="round,pad=0.15", fc="white", ec="none", alpha=0.8))
     fig.suptitle(f"{tpl.title} | match {pl.ring_score or 0:.2f}", fontsize=10)
-    fig.text(0.5, 0.01, "Supports, does not replace, a qualified medical physicist's review.", ha="center", fontsize=8, color="#444444")
-    fig.tight_layout(rect=(0, 0.03, 1, 0.95))
-    out = Path(path)
-    fig.savefig(out, dpi=100)
-    plt.close(fig)
-    return out
+    return _finish(fig, path, dpi=100)
 
 
 def recovery_curve_picture(analysis: "BodyAnalysis", path: str | os.PathLike) -> Path:

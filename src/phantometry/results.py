@@ -14,7 +14,7 @@ import os
 import shutil
 import tempfile
 from contextlib import contextmanager
-from dataclasses import asdict, dataclass, field, fields
+from dataclasses import asdict, dataclass, fields
 from pathlib import Path
 from typing import Any, Iterator
 
@@ -104,18 +104,20 @@ def measurements_csv(rows: list[Measurement]) -> str:
 
 def read_measurements_csv(path: str | os.PathLike) -> list[Measurement]:
     """Read rows back from a measurements.csv (round trip of :func:`measurements_csv`)."""
-    out = []
     with open(path, newline="", encoding="utf-8") as fh:
-        for rec in csv.DictReader(fh):
-            kw: dict[str, Any] = {}
-            for f in fields(Measurement):
-                raw = rec.get(f.name, "")
-                if f.name in ("value", "uncertainty", "band_low", "band_high"):
-                    kw[f.name] = float(raw) if raw not in ("", None) else (math.nan if f.name == "value" else None)
-                else:
-                    kw[f.name] = raw if raw != "" else None
-            out.append(Measurement(**kw))
-    return out
+        return [measurement_from_record(rec) for rec in csv.DictReader(fh)]
+
+
+def measurement_from_record(rec: dict[str, Any]) -> Measurement:
+    """A Measurement from one CSV record (strings; empty means missing)."""
+    kw: dict[str, Any] = {}
+    for f in fields(Measurement):
+        raw = rec.get(f.name, "")
+        if f.name in ("value", "uncertainty", "band_low", "band_high"):
+            kw[f.name] = float(raw) if raw not in ("", None) else (math.nan if f.name == "value" else None)
+        else:
+            kw[f.name] = raw if raw not in ("", None) else None
+    return Measurement(**kw)
 
 
 def _json_default(o: Any) -> Any:

@@ -4,7 +4,7 @@ spill-over ratios. Formulas in :mod:`phantometry.metrics.nu4`."""
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any
+
 
 import numpy as np
 
