@@ -38,9 +38,9 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Literal, Sequence
 
-import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
+from .yamlfile import read_yaml_file
 from .errors import BandError, PhantometryError
 from .results import Measurement
 
@@ -396,17 +396,7 @@ def load_band_set_file(path: str | os.PathLike, *, templates_dirs: Sequence[str 
         template, or ROIs/metrics the template lacks.
     """
     p = Path(path)
-    try:
-        text = p.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise BandError(f"{p}: cannot read band set ({exc.strerror or exc})") from None
-    try:
-        data = yaml.safe_load(text)
-    except yaml.YAMLError as exc:
-        mark = getattr(exc, "problem_mark", None)
-        at = f" at line {mark.line + 1}" if mark else ""
-        raise BandError(f"{p}: not valid YAML{at}: {getattr(exc, 'problem', exc)}") from None
-    bs = band_set_from_dict(data, source=str(p))
+    bs = band_set_from_dict(read_yaml_file(p, BandError, "band set"), source=str(p))
     if bs.name != p.stem:
         raise BandError(f"{p}: name {bs.name!r} differs from the file name {p.stem!r}; make them equal so the set is found by its name")
     if check:

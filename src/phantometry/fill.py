@@ -63,6 +63,7 @@ from pydantic import (
     model_validator,
 )
 
+from .yamlfile import read_yaml_file
 from .errors import FillRecordError, InputError
 from .nuclides import Nuclide, decay_factor, get_nuclide
 
@@ -395,18 +396,7 @@ def load_fill_record(path: str | os.PathLike) -> FillRecord:
         If the file is missing, is not YAML, or breaks the format (every problem listed).
     """
     p = Path(path)
-    try:
-        text = p.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise FillRecordError(f"{p}: no such fill record; give the YAML file written when filling the phantom") from None
-    except OSError as exc:
-        raise FillRecordError(f"{p}: cannot read the fill record ({exc.strerror})") from None
-    try:
-        data = yaml.safe_load(text)
-    except yaml.YAMLError as exc:
-        mark = getattr(exc, "problem_mark", None)
-        at = f" at line {mark.line + 1}, column {mark.column + 1}" if mark else ""
-        raise FillRecordError(f"{p}: not valid YAML{at}; fix the syntax") from None
+    data = read_yaml_file(p, FillRecordError, "fill record", "give the YAML file written when filling the phantom")
     if data is None:
         raise FillRecordError(f"{p}: the fill record is empty; give at least nuclide and background")
     return FillRecord.from_dict(data, source=p)

@@ -19,9 +19,9 @@ from pathlib import Path
 from typing import Annotated, Any, Literal, Union
 
 import numpy as np
-import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
+from .yamlfile import read_yaml_file
 from .errors import TemplateError
 
 TEMPLATE_PATH_ENV = "PHANTOMETRY_TEMPLATES"
@@ -385,17 +385,7 @@ def template_from_dict(data: Any, source: str = "<template>") -> Template:
 def load_template_file(path: str | os.PathLike) -> Template:
     """Load and validate one template YAML file."""
     p = Path(path)
-    try:
-        text = p.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise TemplateError(f"{p}: cannot read template ({exc.strerror or exc})") from None
-    try:
-        data = yaml.safe_load(text)
-    except yaml.YAMLError as exc:
-        mark = getattr(exc, "problem_mark", None)
-        where = f" at line {mark.line + 1}" if mark else ""
-        raise TemplateError(f"{p}: not valid YAML{where}: {getattr(exc, 'problem', exc)}") from None
-    return template_from_dict(data, source=str(p))
+    return template_from_dict(read_yaml_file(p, TemplateError, "template"), source=str(p))
 
 
 def builtin_template_dir() -> Path:

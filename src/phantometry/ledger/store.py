@@ -32,7 +32,7 @@ from sqlalchemy.engine import Connection
 from sqlalchemy.exc import DBAPIError, IntegrityError, OperationalError
 
 from ..errors import InputError, LedgerError
-from ..results import Measurement
+from ..results import CSV_COLUMNS, Measurement
 from .rules import ControlLimits, control_limits, drift_flags
 from .schema import (
     analyses,
@@ -65,16 +65,8 @@ LEDGER_CSV_COLUMNS = [
     "reconstruction",
     "tool_version",
     "settings_hash",
-    "roi",
-    "metric",
-    "value",
-    "unit",
-    "uncertainty",
-    "band",
-    "band_low",
-    "band_high",
-    "verdict",
-    "note",
+    # then the measurement columns of measurements.csv, from roi on, in the same order
+    *CSV_COLUMNS[CSV_COLUMNS.index("roi") :],
 ]
 _FLOAT_COLUMNS = ("value", "uncertainty", "band_low", "band_high")
 _ANALYSIS_COLUMNS = (
