@@ -4,9 +4,10 @@ import numpy as np
 import pytest
 
 from phantometry.errors import PhantomNotFound
-from phantometry.locate import kabsch, locate
+from phantometry.locate import _coarse, kabsch, locate
 from phantometry.synth import SynthSpec, rotation_matrix_xyz, synthesize
 from phantometry.templates import load_template
+from phantometry.volume import Volume
 
 TPL = load_template("iec-body")
 
@@ -97,3 +98,15 @@ def test_ten_to_one_fill_with_strong_noise():
         pl = locate(res.volume, TPL, activity_ratio={s.name: 10.0 for s in TPL.spheres})
         assert max(_sphere_errors(res, pl)) < 1.0
         assert pl.background_estimate_bq_ml == pytest.approx(2000, rel=0.05)
+
+
+@pytest.mark.parametrize("shape, spacing", [((40, 50, 61), (2.0, 2.0, 2.0)), ((20, 33, 33), (3.0, 1.5, 4.1)), ((10, 10, 10), (7.0, 7.0, 7.0))])
+def test_coarse_grid_is_the_block_mean(shape, spacing):
+    # numpy reference: the mean over a 6-D reshaped view (blocks of the factor per axis)
+    data = np.random.default_rng(0).random(shape, dtype=np.float32)
+    vol = Volume(data, np.diag([spacing[2], spacing[1], spacing[0], 1.0]))
+    acc, f = _coarse(vol)
+    n = np.array(shape) // f
+    ref = data[: n[0] * f[0], : n[1] * f[1], : n[2] * f[2]].reshape(n[0], f[0], n[1], f[1], n[2], f[2]).mean(axis=(1, 3, 5))
+    assert acc.dtype == np.float32 and not np.shares_memory(acc, data)
+    np.testing.assert_allclose(acc, ref, rtol=1e-5)

@@ -38,6 +38,24 @@ def test_iec_body_cross_section(iec):
     assert np.ptp(outline[:, 1]) == pytest.approx(224.0, abs=0.01)
 
 
+@pytest.mark.parametrize("name", ["iec-body", "small-animal"])
+def test_edge_distance_matches_a_dense_outline(name):
+    # The closed-form distance to the outline against brute force: the nearest of 40 000 points
+    # of the outline (mathematics; the outline points lie on the boundary, 0.02 mm apart or less).
+    tpl = load_template(name)
+    body = tpl.body
+    h = body.half_extent_xy_mm
+    rng = np.random.default_rng(5)
+    xy = rng.uniform(-h, h, (4000, 2))
+    inside = body.inside_xy(xy[:, 0], xy[:, 1])
+    xy = xy[inside]
+    outline = body.outline_xy(40_000)
+    brute = np.min(np.linalg.norm(xy[:, None, :] - outline[None, ::4], axis=-1), axis=1)
+    analytic = body.edge_distance_xy(xy[:, 0], xy[:, 1])
+    assert analytic == pytest.approx(brute, abs=0.05)
+    assert np.all(body.edge_distance_xy(np.array([2 * h]), np.array([0.0])) < 0)
+
+
 def test_iec_body_background_set(iec):
     bg = iec.background
     assert len(bg.centres_xy_mm) == 12 and bg.slice_offsets_mm == [-20, -10, 0, 10, 20]

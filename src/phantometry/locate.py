@@ -121,12 +121,19 @@ def _coarse(volume: Volume, target_mm: float = 6.0) -> tuple[np.ndarray, np.ndar
         factors = np.ones(3, int)
         shape = np.array(data.shape)
     ends = shape * factors
-    acc = np.zeros(tuple(shape), dtype=np.float32)
-    # strided sums: much faster than a mean over a 6-D reshaped view of a large array
-    for a in range(factors[0]):
-        for b in range(factors[1]):
-            for c in range(factors[2]):
-                acc += data[a : ends[0] : factors[0], b : ends[1] : factors[1], c : ends[2] : factors[2]]
+    # block sums one axis at a time, largest reduction first: each pass reads contiguous
+    # planes or rows, and the later passes work on already reduced arrays
+    acc = data[: ends[0], : ends[1], : ends[2]]
+    for axis in range(3):
+        f = int(factors[axis])
+        if f == 1:
+            continue
+        parts = [acc[(slice(None),) * axis + (slice(i, int(ends[axis]), f),)] for i in range(f)]
+        total = parts[0] + parts[1] if f > 1 else parts[0].copy()
+        for extra in parts[2:]:
+            total += extra
+        acc = total
+    acc = np.array(acc, dtype=np.float32)  # a copy even when nothing was reduced
     acc /= float(np.prod(factors))
     return acc, factors
 

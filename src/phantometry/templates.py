@@ -47,6 +47,11 @@ class CylinderBody(_Strict):
         cx, cy = self.centre_xy_mm
         return (x - cx) ** 2 + (y - cy) ** 2 <= (self.diameter_mm / 2) ** 2
 
+    def edge_distance_xy(self, x: np.ndarray, y: np.ndarray) -> np.ndarray:
+        """Distance (mm) from in-plane points inside the outline to the outline (negative outside)."""
+        cx, cy = self.centre_xy_mm
+        return self.diameter_mm / 2 - np.hypot(x - cx, y - cy)
+
     def outline_xy(self, n: int = 720) -> np.ndarray:
         t = np.linspace(0, 2 * np.pi, n, endpoint=False)
         r = self.diameter_mm / 2
@@ -93,6 +98,26 @@ class DShapeBody(_Strict):
             (np.abs(x) <= half_flat) | ((np.abs(x) - half_flat) ** 2 + y * y <= c * c)
         )
         return upper | lower
+
+    def edge_distance_xy(self, x: np.ndarray, y: np.ndarray) -> np.ndarray:
+        """Distance (mm) from in-plane points inside the outline to the outline (negative outside).
+
+        The cross-section is the intersection of the disc of radius ``arc_radius_mm`` with
+        the convex set ``K + B_c`` (``K`` the half-strip ``|x| <= flat_width/2, y >= 0``,
+        ``B_c`` the disc of the corner radius). Inside an intersection the distance to the
+        boundary is the smaller of the distances to the two boundaries, and inside ``K + B_c``
+        it is ``c + dist(p, boundary of K)`` for ``p`` in ``K``, else ``c - dist(p, K)``
+        (mathematics: support functions of a Minkowski sum with a disc).
+        """
+        cx, cy = self.centre_xy_mm
+        x = x - cx
+        y = y - cy
+        r, c, half_flat = self.arc_radius_mm, self.corner_radius_mm, self.flat_width_mm / 2
+        ax = np.abs(x)
+        in_k = (ax <= half_flat) & (y >= 0)
+        to_k = np.hypot(np.maximum(ax - half_flat, 0), np.maximum(-y, 0))
+        d_offset = np.where(in_k, c + np.minimum(half_flat - ax, y), c - to_k)
+        return np.minimum(r - np.hypot(x, y), d_offset)
 
     def outline_xy(self, n: int = 1440) -> np.ndarray:
         cx, cy = self.centre_xy_mm

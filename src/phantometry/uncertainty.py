@@ -66,6 +66,7 @@ from scipy import fft as sfft
 from scipy import ndimage
 
 from .errors import PhantomNotFound
+from .threads import fft_workers, threads
 from .volume import Volume
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -177,8 +178,8 @@ class NoiseModel:
         L = np.array(self.half_lags)
         shape = np.array(a.shape)
         size = [sfft.next_fast_len(int(n + l), real=True) for n, l in zip(shape, L)]
-        fa = sfft.rfftn(a, size)
-        acf = sfft.irfftn(fa * np.conj(fa), size)
+        fa = sfft.rfftn(a, size, workers=fft_workers())
+        acf = sfft.irfftn(fa * np.conj(fa), size, workers=fft_workers())
         # lags -L..L (wrap-around indexing), in the window's order
         idx = [np.r_[np.arange(-l, 0) % s, np.arange(0, l + 1)] for l, s in zip(L, size)]
         win = acf[np.ix_(*idx)]
@@ -256,8 +257,9 @@ def background_mask(
 ) -> tuple[tuple[slice, slice, slice], np.ndarray]:
     """Box and mask of the uniform-background voxels used for the noise estimate.
 
-    Voxel centres inside the body at least ``clearance_mm`` from its edge (3-D Euclidean
-    distance transform of the body mask) and from every insert's outer surface, within the
+    Voxel centres inside the body at least ``clearance_mm`` from its edge (the closed-form
+    distance to the outline, :meth:`~phantometry.templates.DShapeBody.edge_distance_xy`, and
+    to the end faces) and from every insert's outer surface, within the
     slab ``slab_mm`` (template z, mm; default the background slice offsets +- 50 mm, within
     the body), thinned about its middle so that its box holds at most ``max_voxels`` voxels
     (enough for a precise estimate; fine grids need far fewer millimetres).
@@ -286,24 +288,26 @@ def background_mask(
         half = max(min_half, half * max_voxels / count * 0.95)
     box = tuple(slice(int(a), int(b) + 1) for a, b in zip(lo, hi))
     nb = tuple(int(b - a + 1) for a, b in zip(lo, hi))
-    kk, jj, ii = np.meshgrid(*[np.arange(a, b + 1, dtype=float) for a, b in zip(lo, hi)], indexing="ij")
-    q = placement.to_template(volume.index_to_world(np.stack([kk, jj, ii], axis=-1)))
-    del kk, jj, ii
-    body = template.body.inside_xy(q[..., 0], q[..., 1]) & (q[..., 2] >= z0) & (q[..., 2] <= z1)
-    # distance to the body edge; the slab's own ends are not edges (distance only in-body)
-    dist = ndimage.distance_transform_edt(body, sampling=volume.spacing_mm)
-    mask = body & (dist >= clearance) & (q[..., 2] >= zlo) & (q[..., 2] <= zhi)
+    # template coordinates of the box's voxel centres (single precision: 1e-4 mm is ample)
+    qx, qy, qz = volume.box_coordinates(box, placement.rotation, placement.translation_mm)
+    # distance to the body edge (closed form; the slab's own ends are not edges)
+    edge = template.body.edge_distance_xy(qx, qy)
+    np.minimum(edge, qz - np.float32(z0), out=edge)
+    np.minimum(edge, np.float32(z1) - qz, out=edge)
+    mask = (edge >= clearance) & (qz >= zlo) & (qz <= zhi)
+    del edge
     for ins in template.inserts:
-        c = np.asarray(ins.centre_mm, float)
-        rel = q - c
-        r_out = 0.5 * ins.outer_diameter_mm + clearance
+        cx, cy, cz = (np.float32(v) for v in ins.centre_mm)
+        r_out = np.float32(0.5 * ins.outer_diameter_mm + clearance)
         if ins.shape == "sphere":
-            mask &= np.einsum("...i,...i->...", rel, rel) > r_out * r_out
+            mask &= (qx - cx) ** 2 + (qy - cy) ** 2 + (qz - cz) ** 2 > r_out * r_out
         else:
-            a = ins.axis_unit
-            ax = rel @ a
-            rho2 = np.einsum("...i,...i->...", rel, rel) - ax * ax
-            mask &= (rho2 > r_out * r_out) | (np.abs(ax) > 0.5 * float(ins.length_mm) + clearance)
+            a = ins.axis_unit.astype(np.float32)
+            dx, dy, dz = qx - cx, qy - cy, qz - cz
+            ax = a[0] * dx + a[1] * dy + a[2] * dz
+            rho2 = dx * dx + dy * dy + dz * dz - ax * ax
+            mask &= (rho2 > r_out * r_out) | (np.abs(ax) > np.float32(0.5 * float(ins.length_mm) + clearance))
+            del dx, dy, dz, ax, rho2
     mask &= np.isfinite(volume.data[box])
     assert mask.shape == nb
     return box, mask  # type: ignore[return-value]
@@ -312,43 +316,51 @@ def background_mask(
 def masked_autocovariance(values: np.ndarray, mask: np.ndarray, half_lags: Sequence[int]) -> tuple[np.ndarray, np.ndarray]:
     """Masked autocovariance of zero-mean ``values`` (where ``mask``) at lags ``-L..L``.
 
-    Returns ``(C, pairs)``: the estimate and the number of voxel pairs behind each lag.
+    Both correlations by FFT in single precision (relative error about 1e-6 of ``C(0)``).
+    Returns ``(C, pairs)``: the estimate (float64) and the number of voxel pairs behind each lag.
     """
-    m = mask.astype(float)
-    e = np.where(mask, values, 0.0)
     L = np.asarray(half_lags, int)
-    size = [sfft.next_fast_len(int(n + l), real=True) for n, l in zip(e.shape, L)]
-    fe = sfft.rfftn(e, size)
-    fm = sfft.rfftn(m, size)
-    num = sfft.irfftn(fe * np.conj(fe), size)
-    den = sfft.irfftn(fm * np.conj(fm), size)
+    size = [sfft.next_fast_len(int(n + l), real=True) for n, l in zip(values.shape, L)]
     idx = [np.r_[np.arange(-l, 0) % s, np.arange(0, l + 1)] for l, s in zip(L, size)]
-    num_w = num[np.ix_(*idx)]
-    den_w = np.rint(den[np.ix_(*idx)])
+
+    def auto(a: np.ndarray) -> np.ndarray:
+        f = sfft.rfftn(a, size, workers=fft_workers())
+        np.multiply(f, np.conj(f), out=f)
+        return sfft.irfftn(f, size, workers=fft_workers())[np.ix_(*idx)].astype(np.float64)
+
+    num_w = auto(np.where(mask, values, 0.0).astype(np.float32))
+    den_w = np.rint(auto(mask.astype(np.float32)))
     with np.errstate(invalid="ignore", divide="ignore"):
         cov = np.where(den_w > 0.5, num_w / np.maximum(den_w, 1.0), 0.0)
     return cov, den_w
+
+
+#: Most voxels the quadratic trend of the noise estimate is fitted to (an even subsample).
+TREND_FIT_VOXELS = 50_000
 
 
 def _quadratic_trend(values: np.ndarray, mask: np.ndarray) -> np.ndarray:
     """Least-squares quadratic polynomial in the voxel indices fitted to ``values`` where ``mask``.
 
     Ten coefficients: slow non-uniformity is removed while the noise keeps almost all its
-    power (10 degrees of freedom out of thousands of independent samples).
+    power (10 degrees of freedom out of thousands of independent samples). Fitted to an even
+    subsample of at most :data:`TREND_FIT_VOXELS` voxels (ample for ten smooth terms);
+    returned on the whole box in single precision.
     """
     idx = np.nonzero(mask)
+    step = max(1, int(math.ceil(idx[0].size / TREND_FIT_VOXELS)))
+    idx = tuple(i[::step] for i in idx)
     centre = np.array([np.mean(i) for i in idx])
     scale = np.array([max(1.0, np.ptp(i) / 2) for i in idx])
     z, y, x = [(i - c) / s for i, c, s in zip(idx, centre, scale)]
     A = np.stack([np.ones_like(z), z, y, x, z * z, y * y, x * x, z * y, z * x, y * x], axis=1)
-    coef = np.linalg.solve(A.T @ A, A.T @ values[idx])  # normal equations: 10 x 10, well scaled
-    grids = np.meshgrid(*[(np.arange(n) - c) / s for n, c, s in zip(values.shape, centre, scale)], indexing="ij", sparse=True)
-    Z, Y, X = grids
-    terms = [1.0, Z, Y, X, Z * Z, Y * Y, X * X, Z * Y, Z * X, Y * X]
-    out = np.zeros(values.shape)
-    for c, t in zip(coef, terms):
-        out = out + c * t
-    return out
+    coef = np.linalg.solve(A.T @ A, A.T @ values[idx].astype(np.float64))  # normal equations: 10 x 10, well scaled
+    Z, Y, X = np.meshgrid(*[((np.arange(n) - c) / s).astype(np.float32) for n, c, s in zip(values.shape, centre, scale)],
+                          indexing="ij", sparse=True)
+    c = coef.astype(np.float32)
+    # the separable terms first (small arrays), then the full box once
+    out = (c[0] + c[1] * Z + c[4] * Z * Z) + (c[2] * Y + c[5] * Y * Y + c[7] * Z * Y) + (c[3] * X + c[6] * X * X + c[8] * Z * X + c[9] * Y * X)
+    return out.astype(np.float32, copy=False)
 
 
 def estimate_noise(
@@ -381,10 +393,12 @@ def estimate_noise(
     n = int(mask.sum())
     if n < 500:
         raise PhantomNotFound(f"{where}: only {n} background voxels away from the inserts and edges; cannot estimate the noise (is the phantom in the field of view?)")
-    vals = volume.data[box].astype(np.float64)
+    vals = volume.data[box]
     spacing = np.asarray(volume.spacing_mm, float)
-    background = float(vals[mask].mean())
-    resid = np.where(mask, vals - _quadratic_trend(vals, mask), 0.0)
+    background = float(vals[mask].mean(dtype=np.float64))
+    resid = vals - _quadratic_trend(vals, mask)
+    resid[~mask] = 0.0
+    del vals
     L0 = np.minimum(np.ceil(MAX_LAG_MM / spacing).astype(int), np.maximum(np.array(mask.shape) // 3, 1))
     cov, _ = masked_autocovariance(resid, mask, L0)
     c0 = float(cov[tuple(L0)])
@@ -439,12 +453,14 @@ def plane_voxel_weights(volume: Volume, plane: "PlaneImage", box2d: tuple[slice,
     shape = np.array(volume.shape)
     lo = np.clip(base.min(axis=0), 0, shape - 1)
     hi = np.clip(base.max(axis=0) + 1, 0, shape - 1)
-    out = np.zeros(tuple(hi - lo + 1))
+    dims = tuple(int(v) for v in hi - lo + 1)
+    flat_idx, flat_w = [], []
     for corner in np.ndindex(2, 2, 2):
         c = np.array(corner)
-        cw = np.prod(np.where(c == 1, frac, 1.0 - frac), axis=1) * w
+        flat_w.append(np.prod(np.where(c == 1, frac, 1.0 - frac), axis=1) * w)
         pos = np.clip(base + c, 0, shape - 1) - lo  # map_coordinates mode "nearest" at the faces
-        np.add.at(out, tuple(pos.T), cw)
+        flat_idx.append(np.ravel_multi_index(tuple(pos.T), dims))
+    out = np.bincount(np.concatenate(flat_idx), np.concatenate(flat_w), int(np.prod(dims))).reshape(dims)
     box = tuple(slice(int(a), int(b) + 1) for a, b in zip(lo, hi))
     return box, out  # type: ignore[return-value]
 
@@ -526,10 +542,13 @@ def simulate_noise(noise: NoiseModel, shape: tuple[int, int, int], n_draws: int,
     emb = np.zeros(size)
     idx = [np.r_[np.arange(-l, 0) % s, np.arange(0, l + 1)] for l, s in zip(L, size)]
     emb[np.ix_(*idx)] = noise.autocov_bq2_ml2
-    spec = np.clip(sfft.rfftn(emb).real, 0.0, None)
+    spec = np.clip(sfft.rfftn(emb, workers=fft_workers()).real, 0.0, None)
     amp = np.sqrt(spec).astype(np.float32)
     white = rng.standard_normal((n_draws, *size), dtype=np.float32)  # single precision: twice as fast, ample here
-    field = sfft.irfftn(sfft.rfftn(white, axes=(1, 2, 3)) * amp[None], size, axes=(1, 2, 3))
+    spectrum = sfft.rfftn(white, axes=(1, 2, 3), workers=fft_workers())
+    del white
+    spectrum *= amp[None]
+    field = sfft.irfftn(spectrum, size, axes=(1, 2, 3), workers=fft_workers())
     return field[:, : shape[0], : shape[1], : shape[2]]
 
 
@@ -599,7 +618,8 @@ def _scaled_quadratic_form(noise: NoiseModel, volume: Volume, box, a: np.ndarray
         return max(noise.quadratic_form(a * noise.scale_at(level_fn(_box_world(volume, box)))), 0.0)
     from scipy import signal
 
-    field = signal.fftconvolve(a, noise.autocov_bq2_ml2, mode="same")
+    with sfft.set_workers(fft_workers()):
+        field = signal.fftconvolve(a, noise.autocov_bq2_ml2, mode="same")
     vals = np.nan_to_num(volume.data[box].astype(np.float64)) / max(noise.background_bq_ml, 1e-12)
     if noise.variance_power != 1.0:
         vals = np.clip(vals, 0.0, None) ** noise.variance_power
@@ -621,23 +641,35 @@ def discs_variance(
     single weight image before being spread onto the voxels (:func:`plane_voxel_weights`),
     so the covariance of every pair of discs, on one plane or across planes, is included.
     """
-    from .rois import disc_weights
+    from .rois import _disc_batch
 
     k = len(discs)
-    by_plane: dict[int, tuple["PlaneImage", list[tuple[tuple[slice, slice], np.ndarray]]]] = {}
+    by_plane: dict[int, tuple["PlaneImage", list[np.ndarray]]] = {}
     for plane, uv in discs:
-        box2d, w2d = disc_weights(plane, np.asarray(uv, float), diameter_mm)
-        by_plane.setdefault(id(plane), (plane, []))[1].append((box2d, w2d / float(w2d.sum()) / k))
+        by_plane.setdefault(id(plane), (plane, []))[1].append(np.asarray(uv, float).reshape(2))
     parts = []
-    for plane, items in by_plane.values():
-        r0 = min(b[0].start for b, _ in items)
-        r1 = max(b[0].stop for b, _ in items)
-        c0 = min(b[1].start for b, _ in items)
-        c1 = max(b[1].stop for b, _ in items)
-        img = np.zeros((r1 - r0, c1 - c0))
-        for b, w in items:
-            img[b[0].start - r0 : b[0].stop - r0, b[1].start - c0 : b[1].stop - c0] += w
-        box3, w3 = plane_voxel_weights(volume, plane, (slice(r0, r1), slice(c0, c1)), img)
+    for plane, uvs in by_plane.values():
+        # every disc of this plane at once: exact pixel fractions, each disc normalised to 1 / K
+        w, r0, c0, H = _disc_batch(plane, np.array(uvs), diameter_mm, 7)
+        w = w / w.sum(axis=(1, 2), keepdims=True) / k
+        nv, nu = plane.values.shape
+        ra, rb = max(int(r0.min()) - H, 0), min(int(r0.max()) + H + 1, nv)
+        ca, cb = max(int(c0.min()) - H, 0), min(int(c0.max()) + H + 1, nu)
+        img = np.zeros((rb - ra, cb - ca))
+        for stencil, r, c in zip(w, r0, c0):  # one small stencil per ROI (K ROIs, not voxels)
+            rows = slice(r - H, r + H + 1)
+            cols = slice(c - H, c + H + 1)
+            # clip the stencil to the plane (weights beyond it are zero for ROIs inside the image)
+            sr = slice(max(0, ra - rows.start), (2 * H + 1) - max(0, rows.stop - rb))
+            sc = slice(max(0, ca - cols.start), (2 * H + 1) - max(0, cols.stop - cb))
+            img[max(rows.start, ra) - ra : min(rows.stop, rb) - ra, max(cols.start, ca) - ca : min(cols.stop, cb) - ca] += stencil[sr, sc]
+        used_r = np.flatnonzero(img.sum(axis=1) > 0)
+        used_c = np.flatnonzero(img.sum(axis=0) > 0)
+        if used_r.size == 0:
+            raise PhantomNotFound("uncertainty: disc ROIs lie outside the plane image; check the ROI positions")
+        img = img[used_r[0] : used_r[-1] + 1, used_c[0] : used_c[-1] + 1]
+        box2d = (slice(ra + int(used_r[0]), ra + int(used_r[-1]) + 1), slice(ca + int(used_c[0]), ca + int(used_c[-1]) + 1))
+        box3, w3 = plane_voxel_weights(volume, plane, box2d, img)
         parts.append((box3, w3, 1.0))
     box, a = combine_weights(parts)
     return _scaled_quadratic_form(noise, volume, box, a, heteroscedastic, level_fn)
@@ -722,7 +754,8 @@ def bootstrap_search_sd(
         arg = np.argmax(flat, axis=1)
         vmax = flat[np.arange(n), arg]
         maxes.append(vmax)
-        conv = signal.fftconvolve(sims, kern_flipped[None].astype(np.float32), mode="same", axes=(1, 2, 3)) / ksum
+        with sfft.set_workers(fft_workers()):
+            conv = signal.fftconvolve(sims, kern_flipped[None].astype(np.float32), mode="same", axes=(1, 2, 3)) / ksum
         peaks.append(np.where(peak_cand[None], conv, -np.inf).reshape(n, -1).max(axis=1))
         thr = bg + float(fraction) * (vmax - bg)
         for i in range(n):
@@ -796,6 +829,7 @@ def body_uncertainties(
     # ---- spheres
     spacing_max = float(np.max(vol.spacing_mm))
     model_fn = resolution_fit.model_at if resolution_fit is not None else None
+    searches: list[tuple[str, np.ndarray, float, float]] = []
     for s in tpl.spheres:
         name = s.name
         centre = pl.insert_centre(name)
@@ -824,10 +858,29 @@ def body_uncertainties(
             # no measurable noise (a noise-free image: float32 rounding only): nothing to simulate
             out[(name, "rc_max")] = out[(name, "rc_mean")] = out[(name, "rc_peak")] = 0.0
             continue
-        sds = bootstrap_search_sd(
-            noise, vol, centre, s.diameter_mm, cb_ref, model_fn,
-            fraction=a.isocontour_fraction, peak_diameter_mm=a.peak_diameter_mm, n_draws=n_draws, seed=_seed(name),
-        )
+        searches.append((name, centre, float(s.diameter_mm), true))
+    # ---- the RC searches by simulation: one sphere per thread (numpy and the FFTs release
+    # the interpreter lock), each with its own seed, so results do not depend on the threads
+    def simulate(item: tuple[str, np.ndarray, float, float]) -> tuple[str, float, dict[str, float]]:
+        name, centre, diameter, true = item
+        with threads(1):
+            sds = bootstrap_search_sd(
+                noise, vol, centre, diameter, cb_ref, model_fn,
+                fraction=a.isocontour_fraction, peak_diameter_mm=a.peak_diameter_mm, n_draws=n_draws, seed=_seed(name),
+            )
+        return name, true, sds
+
+    n_threads = min(fft_workers(), len(searches))
+    if n_threads > 1:
+        from concurrent.futures import ThreadPoolExecutor
+
+        # largest spheres first, so the threads finish together
+        order = sorted(searches, key=lambda item: -item[2])
+        with ThreadPoolExecutor(n_threads) as pool:
+            results = list(pool.map(simulate, order))
+    else:
+        results = [simulate(item) for item in searches]
+    for name, true, sds in results:
         out[(name, "rc_max")] = sds["max"] / true
         out[(name, "rc_mean")] = sds["mean"] / true
         out[(name, "rc_peak")] = sds["peak"] / true

@@ -183,6 +183,32 @@ class Volume:
         ijk = pts @ inv[:3, :3].T + inv[:3, 3]
         return ijk[..., ::-1]
 
+    def box_coordinates(
+        self,
+        box: tuple[slice, slice, slice],
+        rotation: np.ndarray | None = None,
+        origin_mm: np.ndarray | None = None,
+        dtype: Any = np.float32,
+    ) -> list[np.ndarray]:
+        """Coordinates (mm) of the voxel centres of an array-order box, one array per axis.
+
+        World coordinates, or with ``rotation`` and ``origin_mm`` the coordinates
+        ``(p - origin) @ rotation`` of another frame (a template's). Each array has the box's
+        shape and ``dtype``; built by broadcasting one arange per axis (no index grids).
+        """
+        A = self.affine[:3, :3]
+        t = self.affine[:3, 3].astype(float)
+        if rotation is not None:
+            R = np.asarray(rotation, float)
+            A = R.T @ A
+            t = R.T @ (t - (np.zeros(3) if origin_mm is None else np.asarray(origin_mm, float)))
+        ax = [np.arange(b.start, b.stop, dtype=dtype) for b in box]  # k, j, i
+        k = ax[0][:, None, None]
+        j = ax[1][None, :, None]
+        i = ax[2][None, None, :]
+        one = np.dtype(dtype).type
+        return [one(A[r, 0]) * i + one(A[r, 1]) * j + one(A[r, 2]) * k + one(t[r]) for r in range(3)]
+
     def world_grid(self, slices: tuple[slice, slice, slice] | None = None) -> np.ndarray:
         """World coordinates (mm) of voxel centres, shape (nz, ny, nx, 3) or of a sub-box.
 

@@ -1,0 +1,48 @@
+"""How many threads the FFT-heavy steps of one measurement may use.
+
+One measurement on an otherwise idle machine uses every CPU for its Fourier transforms
+(``scipy.fft`` ``workers``); :func:`phantometry.compare.compare` runs one measurement per
+worker process and gives each its share, so the machine is not oversubscribed. The
+environment variable ``PHANTOMETRY_THREADS`` sets the default.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import threading
+from typing import Iterator
+
+_threads: int | None = None
+_local = threading.local()
+
+
+def fft_workers() -> int:
+    """Threads for one FFT (at least 1): this thread's :func:`threads` value, the process's
+    :func:`set_threads` value, ``PHANTOMETRY_THREADS``, or the CPU count."""
+    mine = getattr(_local, "threads", None)
+    if mine is not None:
+        return mine
+    if _threads is not None:
+        return _threads
+    env = os.environ.get("PHANTOMETRY_THREADS", "").strip()
+    if env.isdigit() and int(env) > 0:
+        return int(env)
+    return max(1, os.cpu_count() or 1)
+
+
+def set_threads(n: int | None) -> None:
+    """Set the thread count of this process (``None``: back to the default)."""
+    global _threads
+    _threads = None if n is None else max(1, int(n))
+
+
+@contextlib.contextmanager
+def threads(n: int | None) -> Iterator[None]:
+    """Context manager: ``n`` threads for the calling thread's block (``None``: the process value)."""
+    before = getattr(_local, "threads", None)
+    _local.threads = None if n is None else max(1, int(n))
+    try:
+        yield
+    finally:
+        _local.threads = before
