@@ -13,6 +13,7 @@ from phantometry.metrics.resolution import (
     FWHM_PER_SIGMA,
     SphereObservation,
     blurred_ball_profile,
+    blurred_ball_profile_derivatives,
     blurred_disc_profile,
     blurred_sphere_centre,
     effective_sigma_mm,
@@ -50,6 +51,24 @@ def test_profile_is_noncentral_chi_square():
     r = np.array([0.5, 2.0, 6.0, 8.9, 9.0, 11.0, 15.0, 22.0])
     expected = stats.ncx2.cdf((R / s) ** 2, 3, (r / s) ** 2)
     assert blurred_ball_profile(r, R, s) == pytest.approx(expected, abs=1e-9)
+
+
+@pytest.mark.parametrize("R, s", [(5.0, 2.0), (18.5, 2.6), (10.0, 0.4), (3.0, 6.0)])
+def test_profile_derivatives_match_finite_differences(R, s):
+    # Reference library: the profile is scipy.stats.ncx2.cdf((R/s)^2, 3, (r/s)^2); its
+    # derivatives in r and s by central differences of that reference (step 1e-4 mm).
+    r = np.array([0.0, 1e-7, 1e-3, 0.05, 0.5, 3.0, 4.99, 9.9, 10.0, 14.0, 25.0])
+    f, f_r, f_s = blurred_ball_profile_derivatives(r, R, s)
+
+    def ref(rr, ss):
+        return stats.ncx2.cdf((R / ss) ** 2, 3, (np.asarray(rr) / ss) ** 2)
+
+    h = 1e-4
+    rr = np.maximum(r, 2 * h)  # central differences away from r = 0, where df/dr = 0 by symmetry
+    assert f == pytest.approx(blurred_ball_profile(r, R, s), abs=1e-12)
+    assert f_r[r >= 2 * h] == pytest.approx(((ref(rr + h, s) - ref(rr - h, s)) / (2 * h))[r >= 2 * h], abs=1e-6)
+    assert f_r[r < 1e-4 * s] == pytest.approx(0.0, abs=1e-12)
+    assert f_s == pytest.approx((ref(np.maximum(r, 1e-9), s + h) - ref(np.maximum(r, 1e-9), s - h)) / (2 * h), abs=1e-6)
 
 
 def test_disc_profile_axis_value_and_chi2():

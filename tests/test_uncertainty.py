@@ -174,6 +174,22 @@ def test_switches_and_noise_free_image():
     assert full.noise.as_dict()["voxel_sd_bq_ml"] < 1.0
 
 
+def test_uncertainties_do_not_depend_on_the_thread_count():
+    # The RC simulations run one sphere per thread with a seed per sphere: the same numbers
+    # whether one thread or two do the work.
+    from phantometry.threads import threads
+
+    res = synthesize(SynthSpec(voxel_mm=(4.0,) * 3, psf_fwhm_mm=8.0, noise_cv=0.1, sphere_ratio=4.0, seed=7))
+    fill = FillRecord.from_dict(res.fill_record)
+    runs = []
+    for n in (1, 2):
+        with threads(n):
+            a = measure_volume(res.volume, TPL, fill)
+        runs.append({(r.roi, r.metric): (r.value, r.uncertainty) for r in a.rows})
+    assert runs[0] == runs[1]
+    assert runs[0][("sphere_37mm", "rc_mean")][1] > 0
+
+
 # ----------------------------------------------------------------------------- Monte Carlo
 @pytest.mark.slow
 def test_reported_uncertainties_match_monte_carlo(monkeypatch):
