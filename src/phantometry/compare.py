@@ -58,6 +58,7 @@ from typing import Any, Callable, Sequence
 from . import __version__
 from .errors import InputError, NoPETSeries, PhantometryError
 from .results import CAUTION, CSV_COLUMNS, Measurement, _fmt, atomic_output_dir, measurements_csv, to_json
+from .threads import current_threads, set_threads
 from .volume import Reconstruction
 
 #: Exit code of ``phantometry compare`` when at least one series failed (the others succeeded).
@@ -850,7 +851,13 @@ def compare(
         # start the workers now so that their imports overlap the header scan below
         # (from a thread: with the fork server, starting a worker waits for its module preload)
         n_workers = workers or n_cpu
-        executor = ProcessPoolExecutor(max_workers=n_workers, mp_context=_context())
+        # each worker gets its share of the CPUs for its FFTs and simulations, and this process
+        # (which measures too while the workers start) one thread: no oversubscription, and
+        # one measurement's working memory per process
+        executor = ProcessPoolExecutor(max_workers=n_workers, mp_context=_context(),
+                                       initializer=set_threads, initargs=(max(1, n_cpu // n_workers),))
+        threads_before = current_threads()
+        set_threads(1)
 
         def start_pool() -> None:
             try:
@@ -893,6 +900,7 @@ def compare(
             for w in warm:
                 w.cancel()
             executor.shutdown(wait=True, cancel_futures=True)
+            set_threads(threads_before)
     return result
 
 

@@ -27,11 +27,18 @@ def _plt():
     return plt
 
 
-def _finish(fig, path: str | os.PathLike, dpi: int) -> Path:
-    """Add the caution line, lay out, save as PNG and close the figure."""
+def _finish(fig, path: str | os.PathLike, dpi: int, margins: dict[str, float] | None = None) -> Path:
+    """Add the caution line, lay out, save as PNG and close the figure.
+
+    ``margins`` (``subplots_adjust`` keywords) fix the layout, much faster than
+    ``tight_layout`` (used without them) for figures drawn on every measurement.
+    """
     plt = _plt()
     fig.text(0.5, 0.01, "Supports, does not replace, a qualified medical physicist's review.", ha="center", fontsize=8, color="#444444")
-    fig.tight_layout(rect=(0, 0.03, 1, 0.95))
+    if margins:
+        fig.subplots_adjust(**margins)
+    else:
+        fig.tight_layout(rect=(0, 0.03, 1, 0.95))
     out = Path(path)
     fig.savefig(out, dpi=dpi)
     plt.close(fig)
@@ -111,7 +118,7 @@ def overlay_picture(analysis: "BodyAnalysis", path: str | os.PathLike) -> Path:
         f"{tpl.title} | series {vol.series_description or vol.series_uid or ''} | axis tilt {tilt:.1f} deg | ring match {pl.ring_score or 0:.2f}",
         fontsize=10,
     )
-    return _finish(fig, path, dpi=110)
+    return _finish(fig, path, dpi=110, margins=dict(left=0.01, right=0.99, bottom=0.05, top=0.9, wspace=0.04))
 
 
 def diagnostic_picture(volume: "Volume", path: str | os.PathLike) -> Path:
@@ -394,7 +401,7 @@ def recovery_curve_picture(analysis: "BodyAnalysis", path: str | os.PathLike) ->
     metrics = ("rc_max", "rc_mean", "rc_peak")
     fig, axes = plt.subplots(1, 3, figsize=(13, 4.6))
     d_all = [s.diameter_mm for s in tpl.spheres]
-    d_grid = np.linspace(max(2.0, min(d_all) * 0.6), max(d_all) * 1.12, 120)
+    d_grid = np.linspace(max(2.0, min(d_all) * 0.6), max(d_all) * 1.12, 60)
     band_sets = list(getattr(analysis, "band_sets", []))
     labelled: set = set()
     hatches = ("///", "\\\\\\", "...", "xxx")
@@ -458,9 +465,4 @@ def recovery_curve_picture(analysis: "BodyAnalysis", path: str | os.PathLike) ->
         head = "Recovery coefficients (no resolution fit)"
     bands = ", ".join(b.name for b in band_sets) or "none"
     fig.suptitle(f"{head} | bands: {bands} | bars: standard uncertainty; grey boxes: acceptance bands", fontsize=9.5)
-    fig.text(0.5, 0.01, "Supports, does not replace, a qualified medical physicist's review.", ha="center", fontsize=8, color="#444444")
-    fig.tight_layout(rect=(0, 0.03, 1, 0.94))
-    out = Path(path)
-    fig.savefig(out, dpi=100)
-    plt.close(fig)
-    return out
+    return _finish(fig, path, dpi=100, margins=dict(left=0.05, right=0.99, bottom=0.15, top=0.87, wspace=0.2))

@@ -121,19 +121,14 @@ def _coarse(volume: Volume, target_mm: float = 6.0) -> tuple[np.ndarray, np.ndar
         factors = np.ones(3, int)
         shape = np.array(data.shape)
     ends = shape * factors
-    # block sums one axis at a time, largest reduction first: each pass reads contiguous
-    # planes or rows, and the later passes work on already reduced arrays
-    acc = data[: ends[0], : ends[1], : ends[2]]
-    for axis in range(3):
-        f = int(factors[axis])
-        if f == 1:
-            continue
-        parts = [acc[(slice(None),) * axis + (slice(i, int(ends[axis]), f),)] for i in range(f)]
-        total = parts[0] + parts[1] if f > 1 else parts[0].copy()
-        for extra in parts[2:]:
-            total += extra
-        acc = total
-    acc = np.array(acc, dtype=np.float32)  # a copy even when nothing was reduced
+    f0, f1, f2 = (int(f) for f in factors)
+    n0, n1, n2 = (int(n) for n in shape)
+    acc = np.empty((n0, n1, n2), dtype=np.float32)
+    # one coarse plane at a time (a loop over planes, not voxels): the working memory is a
+    # few fine planes, not a fraction of the volume
+    for a in range(n0):
+        block = data[a * f0 : (a + 1) * f0, : ends[1], : ends[2]].sum(axis=0, dtype=np.float32)
+        acc[a] = block.reshape(n1, f1, n2, f2).sum(axis=(1, 3), dtype=np.float32)
     acc /= float(np.prod(factors))
     return acc, factors
 
@@ -198,7 +193,10 @@ def find_body(volume: Volume, where: str, target_mm: float = 6.0) -> _Body:
     if vals.size == 0 or float(np.max(vals)) <= 0:
         raise PhantomNotFound(f"{where}: the image is empty (no positive voxels); is this the right series?")
     try:
-        otsu = float(threshold_otsu(vals))  # air included: the split is air | phantom, not background | hot inserts
+        # air included: the split is air | phantom, not background | hot inserts; Otsu's
+        # method on a 256-bin histogram (as scikit-image bins an image), built in chunks
+        counts, edges = np.histogram(vals, bins=256)
+        otsu = float(threshold_otsu(hist=(counts, 0.5 * (edges[:-1] + edges[1:]))))
     except ValueError:
         raise PhantomNotFound(f"{where}: the image has no contrast between air and phantom") from None
     above = coarse > otsu
@@ -217,12 +215,38 @@ def find_body(volume: Volume, where: str, target_mm: float = 6.0) -> _Body:
     mad = float(np.median(np.abs(fine_core_vals - np.median(fine_core_vals)))) if fine_core_vals.size else 0.0
     # the coarse grid averages prod(factors) voxels; scale the SD back to one voxel (upper bound)
     noise_sd = 1.4826 * mad * math.sqrt(float(np.prod(factors)))
-    pts = _coarse_to_world(volume, np.argwhere(filled), factors)
-    centred = pts - pts.mean(axis=0)
-    evals, evecs = np.linalg.eigh(np.cov(centred.T))
-    proj = centred @ evecs
-    extent = np.sort(proj.max(axis=0) - proj.min(axis=0) + np.mean(np.abs(volume.spacing_mm * factors)))
+    extent = _mask_extent_mm(volume, filled, factors)
     return _Body(filled, coarse, factors, bg, noise_sd, extent)
+
+
+def _mask_extent_mm(volume: Volume, mask: np.ndarray, factors: np.ndarray) -> np.ndarray:
+    """Sorted extents (mm) of a coarse mask along its principal axes, plus one coarse voxel.
+
+    The principal axes are the eigenvectors of the covariance of the mask's block centres in
+    world mm, computed from first and second moments (sums of the mask along the array axes),
+    and the extents from the projections of the mask on them: no list of the mask's
+    coordinates is built.
+    """
+    n = float(mask.sum())
+    idx = [np.arange(m, dtype=np.float64) for m in mask.shape]
+    marg = [mask.sum(axis=tuple(b for b in range(3) if b != a), dtype=np.float64) for a in range(3)]
+    mean = np.array([float(idx[a] @ marg[a]) / n for a in range(3)])
+    second = np.zeros((3, 3))
+    for a in range(3):
+        second[a, a] = float((idx[a] ** 2) @ marg[a]) / n
+    for a, b in ((0, 1), (0, 2), (1, 2)):
+        pair = mask.sum(axis=3 - a - b, dtype=np.float64)  # the mask summed over the third axis
+        second[a, b] = second[b, a] = float(idx[a] @ pair @ idx[b]) / n
+    cov_idx = second - np.outer(mean, mean)
+    # coarse (k, j, i) -> world: fine index = coarse * factor + (factor - 1) / 2
+    B = volume.affine[:3, :3][:, ::-1] * np.asarray(factors, float)[None, :]
+    _, evecs = np.linalg.eigh(B @ cov_idx @ B.T)
+    extent = []
+    for e in evecs.T:
+        w = B.T @ e  # projection per coarse index step along (k, j, i)
+        proj = (w[0] * idx[0])[:, None, None] + (w[1] * idx[1])[None, :, None] + (w[2] * idx[2])[None, None, :]
+        extent.append(float(proj[mask].max() - proj[mask].min()))
+    return np.sort(np.array(extent) + np.mean(np.abs(volume.spacing_mm * factors)))
 
 
 def _template_extent(template: Template) -> np.ndarray:

@@ -31,6 +31,11 @@ def fft_workers() -> int:
     return max(1, os.cpu_count() or 1)
 
 
+def current_threads() -> int | None:
+    """The value :func:`set_threads` last set in this process (``None``: the default)."""
+    return _threads
+
+
 def set_threads(n: int | None) -> None:
     """Set the thread count of this process (``None``: back to the default)."""
     global _threads

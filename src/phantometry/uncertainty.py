@@ -179,7 +179,10 @@ class NoiseModel:
         shape = np.array(a.shape)
         size = [sfft.next_fast_len(int(n + l), real=True) for n, l in zip(shape, L)]
         fa = sfft.rfftn(a, size, workers=fft_workers())
-        acf = sfft.irfftn(fa * np.conj(fa), size, workers=fft_workers())
+        power = fa.real**2
+        power += fa.imag**2  # |F a|^2, real: half the memory of the complex product
+        del fa
+        acf = sfft.irfftn(power, size, workers=fft_workers())
         # lags -L..L (wrap-around indexing), in the window's order
         idx = [np.r_[np.arange(-l, 0) % s, np.arange(0, l + 1)] for l, s in zip(L, size)]
         win = acf[np.ix_(*idx)]
@@ -288,6 +291,21 @@ def background_mask(
         half = max(min_half, half * max_voxels / count * 0.95)
     box = tuple(slice(int(a), int(b) + 1) for a, b in zip(lo, hi))
     nb = tuple(int(b - a + 1) for a, b in zip(lo, hi))
+    mask = np.empty(nb, dtype=bool)
+    # in slabs of the box's first axis (a loop over slabs, not voxels): the coordinates and
+    # tests of one slab at a time keep the working memory a small fraction of the volume
+    step = max(1, int(math.ceil(nb[0] / 8)))
+    for k0 in range(0, nb[0], step):
+        k1 = min(nb[0], k0 + step)
+        sub = (slice(box[0].start + k0, box[0].start + k1), box[1], box[2])
+        mask[k0:k1] = _background_slab(volume, placement, template, sub, clearance, z0, z1, zlo, zhi)
+    mask &= np.isfinite(volume.data[box])
+    assert mask.shape == nb
+    return box, mask  # type: ignore[return-value]
+
+
+def _background_slab(volume, placement, template, box, clearance: float, z0: float, z1: float, zlo: float, zhi: float) -> np.ndarray:
+    """The background test of :func:`background_mask` on one array-order box."""
     # template coordinates of the box's voxel centres (single precision: 1e-4 mm is ample)
     qx, qy, qz = volume.box_coordinates(box, placement.rotation, placement.translation_mm)
     # distance to the body edge (closed form; the slab's own ends are not edges)
@@ -307,10 +325,7 @@ def background_mask(
             ax = a[0] * dx + a[1] * dy + a[2] * dz
             rho2 = dx * dx + dy * dy + dz * dz - ax * ax
             mask &= (rho2 > r_out * r_out) | (np.abs(ax) > np.float32(0.5 * float(ins.length_mm) + clearance))
-            del dx, dy, dz, ax, rho2
-    mask &= np.isfinite(volume.data[box])
-    assert mask.shape == nb
-    return box, mask  # type: ignore[return-value]
+    return mask
 
 
 def masked_autocovariance(values: np.ndarray, mask: np.ndarray, half_lags: Sequence[int]) -> tuple[np.ndarray, np.ndarray]:
@@ -325,8 +340,11 @@ def masked_autocovariance(values: np.ndarray, mask: np.ndarray, half_lags: Seque
 
     def auto(a: np.ndarray) -> np.ndarray:
         f = sfft.rfftn(a, size, workers=fft_workers())
-        np.multiply(f, np.conj(f), out=f)
-        return sfft.irfftn(f, size, workers=fft_workers())[np.ix_(*idx)].astype(np.float64)
+        del a
+        power = f.real**2
+        power += f.imag**2  # |F a|^2, real: half the memory of the complex product
+        del f
+        return sfft.irfftn(power, size, workers=fft_workers())[np.ix_(*idx)].astype(np.float64)
 
     num_w = auto(np.where(mask, values, 0.0).astype(np.float32))
     den_w = np.rint(auto(mask.astype(np.float32)))
@@ -744,8 +762,12 @@ def bootstrap_search_sd(
     bg = float(background_bq_ml)
     rng = np.random.default_rng(seed)
     maxes, means, peaks = [], [], []
-    chunk = max(1, min(n_draws, int(2_000_000 // max(1, search.size))))
-    structure = np.ones((3, 3, 3), bool)
+    # draws per chunk: at most 2 million voxels, and a small fraction of the image, so the
+    # simulation's working memory (about ten chunk-sized arrays) stays below the volume's
+    budget = min(2_000_000, max(volume.data.size // 24, 20_000))
+    chunk = max(1, min(n_draws, int(budget // max(1, search.size))))
+    structure = np.zeros((3, 3, 3, 3), bool)
+    structure[1] = True  # the 26-neighbourhood of a voxel, within its own draw
     done = 0
     while done < n_draws:
         n = min(chunk, n_draws - done)
@@ -757,12 +779,14 @@ def bootstrap_search_sd(
         with sfft.set_workers(fft_workers()):
             conv = signal.fftconvolve(sims, kern_flipped[None].astype(np.float32), mode="same", axes=(1, 2, 3)) / ksum
         peaks.append(np.where(peak_cand[None], conv, -np.inf).reshape(n, -1).max(axis=1))
-        thr = bg + float(fraction) * (vmax - bg)
-        for i in range(n):
-            labels, _ = ndimage.label(grown & (sims[i] >= thr[i]), structure=structure)
-            lab = labels.reshape(-1)[arg[i]]
-            voi = labels == lab
-            means.append(float(sims[i][voi].mean(dtype=np.float64)))
+        thr = (bg + float(fraction) * (vmax - bg)).astype(np.float32)
+        # every draw of the chunk labelled at once: 26-connected within a draw, never across
+        labels, _ = ndimage.label(grown[None] & (sims >= thr[:, None, None, None]), structure=structure)
+        labels = labels.reshape(n, -1)
+        voi = labels == labels[np.arange(n), arg][:, None]
+        del labels
+        sums = np.where(voi, sims.reshape(n, -1), np.float32(0)).sum(axis=1, dtype=np.float64)
+        means.extend((sums / voi.sum(axis=1)).tolist())
         done += n
     return {
         "max": float(np.std(np.concatenate(maxes), ddof=1)),
@@ -800,9 +824,76 @@ def body_uncertainties(
     -------
     dict (roi, metric) -> standard uncertainty in the metric's unit (see the module notes).
     """
+    n_draws = BOOTSTRAP_DRAWS if n_draws is None else int(n_draws)
+    vol = analysis.volume
+    tpl = analysis.template
+    fill = analysis.fill
+    pl = analysis.placement
+    a = tpl.analysis
+    out: dict[tuple[str, str], float] = {}
+    ref = a.reference_background_diameter_mm
+    c_b = {d: float(np.mean(means)) for d, means in analysis.background_roi_means.items()}
+    cb_ref = c_b[ref]
+    model_fn = resolution_fit.model_at if resolution_fit is not None else None
+    # ---- the RC searches by simulation, started first: one sphere per thread (numpy and the
+    # FFTs release the interpreter lock) while this thread propagates the ROI means below;
+    # each sphere has its own seed, so results do not depend on the threads
+    searches: list[tuple[str, np.ndarray, float, float]] = []
+    noise_free = noise.sd_bq_ml <= 1e-6 * max(noise.background_bq_ml, 1e-12)
+    for s in tpl.spheres:
+        true = 0.0 if fill.is_cold(s.name) else float(analysis.true_insert_bq_ml[s.name])
+        if true <= 0:
+            continue
+        if noise_free:
+            # no measurable noise (a noise-free image: float32 rounding only): nothing to simulate
+            out[(s.name, "rc_max")] = out[(s.name, "rc_mean")] = out[(s.name, "rc_peak")] = 0.0
+        else:
+            searches.append((s.name, pl.insert_centre(s.name), float(s.diameter_mm), true))
+
+    def simulate(item: tuple[str, np.ndarray, float, float]) -> tuple[str, float, dict[str, float]]:
+        name, centre, diameter, true = item
+        with threads(1):
+            sds = bootstrap_search_sd(
+                noise, vol, centre, diameter, cb_ref, model_fn,
+                fraction=a.isocontour_fraction, peak_diameter_mm=a.peak_diameter_mm, n_draws=n_draws, seed=_seed(name),
+            )
+        return name, true, sds
+
+    n_threads = min(fft_workers(), len(searches))
+    pool = None
+    futures = []
+    if n_threads > 1:
+        from concurrent.futures import ThreadPoolExecutor
+
+        pool = ThreadPoolExecutor(n_threads)
+        futures = [pool.submit(simulate, item) for item in sorted(searches, key=lambda item: -item[2])]  # largest first
+    try:
+        _roi_mean_uncertainties(analysis, noise, out, c_b, resolution_fit, overrides)
+        results = [f.result() for f in futures] if pool is not None else [simulate(item) for item in searches]
+    finally:
+        if pool is not None:
+            pool.shutdown(wait=True, cancel_futures=True)
+    for name, true, sds in results:
+        out[(name, "rc_max")] = sds["max"] / true
+        out[(name, "rc_mean")] = sds["mean"] / true
+        out[(name, "rc_peak")] = sds["peak"] / true
+    return out
+
+
+def _roi_mean_uncertainties(
+    analysis: Any,
+    noise: NoiseModel,
+    out: dict[tuple[str, str], float],
+    c_b: dict[float, float],
+    resolution_fit: Any,
+    overrides: dict[str, np.ndarray] | None,
+) -> None:
+    """The ROI-mean based uncertainties of :func:`body_uncertainties` (first-order propagation), into ``out``.
+
+    ``c_b``: background ROI set mean per diameter, Bq/mL.
+    """
     from .rois import disc_means, sample_plane
 
-    n_draws = BOOTSTRAP_DRAWS if n_draws is None else int(n_draws)
     vol = analysis.volume
     tpl = analysis.template
     fill = analysis.fill
@@ -811,7 +902,6 @@ def body_uncertainties(
     bg = tpl.background
     u_dir, v_dir, axis = pl.rotation[:, 0], pl.rotation[:, 1], pl.rotation[:, 2]
     values = {(r.roi, r.metric): r.value for r in analysis.rows}
-    out: dict[tuple[str, str], float] = {}
     # ---- background ROI sets: the mean of K ROI means per size (level = background)
     centres_xy = np.asarray(bg.centres_xy_mm, float)
     discs_by_offset = []
@@ -820,16 +910,12 @@ def body_uncertainties(
         uv = plane.world_to_uv(pl.to_world(np.c_[centres_xy, np.full(len(centres_xy), off)]))
         discs_by_offset.extend((plane, c) for c in uv)
     u_cb: dict[float, float] = {}
-    c_b: dict[float, float] = {}
-    for d, means in analysis.background_roi_means.items():
-        c_b[d] = float(np.mean(means))
+    for d in analysis.background_roi_means:
         u_cb[d] = math.sqrt(discs_variance(noise, vol, discs_by_offset, d, heteroscedastic=False))
     ref = a.reference_background_diameter_mm
     cb_ref, ucb_ref = c_b[ref], u_cb[ref]
     # ---- spheres
     spacing_max = float(np.max(vol.spacing_mm))
-    model_fn = resolution_fit.model_at if resolution_fit is not None else None
-    searches: list[tuple[str, np.ndarray, float, float]] = []
     for s in tpl.spheres:
         name = s.name
         centre = pl.insert_centre(name)
@@ -849,41 +935,6 @@ def body_uncertainties(
         if s.diameter_mm in analysis.background_roi_means:
             k = len(analysis.background_roi_means[s.diameter_mm])
             out[(name, "background_variability_pct")] = u_background_variability(n_pct, k, cb, ucb)
-        if not hot:
-            continue
-        true = float(analysis.true_insert_bq_ml[name])
-        if true <= 0:
-            continue
-        if noise.sd_bq_ml <= 1e-6 * max(noise.background_bq_ml, 1e-12):
-            # no measurable noise (a noise-free image: float32 rounding only): nothing to simulate
-            out[(name, "rc_max")] = out[(name, "rc_mean")] = out[(name, "rc_peak")] = 0.0
-            continue
-        searches.append((name, centre, float(s.diameter_mm), true))
-    # ---- the RC searches by simulation: one sphere per thread (numpy and the FFTs release
-    # the interpreter lock), each with its own seed, so results do not depend on the threads
-    def simulate(item: tuple[str, np.ndarray, float, float]) -> tuple[str, float, dict[str, float]]:
-        name, centre, diameter, true = item
-        with threads(1):
-            sds = bootstrap_search_sd(
-                noise, vol, centre, diameter, cb_ref, model_fn,
-                fraction=a.isocontour_fraction, peak_diameter_mm=a.peak_diameter_mm, n_draws=n_draws, seed=_seed(name),
-            )
-        return name, true, sds
-
-    n_threads = min(fft_workers(), len(searches))
-    if n_threads > 1:
-        from concurrent.futures import ThreadPoolExecutor
-
-        # largest spheres first, so the threads finish together
-        order = sorted(searches, key=lambda item: -item[2])
-        with ThreadPoolExecutor(n_threads) as pool:
-            results = list(pool.map(simulate, order))
-    else:
-        results = [simulate(item) for item in searches]
-    for name, true, sds in results:
-        out[(name, "rc_max")] = sds["max"] / true
-        out[(name, "rc_mean")] = sds["mean"] / true
-        out[(name, "rc_peak")] = sds["peak"] / true
     # ---- low-density insert
     if a.lung_insert is not None and (a.lung_insert, "lung_residual_pct") in values:
         lung = tpl.insert(a.lung_insert)
@@ -911,7 +962,6 @@ def body_uncertainties(
     out[("background", "mean_bq_ml")] = ucb_ref
     if analysis.true_background_bq_ml > 0:
         out[("background", "activity_recovery")] = ucb_ref / analysis.true_background_bq_ml
-    return out
 
 
 def _cylinder_level(fit: Any, centre: np.ndarray, axis: np.ndarray, radius_mm: float):

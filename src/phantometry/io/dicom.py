@@ -338,14 +338,21 @@ def _collect_files(roots: Sequence[Path]) -> list[Path]:
     return sorted(set(files))
 
 
-def _read_header(path: Path) -> tuple[str, Any]:
-    """Parse one file with pixel data deferred.
+#: The attributes :func:`discover_series` reads (the rest of each header is skipped).
+_LISTING_TAGS = ["SeriesInstanceUID", "SeriesNumber", "SeriesDescription", "Modality", "StudyInstanceUID", "TimezoneOffsetFromUTC"]
+
+
+def _read_header(path: Path, listing: bool = False) -> tuple[str, Any]:
+    """Parse one file with pixel data deferred (``listing``: only :data:`_LISTING_TAGS`).
 
     Returns ``("ok", dataset)``, ``("skip", None)`` for non-DICOM/DICOMDIR files, or
     ``("broken", reason)`` for DICOM files whose series cannot be told.
     """
     try:
-        ds = pydicom.dcmread(path, defer_size=_DEFER_BYTES)
+        if listing:
+            ds = pydicom.dcmread(path, stop_before_pixels=True, specific_tags=_LISTING_TAGS)
+        else:
+            ds = pydicom.dcmread(path, defer_size=_DEFER_BYTES)
     except InvalidDicomError:
         return "skip", None
     except Exception as exc:  # pydicom raises many types on damaged files
@@ -363,11 +370,11 @@ def _read_header(path: Path) -> tuple[str, Any]:
     return "ok", ds
 
 
-def _scan(roots: Sequence[Path]) -> tuple[dict[str, list[_Entry]], list[tuple[Path, str]]]:
+def _scan(roots: Sequence[Path], listing: bool = False) -> tuple[dict[str, list[_Entry]], list[tuple[Path, str]]]:
     groups: dict[str, list[_Entry]] = {}
     broken: list[tuple[Path, str]] = []
     for path in _collect_files(roots):
-        status, payload = _read_header(path)
+        status, payload = _read_header(path, listing)
         if status == "ok":
             uid = _ascii(payload, "SeriesInstanceUID") or ""
             groups.setdefault(uid, []).append(_Entry(path, payload))
@@ -416,7 +423,7 @@ def discover_series(paths: str | os.PathLike | Iterable[str | os.PathLike]) -> l
     InputError
         If a path does not exist.
     """
-    groups, _ = _scan(_as_path_list(paths))
+    groups, _ = _scan(_as_path_list(paths), listing=True)
     return _sorted_infos(groups)
 
 

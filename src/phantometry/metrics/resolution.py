@@ -290,26 +290,32 @@ def model_rc_mean(
     """
     s = effective_sigma_mm(fwhm_mm, voxel_mm)
     ratio = float(activity_ratio)
-    diam = np.atleast_1d(np.asarray(diameter_mm, float))
-    out = np.empty(diam.shape)
-    for n, d in enumerate(diam):  # a handful of sphere sizes, each a vectorised 1-D integral
-        R = 0.5 * d
-        r = np.linspace(0.0, R + wall_mm + 6.0 * s + 1.0, 4000)
-        v = sphere_profile(r, R, ratio, 1.0, s, wall_mm)
-        thr = 1.0 + fraction * (v[0] - 1.0)
-        below = np.flatnonzero(v < thr)
-        if below.size == 0 or below[0] == 0:
-            out[n] = v[0] / ratio
-            continue
-        i = int(below[0])
+    diam = np.atleast_1d(np.asarray(diameter_mm, float)).ravel()
+    R = 0.5 * diam[:, None]
+    # one radial grid per diameter (rows), all diameters at once
+    r = np.linspace(0.0, 1.0, 4000)[None, :] * (R + wall_mm + 6.0 * s + 1.0)
+    v = sphere_profile(r, R, ratio, 1.0, s, wall_mm)
+    thr = 1.0 + fraction * (v[:, :1] - 1.0)
+    below = v < thr
+    i = np.where(below.any(axis=1), np.argmax(below, axis=1), 0)
+    rows = np.arange(len(diam))
+    out = v[:, 0] / ratio  # no crossing (or at the centre): the centre value
+    ok = i > 0
+    if np.any(ok):
+        ii = i[ok]
+        rk, vk, tk = r[ok], v[ok], thr[ok, 0]
+        sel = rows[: int(ok.sum())]
         # linear interpolation of the crossing between nodes i-1 and i
-        r_t = r[i - 1] + (v[i - 1] - thr) / (v[i - 1] - v[i]) * (r[i] - r[i - 1])
-        rr = np.append(r[:i], r_t)
-        vv = np.append(v[:i], thr)
-        trap = np.trapezoid if hasattr(np, "trapezoid") else np.trapz
-        integral = trap(vv * rr * rr, rr)
-        out[n] = 3.0 * integral / r_t**3 / ratio
-    return float(out[0]) if np.ndim(diameter_mm) == 0 else out
+        r_t = rk[sel, ii - 1] + (vk[sel, ii - 1] - tk) / (vk[sel, ii - 1] - vk[sel, ii]) * (rk[sel, ii] - rk[sel, ii - 1])
+        keep = np.arange(r.shape[1])[None, :] < ii[:, None]
+        # trapezoid rule of v r^2 over the nodes before the crossing plus the last partial panel
+        f = vk * rk * rk
+        panels = 0.5 * (f[:, 1:] + f[:, :-1]) * np.diff(rk, axis=1)
+        inner = np.sum(np.where(keep[:, 1:], panels, 0.0), axis=1)
+        last = 0.5 * (f[sel, ii - 1] + tk * r_t * r_t) * (r_t - rk[sel, ii - 1])
+        out = out.copy()
+        out[ok] = 3.0 * (inner + last) / r_t**3 / ratio
+    return float(out[0]) if np.ndim(diameter_mm) == 0 else out.reshape(np.shape(diameter_mm))
 
 
 def model_rc_peak(
@@ -331,13 +337,11 @@ def model_rc_peak(
     ratio = float(activity_ratio)
     rp = 0.5 * float(peak_diameter_mm)
     r = np.linspace(0.0, rp, 2000)
-    diam = np.atleast_1d(np.asarray(diameter_mm, float))
-    out = np.empty(diam.shape)
+    diam = np.atleast_1d(np.asarray(diameter_mm, float)).ravel()
     trap = np.trapezoid if hasattr(np, "trapezoid") else np.trapz
-    for n, d in enumerate(diam):
-        v = sphere_profile(r, 0.5 * d, ratio, 1.0, s, wall_mm)
-        out[n] = 3.0 * trap(v * r * r, r) / rp**3 / ratio
-    return float(out[0]) if np.ndim(diameter_mm) == 0 else out
+    v = sphere_profile(r[None, :], 0.5 * diam[:, None], ratio, 1.0, s, wall_mm)  # all diameters at once
+    out = 3.0 * trap(v * r * r, r, axis=1) / rp**3 / ratio
+    return float(out[0]) if np.ndim(diameter_mm) == 0 else out.reshape(np.shape(diameter_mm))
 
 
 # =========================================================================== the fit
@@ -509,7 +513,7 @@ class _Problem:
         sb = np.bincount(pv, fb, n)
         model = b + k * sc - b * sb
         n_s = len(self.radius)
-        J = np.zeros((n, 3 + 3 * n_s))
+        J = np.zeros((n, 3 + 3 * n_s), dtype=np.float32)  # single precision: half the memory; sums in double (_gram)
         J[:, 0] = np.bincount(pv, (k * c * fc_s - b * fb_s) * ds_dfwhm, n)
         J[:, 1] = sc
         J[:, 2] = 1.0 - sb
@@ -608,12 +612,11 @@ def _fit_once(volume, spheres, start_centres, background, exclusions, noise, mar
     true = np.array([max(0.0, s.true_bq_ml) for s in spheres])
     # (voxel, sphere) pairs: own sphere and neighbours whose blur can reach the voxel
     reach = radius + wall + margin + 8.0
-    rel = world[:, None, :] - start_centres[None, :, :]
-    dist = np.sqrt(np.einsum("vsk,vsk->vs", rel, rel))
-    pv, ps = np.nonzero(dist < reach[None, :])
+    near = np.stack([np.einsum("vk,vk->v", world - c, world - c) < r * r for c, r in zip(start_centres, reach)], axis=1)
+    pv, ps = np.nonzero(near)
+    del near
     prob = _Problem(values, world, flat, pv, ps, radius, wall, true, voxel_var)
     hot = bool(np.any(true > 0))
-    n_s = len(spheres)
 
     def unpack(q: np.ndarray) -> np.ndarray:
         if fit_centres:
@@ -622,8 +625,8 @@ def _fit_once(volume, spheres, start_centres, background, exclusions, noise, mar
 
     def jac_model(p: np.ndarray) -> np.ndarray:
         J = prob.evaluate(p)[1]
+        prob._cache = None  # the caller scales J in place
         if not hot:
-            J = J.copy()
             J[:, 1] = 0.0
         return J if fit_centres else J[:, :3]
 
@@ -636,8 +639,9 @@ def _fit_once(volume, spheres, start_centres, background, exclusions, noise, mar
         return (prob.model(unpack(q)) - values) * weights
 
     def jac(q: np.ndarray) -> np.ndarray:
-        J = jac_model(unpack(q))
-        return J[:, : len(q)] * weights[:, None]
+        J = jac_model(unpack(q))[:, : len(q)]
+        J *= weights[:, None].astype(np.float32)
+        return J
 
     x0 = np.concatenate([[fwhm_start, 1.0, background], start_centres.ravel() if fit_centres else []])
     free = np.ones(len(x0), bool)
@@ -666,12 +670,13 @@ def _fit_once(volume, spheres, start_centres, background, exclusions, noise, mar
     active = np.ones(Jw.shape[1], bool)
     if not hot:
         active[1] = False
-    Ja = Jw[:, active]
+    Ja = Jw if active.all() else Jw[:, active]
+    JtJ, _ = _gram(Ja)
     try:
-        JtJ_inv = np.linalg.inv(Ja.T @ Ja)
+        JtJ_inv = np.linalg.inv(JtJ)
     except np.linalg.LinAlgError:
-        JtJ_inv = np.linalg.pinv(Ja.T @ Ja)
-    g = Ja @ JtJ_inv[:, 0]  # d fwhm / d (weighted residual)
+        JtJ_inv = np.linalg.pinv(JtJ)
+    g = (Ja @ JtJ_inv[:, 0].astype(Ja.dtype)).astype(np.float64)  # d fwhm / d (weighted residual)
     if sigma_b is not None:
         var = noise.quadratic_form_flat(g, flat, volume.shape)  # type: ignore[union-attr]
         method = "noise autocorrelation"
@@ -699,6 +704,19 @@ def _fit_once(volume, spheres, start_centres, background, exclusions, noise, mar
     )
 
 
+def _gram(J: np.ndarray, r: np.ndarray | None = None, rows: int = 8192) -> tuple[np.ndarray, np.ndarray | None]:
+    """``J'J`` (and ``J'r``) summed in double precision over blocks of rows of a (single precision) ``J``."""
+    n_par = J.shape[1]
+    A = np.zeros((n_par, n_par))
+    g = None if r is None else np.zeros(n_par)
+    for a in range(0, J.shape[0], rows):
+        block = J[a : a + rows].astype(np.float64)
+        A += block.T @ block
+        if g is not None:
+            g += block.T @ r[a : a + rows]
+    return A, g
+
+
 def _solve(residual, jac, x0: np.ndarray, free: np.ndarray, tol: float = 1e-8, max_iter: int = 200) -> np.ndarray:
     """Levenberg-Marquardt on the free parameters, by the normal equations.
 
@@ -711,18 +729,21 @@ def _solve(residual, jac, x0: np.ndarray, free: np.ndarray, tol: float = 1e-8, m
     """
     x = np.array(x0, float)
 
+    all_free = bool(np.all(free))
+
     def evaluate(q: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         full = x.copy()
         full[free] = q
-        return residual(full), jac(full)[:, free]
+        r = residual(full)
+        J = jac(full)
+        return r, (J if all_free else J[:, free])
 
     q = x[free].copy()
     r, J = evaluate(q)
     cost = float(r @ r)
     lam = 1e-3
     for _ in range(max_iter):
-        A = J.T @ J
-        g = J.T @ r
+        A, g = _gram(J, r)
         diag = np.diag(A).copy()
         diag = np.maximum(diag, 1e-12 * max(float(diag.max()), 1e-300))
         improved = False
