@@ -545,6 +545,22 @@ def u_background_variability(n_pct: float, k: int, c_b: float, u_b: float) -> fl
 
 
 # =========================================================================== simulation
+def _noise_filter(noise: NoiseModel, shape: tuple[int, int, int]) -> tuple[list[int], np.ndarray]:
+    """FFT grid and filter ``sqrt(S)`` of :func:`simulate_noise` for a box ``shape`` (kept per model and shape)."""
+    cache = noise.__dict__.setdefault("_filters", {})
+    if shape in cache:
+        return cache[shape]
+    L = np.array(noise.half_lags)
+    # a period of n + L keeps every wrapped lag between two points of the box beyond the window
+    size = [sfft.next_fast_len(int(n + l), real=True) for n, l in zip(shape, L)]
+    emb = np.zeros(size)
+    idx = [np.r_[np.arange(-l, 0) % s, np.arange(0, l + 1)] for l, s in zip(L, size)]
+    emb[np.ix_(*idx)] = noise.autocov_bq2_ml2
+    spec = np.clip(sfft.rfftn(emb, workers=fft_workers()).real, 0.0, None)
+    cache[shape] = (size, np.sqrt(spec).astype(np.float32))
+    return cache[shape]
+
+
 def simulate_noise(noise: NoiseModel, shape: tuple[int, int, int], n_draws: int, rng: np.random.Generator) -> np.ndarray:
     """Stationary Gaussian noise fields with the model's autocovariance, shape ``(n_draws, *shape)``.
 
@@ -554,14 +570,7 @@ def simulate_noise(noise: NoiseModel, shape: tuple[int, int, int], n_draws: int,
     Background-level noise (variance ``C(0)``), single precision; scale by
     :meth:`NoiseModel.scale_at`.
     """
-    L = np.array(noise.half_lags)
-    # a period of n + L keeps every wrapped lag between two points of the box beyond the window
-    size = [sfft.next_fast_len(int(n + l), real=True) for n, l in zip(shape, L)]
-    emb = np.zeros(size)
-    idx = [np.r_[np.arange(-l, 0) % s, np.arange(0, l + 1)] for l, s in zip(L, size)]
-    emb[np.ix_(*idx)] = noise.autocov_bq2_ml2
-    spec = np.clip(sfft.rfftn(emb, workers=fft_workers()).real, 0.0, None)
-    amp = np.sqrt(spec).astype(np.float32)
+    size, amp = _noise_filter(noise, tuple(shape))
     white = rng.standard_normal((n_draws, *size), dtype=np.float32)  # single precision: twice as fast, ample here
     spectrum = sfft.rfftn(white, axes=(1, 2, 3), workers=fft_workers())
     del white
@@ -764,7 +773,7 @@ def bootstrap_search_sd(
     maxes, means, peaks = [], [], []
     # draws per chunk: at most 2 million voxels, and a small fraction of the image, so the
     # simulation's working memory (about ten chunk-sized arrays) stays below the volume's
-    budget = min(2_000_000, max(volume.data.size // 24, 20_000))
+    budget = min(2_000_000, max(volume.data.size // 16, 50_000))
     chunk = max(1, min(n_draws, int(budget // max(1, search.size))))
     structure = np.zeros((3, 3, 3, 3), bool)
     structure[1] = True  # the 26-neighbourhood of a voxel, within its own draw
