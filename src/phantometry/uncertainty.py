@@ -173,21 +173,9 @@ class NoiseModel:
         Computed as ``sum_tau C(tau) (a * a)(tau)`` with the autocorrelation of ``a`` by FFT
         (zero padded by the lag window). ``correlation=True`` uses ``rho`` instead of ``C``.
         """
-        a = np.asarray(a, float)
         kern = self.correlation if correlation else self.autocov_bq2_ml2
-        L = np.array(self.half_lags)
-        shape = np.array(a.shape)
-        size = [sfft.next_fast_len(int(n + l), real=True) for n, l in zip(shape, L)]
-        fa = sfft.rfftn(a, size, workers=fft_workers())
-        power = fa.real**2
-        power += fa.imag**2  # |F a|^2, real: half the memory of the complex product
-        del fa
-        acf = sfft.irfftn(power, size, workers=fft_workers())
-        # lags -L..L (wrap-around indexing), in the window's order
-        idx = [np.r_[np.arange(-l, 0) % s, np.arange(0, l + 1)] for l, s in zip(L, size)]
-        win = acf[np.ix_(*idx)]
-        # lags beyond the box size are zero in acf only if size >= n + l (true by construction)
-        return float(np.sum(win * kern))
+        # lags beyond the box size are zero in the autocorrelation (zero padding by the window)
+        return float(np.sum(_autocorrelation(np.asarray(a, float), self.half_lags) * kern))
 
     def quadratic_form_flat(self, g: np.ndarray, flat: np.ndarray, shape: tuple[int, int, int], *, correlation: bool = True) -> float:
         """:meth:`quadratic_form` of values ``g`` at flat voxel indices ``flat`` of a grid ``shape``."""
@@ -328,26 +316,31 @@ def _background_slab(volume, placement, template, box, clearance: float, z0: flo
     return mask
 
 
+def _autocorrelation(a: np.ndarray, half_lags: Sequence[int]) -> np.ndarray:
+    """``sum_x a(x) a(x + tau)`` at lags ``-L..L`` (array order), by FFT with zero padding by the window.
+
+    In the precision of ``a``; the power spectrum ``|F a|^2`` is kept real (half the memory
+    of the complex product).
+    """
+    L = np.asarray(half_lags, int)
+    size = [sfft.next_fast_len(int(n + l), real=True) for n, l in zip(a.shape, L)]
+    f = sfft.rfftn(a, size, workers=fft_workers())
+    power = f.real**2
+    power += f.imag**2
+    del f
+    acf = sfft.irfftn(power, size, workers=fft_workers())
+    idx = [np.r_[np.arange(-l, 0) % s, np.arange(0, l + 1)] for l, s in zip(L, size)]  # wrap-around lags
+    return acf[np.ix_(*idx)]
+
+
 def masked_autocovariance(values: np.ndarray, mask: np.ndarray, half_lags: Sequence[int]) -> tuple[np.ndarray, np.ndarray]:
     """Masked autocovariance of zero-mean ``values`` (where ``mask``) at lags ``-L..L``.
 
     Both correlations by FFT in single precision (relative error about 1e-6 of ``C(0)``).
     Returns ``(C, pairs)``: the estimate (float64) and the number of voxel pairs behind each lag.
     """
-    L = np.asarray(half_lags, int)
-    size = [sfft.next_fast_len(int(n + l), real=True) for n, l in zip(values.shape, L)]
-    idx = [np.r_[np.arange(-l, 0) % s, np.arange(0, l + 1)] for l, s in zip(L, size)]
-
-    def auto(a: np.ndarray) -> np.ndarray:
-        f = sfft.rfftn(a, size, workers=fft_workers())
-        del a
-        power = f.real**2
-        power += f.imag**2  # |F a|^2, real: half the memory of the complex product
-        del f
-        return sfft.irfftn(power, size, workers=fft_workers())[np.ix_(*idx)].astype(np.float64)
-
-    num_w = auto(np.where(mask, values, 0.0).astype(np.float32))
-    den_w = np.rint(auto(mask.astype(np.float32)))
+    num_w = _autocorrelation(np.where(mask, values, 0.0).astype(np.float32), half_lags).astype(np.float64)
+    den_w = np.rint(_autocorrelation(mask.astype(np.float32), half_lags).astype(np.float64))
     with np.errstate(invalid="ignore", divide="ignore"):
         cov = np.where(den_w > 0.5, num_w / np.maximum(den_w, 1.0), 0.0)
     return cov, den_w
