@@ -129,6 +129,73 @@ def test_simulated_noise_has_the_model_autocovariance():
     assert lag1 == pytest.approx(nm.autocov_bq2_ml2[4, 3, 3], rel=0.08)
 
 
+@pytest.mark.parametrize("shape", [(9, 8, 11), (8, 9, 10)])  # odd and even last axis (with a Nyquist plane)
+def test_spectral_synthesis_reproduces_every_lag_of_the_model(shape):
+    # Known truth: the model autocovariance itself. Fourier components drawn directly in the
+    # half spectrum must give the covariance C(tau) at lags along every axis and diagonals,
+    # the zero and Nyquist planes of the last axis included (they stand for themselves only).
+    nm = _gaussian_noise_model(shape_lags=(3, 2, 4), sigma_vox=0.9)
+    z = U.simulate_noise(nm, shape, 12000, np.random.default_rng(5)).astype(np.float64)
+    assert z.shape == (12000, *shape)
+    c = nm.autocov_bq2_ml2
+    centre = np.array(c.shape) // 2
+    for lag in [(0, 0, 0), (1, 0, 0), (0, 1, 0), (0, 0, 1), (1, 1, 0), (1, -1, 2), (0, 2, 0), (2, 0, 0)]:
+        a = tuple(slice(max(0, -l), n - max(0, l)) for l, n in zip(lag, shape))
+        b = tuple(slice(max(0, l), n - max(0, -l)) for l, n in zip(lag, shape))
+        emp = float(np.mean(z[(slice(None), *a)] * z[(slice(None), *b)]))
+        assert emp == pytest.approx(float(c[tuple(centre + lag)]), abs=0.03 * float(c[tuple(centre)])), lag
+    assert np.abs(np.mean(z, axis=0)).max() < 0.1  # zero mean at every voxel (SE 2/sqrt(12000) = 0.018)
+    per_voxel = z.var(axis=0)
+    assert per_voxel.mean() == pytest.approx(4.0, rel=0.01)
+    assert per_voxel.min() > 3.75 and per_voxel.max() < 4.25  # stationary (SE of each 0.052: within 5 SE)
+
+
+def test_simulated_searches_equal_the_roi_engine_on_the_same_draws(monkeypatch):
+    # Reference: the ROI engine's own searches (phantometry.rois.max_in_sphere,
+    # isocontour_mean, peak_search) run on every simulated image; the simulation's SDs of
+    # RC max / mean / peak must equal the SDs of those results (same voxels, same rules).
+    from phantometry.metrics.resolution import blurred_ball_profile
+    from phantometry.rois import isocontour_mean, max_in_sphere, peak_search
+
+    nm = _gaussian_noise_model(sigma_vox=0.8, variance=400.0, power=0.0)  # constant noise level
+    aff = np.diag([2.0, 2.0, 2.0, 1.0])
+    aff[:3, 3] = [-40.0, -40.0, -36.0]
+    shape = (37, 41, 41)
+    centre = np.array([1.3, -0.7, 0.4])
+    diameter, bg = 17.0, 100.0
+
+    def model_fn(points):
+        r = np.linalg.norm(np.asarray(points, float) - centre, axis=-1)
+        return bg + 300.0 * blurred_ball_profile(r, diameter / 2, 2.5)
+
+    kk, jj, ii = np.meshgrid(*[np.arange(n, dtype=float) for n in shape], indexing="ij")
+    vol = Volume(np.zeros(shape, np.float32), aff)
+    truth = model_fn(vol.index_to_world(np.stack([kk, jj, ii], axis=-1)))
+    fields = []
+    real = U._noise_fields
+
+    def recording(*args):
+        out = real(*args)
+        fields.append(out.copy())
+        return out
+
+    monkeypatch.setattr(U, "_noise_fields", recording)
+    sds = U.bootstrap_search_sd(nm, vol, centre, diameter, bg, model_fn, n_draws=40, seed=3)
+    box, _ = U._centres_within(vol, centre, diameter / 2 + 12.41 / 2 + 2 * 2.0)
+    draws = np.concatenate(fields, axis=-1)
+    assert draws.shape[-1] == 40
+    stats = collections.defaultdict(list)
+    for n in range(40):
+        img = truth.copy()
+        img[box] += draws[..., n]
+        v = vol.with_data(img.astype(np.float32))
+        stats["max"].append(max_in_sphere(v, centre, diameter)[0])
+        stats["mean"].append(isocontour_mean(v, centre, diameter, bg, 0.5)[0])
+        stats["peak"].append(peak_search(v, centre, diameter, 12.41)[0])
+    for key in ("max", "mean", "peak"):
+        assert sds[key] == pytest.approx(float(np.std(stats[key], ddof=1)), rel=1e-4), key
+
+
 # ----------------------------------------------------------------------------- propagation
 def test_sd_standard_error_by_simulation():
     # Large-sample normal theory (common practice): SE of a sample SD of K values is SD / sqrt(2 (K - 1)).

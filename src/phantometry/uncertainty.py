@@ -63,7 +63,7 @@ from typing import TYPE_CHECKING, Any, Sequence
 
 import numpy as np
 from scipy import fft as sfft
-from scipy import ndimage
+from scipy import ndimage, sparse
 
 from .errors import PhantomNotFound
 from .threads import fft_workers, threads
@@ -538,38 +538,80 @@ def u_background_variability(n_pct: float, k: int, c_b: float, u_b: float) -> fl
 
 
 # =========================================================================== simulation
-def _noise_filter(noise: NoiseModel, shape: tuple[int, int, int]) -> tuple[list[int], np.ndarray]:
-    """FFT grid and filter ``sqrt(S)`` of :func:`simulate_noise` for a box ``shape`` (kept per model and shape)."""
+#: Spectral components of the simulated noise left out: the weakest ones, together carrying
+#: at most this fraction of the noise power (the variance is exact to this fraction).
+SPECTRAL_TAIL = 1e-7
+
+
+@dataclass(frozen=True)
+class _SpectralFilter:
+    """Half-spectrum filter of :func:`simulate_noise` for one box shape."""
+
+    size: tuple[int, int, int]  # the periodic synthesis grid (>= box + lag window per axis)
+    half_shape: tuple[int, int, int]  # rfftn output shape of that grid
+    kept: np.ndarray  # flat indices (into half_shape) of the components drawn
+    coef: np.ndarray  # float32 SD of the real and of the imaginary part of each kept component
+
+
+def _noise_filter(noise: NoiseModel, shape: tuple[int, int, int]) -> _SpectralFilter:
+    """The spectral filter of :func:`simulate_noise` for a box ``shape`` (kept per model and shape)."""
     cache = noise.__dict__.setdefault("_filters", {})
     if shape in cache:
         return cache[shape]
     L = np.array(noise.half_lags)
     # a period of n + L keeps every wrapped lag between two points of the box beyond the window
-    size = [sfft.next_fast_len(int(n + l), real=True) for n, l in zip(shape, L)]
+    size = tuple(sfft.next_fast_len(int(n + l), real=True) for n, l in zip(shape, L))
     emb = np.zeros(size)
     idx = [np.r_[np.arange(-l, 0) % s, np.arange(0, l + 1)] for l, s in zip(L, size)]
     emb[np.ix_(*idx)] = noise.autocov_bq2_ml2
     spec = np.clip(sfft.rfftn(emb, workers=fft_workers()).real, 0.0, None)
-    cache[shape] = (size, np.sqrt(spec).astype(np.float32))
-    return cache[shape]
+    # components on the last axis's zero (and, for an even length, Nyquist) plane stand for
+    # themselves only; the others also for their mirror image -k, which the inverse real FFT adds
+    own = np.zeros(spec.shape, bool)
+    own[..., 0] = True
+    if size[-1] % 2 == 0:
+        own[..., -1] = True
+    power = (spec * np.where(own, 1.0, 2.0)).ravel()
+    order = np.argsort(power, kind="stable")
+    dropped = int(np.searchsorted(np.cumsum(power[order]), SPECTRAL_TAIL * power.sum(), side="right"))
+    kept = np.sort(order[dropped:])
+    # rfftn of unit white noise on N points: E|X_k|^2 = N, real and imaginary parts independent
+    # with variance N / 2 each (real with variance N where k = -k). On the own planes the inverse
+    # real FFT keeps only the Hermitian part (X_k + conj X_-k) / 2 of independent draws, which
+    # halves their variance: those get twice the variance, which makes the law exact everywhere.
+    n_total = float(np.prod(size))
+    coef = np.sqrt(spec.ravel()[kept] * n_total / 2.0 * np.where(own.ravel()[kept], 2.0, 1.0))
+    out = _SpectralFilter(size, spec.shape, kept, coef.astype(np.float32))
+    cache[shape] = out
+    return out
 
 
 def simulate_noise(noise: NoiseModel, shape: tuple[int, int, int], n_draws: int, rng: np.random.Generator) -> np.ndarray:
     """Stationary Gaussian noise fields with the model's autocovariance, shape ``(n_draws, *shape)``.
 
     Spectral synthesis: the autocovariance is embedded (circularly) in a grid larger than
-    ``shape`` by the lag window (so every lag within the box is exact), its power spectrum (negative parts, which an estimate can
-    have, clipped to 0) gives the filter ``sqrt(S)`` applied to white noise by FFT.
-    Background-level noise (variance ``C(0)``), single precision; scale by
-    :meth:`NoiseModel.scale_at`.
+    ``shape`` by the lag window (so every lag within the box is exact); its power spectrum
+    ``S`` (negative parts, which an estimate can have, clipped to 0) gives independent
+    complex Gaussian Fourier components of variance ``N S`` (the law of the FFT of ``sqrt(S)``
+    filtered white noise), drawn directly in the half spectrum, and one inverse real FFT per
+    draw makes the fields. Components with ``S = 0``, and the weakest ones carrying together
+    at most :data:`SPECTRAL_TAIL` of the power, are not drawn. Background-level noise
+    (variance ``C(0)``), single precision; scale by :meth:`NoiseModel.scale_at`.
     """
-    size, amp = _noise_filter(noise, tuple(shape))
-    white = rng.standard_normal((n_draws, *size), dtype=np.float32)  # single precision: twice as fast, ample here
-    spectrum = sfft.rfftn(white, axes=(1, 2, 3), workers=fft_workers())
-    del white
-    spectrum *= amp[None]
-    field = sfft.irfftn(spectrum, size, axes=(1, 2, 3), workers=fft_workers())
-    return field[:, : shape[0], : shape[1], : shape[2]]
+    return np.moveaxis(_noise_fields(noise, shape, n_draws, rng), -1, 0)
+
+
+def _noise_fields(noise: NoiseModel, shape: tuple[int, int, int], n_draws: int, rng: np.random.Generator) -> np.ndarray:
+    """:func:`simulate_noise` with the draws on the last axis: shape ``(*shape, n_draws)``, a view."""
+    filt = _noise_filter(noise, tuple(shape))
+    n_half = int(np.prod(filt.half_shape))
+    draws = rng.standard_normal((filt.kept.size, n_draws, 2), dtype=np.float32)
+    draws *= filt.coef[:, None, None]
+    spectrum = np.zeros((n_half, n_draws), np.complex64)
+    spectrum[filt.kept] = draws.view(np.complex64)[..., 0]  # whole rows: a fast copy
+    del draws
+    field = sfft.irfftn(spectrum.reshape(*filt.half_shape, n_draws), filt.size, axes=(0, 1, 2), workers=fft_workers())
+    return field[: shape[0], : shape[1], : shape[2]]
 
 
 # =========================================================================== ROI helpers
@@ -727,8 +769,6 @@ def bootstrap_search_sd(
     -------
     dict with keys ``max``, ``mean``, ``peak``: SD over the draws, Bq/mL.
     """
-    from scipy import signal
-
     from .rois import sphere_weights
 
     r = 0.5 * float(diameter_mm)
@@ -749,18 +789,37 @@ def bootstrap_search_sd(
     model = level_map(volume, box) if model_fn is None else np.asarray(model_fn(world), float)
     scale = noise.scale_at(model).astype(np.float32)
     model = model.astype(np.float32)
-    # the peak kernel: partial-volume weights of the peak sphere about a voxel centre
+    shape = np.array(search.shape)
+    # the peak: partial-volume weights of the peak sphere about a voxel centre, as a sparse
+    # (candidates x box voxels) matrix of the 1 mL means, so only the candidates are computed
     mid = np.array(volume.shape) // 2
-    kern = sphere_weights(volume, volume.index_to_world(mid.astype(float)), peak_diameter_mm).weights.astype(float)
-    kern_flipped = kern[::-1, ::-1, ::-1]
-    ksum = float(kern.sum())
-    half = np.array(kern.shape) // 2
+    kw = sphere_weights(volume, volume.index_to_world(mid.astype(float)), peak_diameter_mm)
+    kern = kw.weights.astype(np.float64)
+    lo_k = mid - np.array([sl.start for sl in kw.box])  # the kernel's centre voxel in its box
+    hi_k = np.array(kern.shape) - 1 - lo_k
     valid = np.zeros(search.shape, bool)
-    inner = tuple(slice(int(h), int(n - h)) for h, n in zip(half, search.shape))
-    valid[inner] = True
-    peak_cand = search & valid
+    valid[tuple(slice(int(l), int(n - h)) for l, h, n in zip(lo_k, hi_k, shape))] = True
+    peak_cand = search & valid  # the whole peak sphere inside the box
     if not peak_cand.any():
-        peak_cand = search
+        peak_cand = search  # (weights beyond the box count as zero)
+    offsets = np.argwhere(kern > 0) - lo_k
+    kvals = kern[kern > 0] / float(kern.sum())
+    cand = np.argwhere(peak_cand)
+    inside = np.ones((len(cand), len(offsets)), bool)
+    cols = np.zeros((len(cand), len(offsets)), np.int64)
+    for axis, stride in enumerate((shape[1] * shape[2], shape[2], 1)):  # three axes, not voxels
+        p = cand[:, None, axis] + offsets[None, :, axis]
+        inside &= (p >= 0) & (p < shape[axis])
+        cols += p * stride
+    peak_matrix = sparse.csr_matrix(
+        (np.broadcast_to(kvals.astype(np.float32), inside.shape)[inside],
+         (np.broadcast_to(np.arange(len(cand))[:, None], inside.shape)[inside], cols[inside])),
+        shape=(len(cand), search.size),
+    )
+    # the max and the isocontour VOI look only within the grown sphere: its bounding box
+    nz = np.argwhere(grown)
+    crop = tuple(slice(int(l), int(h) + 1) for l, h in zip(nz.min(axis=0), nz.max(axis=0)))
+    grown_c, search_c = grown[crop], search[crop]
     bg = float(background_bq_ml)
     rng = np.random.default_rng(seed)
     maxes, means, peaks = [], [], []
@@ -769,26 +828,30 @@ def bootstrap_search_sd(
     budget = min(2_000_000, max(volume.data.size // 16, 50_000))
     chunk = max(1, min(n_draws, int(budget // max(1, search.size))))
     structure = np.zeros((3, 3, 3, 3), bool)
-    structure[1] = True  # the 26-neighbourhood of a voxel, within its own draw
+    structure[..., 1] = True  # the 26-neighbourhood of a voxel, within its own draw (last axis)
+    search_idx = np.flatnonzero(search_c)
     done = 0
     while done < n_draws:
         n = min(chunk, n_draws - done)
-        sims = (model[None] + simulate_noise(noise, search.shape, n, rng) * scale[None]).astype(np.float32)
-        flat = np.where(search[None], sims, -np.inf).reshape(n, -1)
-        arg = np.argmax(flat, axis=1)
-        vmax = flat[np.arange(n), arg]
+        # draws on the last axis: every per-voxel row of n values is contiguous
+        sims = _noise_fields(noise, search.shape, n, rng) * scale[..., None]
+        sims += model[..., None]
+        peaks.append(np.asarray(peak_matrix @ sims.reshape(-1, n)).max(axis=0))
+        sub = np.ascontiguousarray(sims[crop])
+        del sims
+        sub_flat = sub.reshape(-1, n)
+        row = np.argmax(sub_flat[search_idx], axis=0)
+        arg = search_idx[row]
+        vmax = sub_flat[arg, np.arange(n)]
         maxes.append(vmax)
-        with sfft.set_workers(fft_workers()):
-            conv = signal.fftconvolve(sims, kern_flipped[None].astype(np.float32), mode="same", axes=(1, 2, 3)) / ksum
-        peaks.append(np.where(peak_cand[None], conv, -np.inf).reshape(n, -1).max(axis=1))
         thr = (bg + float(fraction) * (vmax - bg)).astype(np.float32)
         # every draw of the chunk labelled at once: 26-connected within a draw, never across
-        labels, _ = ndimage.label(grown[None] & (sims >= thr[:, None, None, None]), structure=structure)
-        labels = labels.reshape(n, -1)
-        voi = labels == labels[np.arange(n), arg][:, None]
+        labels, _ = ndimage.label(grown_c[..., None] & (sub >= thr), structure=structure)
+        labels = labels.reshape(-1, n)
+        voi = labels == labels[arg, np.arange(n)][None]
         del labels
-        sums = np.where(voi, sims.reshape(n, -1), np.float32(0)).sum(axis=1, dtype=np.float64)
-        means.extend((sums / voi.sum(axis=1)).tolist())
+        sums = np.where(voi, sub_flat, np.float32(0)).sum(axis=0, dtype=np.float64)
+        means.extend((sums / voi.sum(axis=0)).tolist())
         done += n
     return {
         "max": float(np.std(np.concatenate(maxes), ddof=1)),

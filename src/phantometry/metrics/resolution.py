@@ -426,8 +426,13 @@ class ResolutionFit:
             rel = pts - self.centres_mm[s.name]
             r = np.sqrt(np.einsum("...i,...i->...", rel, rel))
             R = 0.5 * s.diameter_mm
-            out += self.sphere_scale * max(0.0, s.true_bq_ml) * blurred_ball_profile(r, R, self.sigma_eff_mm)
-            out -= b * blurred_ball_profile(r, R + s.wall_mm, self.sigma_eff_mm)
+            # beyond R + wall + 10 sigma both profiles are below 1e-22: evaluated where they are not
+            near = r < R + s.wall_mm + 10.0 * self.sigma_eff_mm
+            if not near.any():
+                continue
+            rn = r[near]
+            out[near] += (self.sphere_scale * max(0.0, s.true_bq_ml) * blurred_ball_profile(rn, R, self.sigma_eff_mm)
+                          - b * blurred_ball_profile(rn, R + s.wall_mm, self.sigma_eff_mm))
         return out
 
     def note(self) -> str:
