@@ -100,13 +100,35 @@ def test_ten_to_one_fill_with_strong_noise():
         assert pl.background_estimate_bq_ml == pytest.approx(2000, rel=0.05)
 
 
-@pytest.mark.parametrize("shape, spacing", [((40, 50, 61), (2.0, 2.0, 2.0)), ((20, 33, 33), (3.0, 1.5, 4.1)), ((10, 10, 10), (7.0, 7.0, 7.0))])
-def test_coarse_grid_is_the_block_mean(shape, spacing):
+@pytest.mark.parametrize("n_threads", [1, 2])
+@pytest.mark.parametrize("shape, spacing", [((40, 50, 61), (2.0, 2.0, 2.0)), ((20, 33, 33), (3.0, 1.5, 4.1)), ((10, 10, 10), (7.0, 7.0, 7.0)), ((200, 31, 30), (2.0, 2.0, 2.0))])
+def test_coarse_grid_is_the_block_mean(shape, spacing, n_threads):
     # numpy reference: the mean over a 6-D reshaped view (blocks of the factor per axis)
+    from phantometry.threads import threads
+
     data = np.random.default_rng(0).random(shape, dtype=np.float32)
     vol = Volume(data, np.diag([spacing[2], spacing[1], spacing[0], 1.0]))
-    acc, f = _coarse(vol)
+    with threads(n_threads):
+        acc, f = _coarse(vol)
     n = np.array(shape) // f
     ref = data[: n[0] * f[0], : n[1] * f[1], : n[2] * f[2]].reshape(n[0], f[0], n[1], f[1], n[2], f[2]).mean(axis=(1, 3, 5))
     assert acc.dtype == np.float32 and not np.shares_memory(acc, data)
     np.testing.assert_allclose(acc, ref, rtol=1e-5)
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_in_plane_hole_filling_matches_scipy(seed):
+    # Reference library: scipy.ndimage.binary_fill_holes with the in-plane cross as structure
+    from scipy import ndimage
+
+    from phantometry.locate import fill_holes_in_planes
+
+    rng = np.random.default_rng(seed)
+    mask = ndimage.binary_opening(rng.random((12, 40, 37)) < 0.55 + 0.05 * seed)
+    mask[:, 5:30, 8] = True  # walls that close some holes
+    mask[:, 20, 3:33] = True
+    cross = np.zeros((3, 3, 3), bool)
+    cross[1] = [[0, 1, 0], [1, 1, 1], [0, 1, 0]]
+    ref = ndimage.binary_fill_holes(mask, structure=cross)
+    assert (ref != mask).any()  # there are holes to fill
+    np.testing.assert_array_equal(fill_holes_in_planes(mask), ref)

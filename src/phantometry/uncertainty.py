@@ -88,6 +88,7 @@ __all__ = [
     "u_background_variability",
     "simulate_noise",
     "bootstrap_search_sd",
+    "SearchSimulation",
     "body_uncertainties",
     "discs_variance",
     "weights_variance",
@@ -737,6 +738,142 @@ def discs_variance(
     return _scaled_quadratic_form(noise, volume, box, a, heteroscedastic, level_fn)
 
 
+class _Target:
+    """One sphere of a search simulation: its box, masks, noise-free model and peak matrix."""
+
+    def __init__(self, noise: NoiseModel, volume: Volume, centre_mm: np.ndarray, diameter_mm: float, model_fn, peak_diameter_mm: float):
+        from .rois import sphere_weights
+
+        r = 0.5 * float(diameter_mm)
+        r_peak = 0.5 * float(peak_diameter_mm)
+        step = float(np.max(volume.spacing_mm))
+        c = np.asarray(centre_mm, float)
+        box, _ = _centres_within(volume, c, r + r_peak + 2.0 * step)
+        world = _box_world(volume, box)
+        rel = world - c
+        dist2 = np.einsum("...i,...i->...", rel, rel)
+        search = dist2 <= r * r
+        grown = dist2 <= (r + step) ** 2
+        if not search.any():  # no voxel centre within the sphere: the nearest voxel (as rois does)
+            nearest = np.unravel_index(int(np.argmin(dist2)), dist2.shape)
+            search = np.zeros(dist2.shape, bool)
+            search[nearest] = True
+            grown = grown | search
+        model = level_map(volume, box) if model_fn is None else np.asarray(model_fn(world), float)
+        self.scale = noise.scale_at(model).astype(np.float32)
+        self.model = model.astype(np.float32)
+        self.shape = shape = np.array(search.shape)
+        # the peak: partial-volume weights of the peak sphere about a voxel centre, as a sparse
+        # (candidates x box voxels) matrix of the 1 mL means, so only the candidates are computed
+        mid = np.array(volume.shape) // 2
+        kw = sphere_weights(volume, volume.index_to_world(mid.astype(float)), peak_diameter_mm)
+        kern = kw.weights.astype(np.float64)
+        lo_k = mid - np.array([sl.start for sl in kw.box])  # the kernel's centre voxel in its box
+        hi_k = np.array(kern.shape) - 1 - lo_k
+        valid = np.zeros(search.shape, bool)
+        valid[tuple(slice(int(l), int(n - h)) for l, h, n in zip(lo_k, hi_k, shape))] = True
+        peak_cand = search & valid  # the whole peak sphere inside the box
+        if not peak_cand.any():
+            peak_cand = search  # (weights beyond the box count as zero)
+        offsets = np.argwhere(kern > 0) - lo_k
+        kvals = kern[kern > 0] / float(kern.sum())
+        cand = np.argwhere(peak_cand)
+        inside = np.ones((len(cand), len(offsets)), bool)
+        cols = np.zeros((len(cand), len(offsets)), np.int64)
+        for axis, stride in enumerate((shape[1] * shape[2], shape[2], 1)):  # three axes, not voxels
+            q = cand[:, None, axis] + offsets[None, :, axis]
+            inside &= (q >= 0) & (q < shape[axis])
+            cols += q * stride
+        self.peak_matrix = sparse.csr_matrix(
+            (np.broadcast_to(kvals.astype(np.float32), inside.shape)[inside],
+             (np.broadcast_to(np.arange(len(cand))[:, None], inside.shape)[inside], cols[inside])),
+            shape=(len(cand), search.size),
+        )
+        # the max and the isocontour VOI look only within the grown sphere: its bounding box
+        nz = np.argwhere(grown)
+        self.crop = tuple(slice(int(l), int(h) + 1) for l, h in zip(nz.min(axis=0), nz.max(axis=0)))
+        self.grown_c = grown[self.crop]
+        self.search_idx = np.flatnonzero(search[self.crop])
+
+    def statistics(self, field: np.ndarray, background: float, fraction: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Max, isocontour mean and peak (Bq/mL) of every draw; ``field`` (*box, n) noise at background level."""
+        n = field.shape[-1]
+        structure = np.zeros((3, 3, 3, 3), bool)
+        structure[..., 1] = True  # the 26-neighbourhood of a voxel, within its own draw (last axis)
+        s0, s1, s2 = (int(v) for v in self.shape)
+        sims = field[:s0, :s1, :s2] * self.scale[..., None]  # contiguous; draws on the last axis
+        sims += self.model[..., None]
+        peaks = np.asarray(self.peak_matrix @ sims.reshape(-1, n)).max(axis=0)
+        sub = np.ascontiguousarray(sims[self.crop])
+        del sims
+        sub_flat = sub.reshape(-1, n)
+        draw = np.arange(n)
+        arg = self.search_idx[np.argmax(sub_flat[self.search_idx], axis=0)]
+        vmax = sub_flat[arg, draw]
+        thr = (background + fraction * (vmax - background)).astype(np.float32)
+        # every draw labelled at once: 26-connected within a draw, never across
+        labels, _ = ndimage.label(self.grown_c[..., None] & (sub >= thr), structure=structure)
+        labels = labels.reshape(-1, n)
+        voi = labels == labels[arg, draw][None]
+        del labels
+        sums = np.where(voi, sub_flat, np.float32(0)).sum(axis=0, dtype=np.float64)
+        return vmax.astype(np.float64), sums / voi.sum(axis=0), peaks.astype(np.float64)
+
+
+class SearchSimulation:
+    """The RC max / mean / peak simulation of several spheres (see :func:`bootstrap_search_sd`).
+
+    All spheres share one stack of noise draws on a box large enough for the largest (a
+    sub-box of a stationary field has the same law), so the synthesis is paid once. The draws
+    come in chunks, each with its own seed derived from ``seed`` and the chunk number:
+    :meth:`run_chunk` may run in any thread and order, and the results do not depend on it.
+    """
+
+    def __init__(
+        self,
+        noise: NoiseModel,
+        volume: Volume,
+        spheres: Sequence[tuple[np.ndarray, float]],
+        background_bq_ml: float,
+        model_fn=None,
+        *,
+        fraction: float = 0.5,
+        peak_diameter_mm: float = 12.41,
+        n_draws: int = 200,
+        seed: int = 0,
+        chunks_at_least: int = 4,
+    ):
+        if not spheres:
+            raise ValueError("SearchSimulation: no spheres")
+        self.noise = noise
+        self.background = float(background_bq_ml)
+        self.fraction = float(fraction)
+        self.seed = int(seed)
+        self.targets = [_Target(noise, volume, c, d, model_fn, peak_diameter_mm) for c, d in spheres]
+        self.shape = tuple(int(v) for v in np.max([t.shape for t in self.targets], axis=0))
+        # draws per chunk: at most 2 million voxels, and a small fraction of the image, so the
+        # simulation's working memory (about ten chunk-sized arrays) stays below the volume's;
+        # at least ``chunks_at_least`` chunks, so threads can share the work
+        budget = min(2_000_000, max(volume.data.size // 16, 50_000))
+        size = int(np.prod(_noise_filter(noise, self.shape).size))
+        per_chunk = max(1, min(int(budget // size), -(-int(n_draws) // max(1, int(chunks_at_least)))))
+        self.chunks = [(i, min(per_chunk, n_draws - start)) for i, start in enumerate(range(0, int(n_draws), per_chunk))]
+
+    def run_chunk(self, index: int, n: int) -> list[tuple[np.ndarray, np.ndarray, np.ndarray]]:
+        """(max, mean, peak) per sphere for the ``n`` draws of chunk ``index``."""
+        rng = np.random.default_rng([self.seed, int(index)])
+        field = _noise_fields(self.noise, self.shape, n, rng)
+        return [t.statistics(field, self.background, self.fraction) for t in self.targets]
+
+    def standard_deviations(self, results: Sequence[list[tuple[np.ndarray, np.ndarray, np.ndarray]]]) -> list[dict[str, float]]:
+        """SD over all draws of the chunks' results (in chunk order), per sphere."""
+        out = []
+        for k in range(len(self.targets)):
+            cols = [np.concatenate([chunk[k][j] for chunk in results]) for j in range(3)]
+            out.append({key: float(np.std(col, ddof=1)) for key, col in zip(("max", "mean", "peak"), cols)})
+        return out
+
+
 def bootstrap_search_sd(
     noise: NoiseModel,
     volume: Volume,
@@ -761,103 +898,18 @@ def bootstrap_search_sd(
     :mod:`phantometry.rois` are repeated on the same voxels: the hottest voxel centred within
     the sphere (``max_in_sphere``), the 26-connected VOI ``>= B + fraction (max - B)`` within
     the sphere grown by one voxel that holds it (``isocontour_mean``), and the highest mean
-    of a ``peak_diameter_mm`` sphere centred on a voxel within the sphere (``peak_search``).
+    of a ``peak_diameter_mm`` sphere centred on a voxel within the sphere (``peak_search``,
+    here a sparse matrix of the candidates' 1 mL means).
     ``B`` is held at ``background_bq_ml``. The draws use ``seed``, so results are
-    reproducible.
+    reproducible. Several spheres at once: :class:`SearchSimulation`.
 
     Returns
     -------
     dict with keys ``max``, ``mean``, ``peak``: SD over the draws, Bq/mL.
     """
-    from .rois import sphere_weights
-
-    r = 0.5 * float(diameter_mm)
-    r_peak = 0.5 * float(peak_diameter_mm)
-    step = float(np.max(volume.spacing_mm))
-    c = np.asarray(centre_mm, float)
-    box, _ = _centres_within(volume, c, r + r_peak + 2.0 * step)
-    world = _box_world(volume, box)
-    rel = world - c
-    dist2 = np.einsum("...i,...i->...", rel, rel)
-    search = dist2 <= r * r
-    grown = dist2 <= (r + step) ** 2
-    if not search.any():  # no voxel centre within the sphere: the nearest voxel (as rois does)
-        nearest = np.unravel_index(int(np.argmin(dist2)), dist2.shape)
-        search = np.zeros(dist2.shape, bool)
-        search[nearest] = True
-        grown = grown | search
-    model = level_map(volume, box) if model_fn is None else np.asarray(model_fn(world), float)
-    scale = noise.scale_at(model).astype(np.float32)
-    model = model.astype(np.float32)
-    shape = np.array(search.shape)
-    # the peak: partial-volume weights of the peak sphere about a voxel centre, as a sparse
-    # (candidates x box voxels) matrix of the 1 mL means, so only the candidates are computed
-    mid = np.array(volume.shape) // 2
-    kw = sphere_weights(volume, volume.index_to_world(mid.astype(float)), peak_diameter_mm)
-    kern = kw.weights.astype(np.float64)
-    lo_k = mid - np.array([sl.start for sl in kw.box])  # the kernel's centre voxel in its box
-    hi_k = np.array(kern.shape) - 1 - lo_k
-    valid = np.zeros(search.shape, bool)
-    valid[tuple(slice(int(l), int(n - h)) for l, h, n in zip(lo_k, hi_k, shape))] = True
-    peak_cand = search & valid  # the whole peak sphere inside the box
-    if not peak_cand.any():
-        peak_cand = search  # (weights beyond the box count as zero)
-    offsets = np.argwhere(kern > 0) - lo_k
-    kvals = kern[kern > 0] / float(kern.sum())
-    cand = np.argwhere(peak_cand)
-    inside = np.ones((len(cand), len(offsets)), bool)
-    cols = np.zeros((len(cand), len(offsets)), np.int64)
-    for axis, stride in enumerate((shape[1] * shape[2], shape[2], 1)):  # three axes, not voxels
-        p = cand[:, None, axis] + offsets[None, :, axis]
-        inside &= (p >= 0) & (p < shape[axis])
-        cols += p * stride
-    peak_matrix = sparse.csr_matrix(
-        (np.broadcast_to(kvals.astype(np.float32), inside.shape)[inside],
-         (np.broadcast_to(np.arange(len(cand))[:, None], inside.shape)[inside], cols[inside])),
-        shape=(len(cand), search.size),
-    )
-    # the max and the isocontour VOI look only within the grown sphere: its bounding box
-    nz = np.argwhere(grown)
-    crop = tuple(slice(int(l), int(h) + 1) for l, h in zip(nz.min(axis=0), nz.max(axis=0)))
-    grown_c, search_c = grown[crop], search[crop]
-    bg = float(background_bq_ml)
-    rng = np.random.default_rng(seed)
-    maxes, means, peaks = [], [], []
-    # draws per chunk: at most 2 million voxels, and a small fraction of the image, so the
-    # simulation's working memory (about ten chunk-sized arrays) stays below the volume's
-    budget = min(2_000_000, max(volume.data.size // 16, 50_000))
-    chunk = max(1, min(n_draws, int(budget // max(1, search.size))))
-    structure = np.zeros((3, 3, 3, 3), bool)
-    structure[..., 1] = True  # the 26-neighbourhood of a voxel, within its own draw (last axis)
-    search_idx = np.flatnonzero(search_c)
-    done = 0
-    while done < n_draws:
-        n = min(chunk, n_draws - done)
-        # draws on the last axis: every per-voxel row of n values is contiguous
-        sims = _noise_fields(noise, search.shape, n, rng) * scale[..., None]
-        sims += model[..., None]
-        peaks.append(np.asarray(peak_matrix @ sims.reshape(-1, n)).max(axis=0))
-        sub = np.ascontiguousarray(sims[crop])
-        del sims
-        sub_flat = sub.reshape(-1, n)
-        row = np.argmax(sub_flat[search_idx], axis=0)
-        arg = search_idx[row]
-        vmax = sub_flat[arg, np.arange(n)]
-        maxes.append(vmax)
-        thr = (bg + float(fraction) * (vmax - bg)).astype(np.float32)
-        # every draw of the chunk labelled at once: 26-connected within a draw, never across
-        labels, _ = ndimage.label(grown_c[..., None] & (sub >= thr), structure=structure)
-        labels = labels.reshape(-1, n)
-        voi = labels == labels[arg, np.arange(n)][None]
-        del labels
-        sums = np.where(voi, sub_flat, np.float32(0)).sum(axis=0, dtype=np.float64)
-        means.extend((sums / voi.sum(axis=0)).tolist())
-        done += n
-    return {
-        "max": float(np.std(np.concatenate(maxes), ddof=1)),
-        "mean": float(np.std(means, ddof=1)),
-        "peak": float(np.std(np.concatenate(peaks), ddof=1)),
-    }
+    sim = SearchSimulation(noise, volume, [(np.asarray(centre_mm, float), float(diameter_mm))], background_bq_ml, model_fn,
+                           fraction=fraction, peak_diameter_mm=peak_diameter_mm, n_draws=n_draws, seed=seed)
+    return sim.standard_deviations([sim.run_chunk(i, n) for i, n in sim.chunks])[0]
 
 
 # =========================================================================== the body phantom
@@ -900,9 +952,9 @@ def body_uncertainties(
     c_b = {d: float(np.mean(means)) for d, means in analysis.background_roi_means.items()}
     cb_ref = c_b[ref]
     model_fn = resolution_fit.model_at if resolution_fit is not None else None
-    # ---- the RC searches by simulation, started first: one sphere per thread (numpy and the
-    # FFTs release the interpreter lock) while this thread propagates the ROI means below;
-    # each sphere has its own seed, so results do not depend on the threads
+    # ---- the RC searches by simulation, started first: its chunks of draws in threads (numpy
+    # and the FFTs release the interpreter lock) while this thread propagates the ROI means
+    # below; each chunk has its own seed, so results do not depend on the threads
     searches: list[tuple[str, np.ndarray, float, float]] = []
     noise_free = noise.sd_bq_ml <= 1e-6 * max(noise.background_bq_ml, 1e-12)
     for s in tpl.spheres:
@@ -914,30 +966,31 @@ def body_uncertainties(
             out[(s.name, "rc_max")] = out[(s.name, "rc_mean")] = out[(s.name, "rc_peak")] = 0.0
         else:
             searches.append((s.name, pl.insert_centre(s.name), float(s.diameter_mm), true))
+    sim = None
+    if searches:
+        sim = SearchSimulation(noise, vol, [(c, d) for _, c, d, _ in searches], cb_ref, model_fn, fraction=a.isocontour_fraction,
+                               peak_diameter_mm=a.peak_diameter_mm, n_draws=n_draws, seed=_seed("rc searches"))
 
-    def simulate(item: tuple[str, np.ndarray, float, float]) -> tuple[str, float, dict[str, float]]:
-        name, centre, diameter, true = item
+    def run(chunk: tuple[int, int]):
         with threads(1):
-            sds = bootstrap_search_sd(
-                noise, vol, centre, diameter, cb_ref, model_fn,
-                fraction=a.isocontour_fraction, peak_diameter_mm=a.peak_diameter_mm, n_draws=n_draws, seed=_seed(name),
-            )
-        return name, true, sds
+            return sim.run_chunk(*chunk)  # type: ignore[union-attr]
 
-    n_threads = min(fft_workers(), len(searches))
+    n_threads = min(fft_workers(), len(sim.chunks)) if sim is not None else 0
     pool = None
     futures = []
     if n_threads > 1:
         from concurrent.futures import ThreadPoolExecutor
 
         pool = ThreadPoolExecutor(n_threads)
-        futures = [pool.submit(simulate, item) for item in sorted(searches, key=lambda item: -item[2])]  # largest first
+        futures = [pool.submit(run, chunk) for chunk in sim.chunks]  # type: ignore[union-attr]
     try:
         _roi_mean_uncertainties(analysis, noise, out, c_b, resolution_fit, overrides)
-        results = [f.result() for f in futures] if pool is not None else [simulate(item) for item in searches]
+        chunks = [f.result() for f in futures] if pool is not None else [run(chunk) for chunk in (sim.chunks if sim else [])]
     finally:
         if pool is not None:
             pool.shutdown(wait=True, cancel_futures=True)
+    sds_all = sim.standard_deviations(chunks) if sim is not None else []
+    results = [(name, true, sds) for (name, _, _, true), sds in zip(searches, sds_all)]
     for name, true, sds in results:
         out[(name, "rc_max")] = sds["max"] / true
         out[(name, "rc_mean")] = sds["mean"] / true
@@ -957,8 +1010,21 @@ def _roi_mean_uncertainties(
 
     ``c_b``: background ROI set mean per diameter, Bq/mL.
     """
+    part, u_cb = _disc_uncertainties(analysis, noise)
+    out.update(part)
+    _lung_uncertainty(analysis, noise, out, c_b, u_cb, resolution_fit, overrides)
+
+
+def _disc_uncertainties(analysis: Any, noise: NoiseModel) -> tuple[dict[tuple[str, str], float], dict[float, float]]:
+    """The uncertainties that need the noise model only: background ROI sets and spheres.
+
+    Returns the (roi, metric) -> uncertainty entries and the standard uncertainty (Bq/mL) of
+    each background ROI set mean, by diameter. Independent of the resolution fit.
+    """
     from .rois import disc_means, sample_plane
 
+    out: dict[tuple[str, str], float] = {}
+    c_b = {d: float(np.mean(means)) for d, means in analysis.background_roi_means.items()}
     vol = analysis.volume
     tpl = analysis.template
     fill = analysis.fill
@@ -1000,6 +1066,30 @@ def _roi_mean_uncertainties(
         if s.diameter_mm in analysis.background_roi_means:
             k = len(analysis.background_roi_means[s.diameter_mm])
             out[(name, "background_variability_pct")] = u_background_variability(n_pct, k, cb, ucb)
+    return out, u_cb
+
+
+def _lung_uncertainty(
+    analysis: Any,
+    noise: NoiseModel,
+    out: dict[tuple[str, str], float],
+    c_b: dict[float, float],
+    u_cb: dict[float, float],
+    resolution_fit: Any,
+    overrides: dict[str, np.ndarray] | None,
+) -> None:
+    """Low-density insert residual and background level uncertainties, into ``out``."""
+    from .rois import disc_means, sample_plane
+
+    vol = analysis.volume
+    tpl = analysis.template
+    pl = analysis.placement
+    a = tpl.analysis
+    bg = tpl.background
+    u_dir, v_dir, axis = pl.rotation[:, 0], pl.rotation[:, 1], pl.rotation[:, 2]
+    values = {(r.roi, r.metric): r.value for r in analysis.rows}
+    ref = a.reference_background_diameter_mm
+    cb_ref, ucb_ref = c_b[ref], u_cb[ref]
     # ---- low-density insert
     if a.lung_insert is not None and (a.lung_insert, "lung_residual_pct") in values:
         lung = tpl.insert(a.lung_insert)
