@@ -132,3 +132,20 @@ def test_in_plane_hole_filling_matches_scipy(seed):
     ref = ndimage.binary_fill_holes(mask, structure=cross)
     assert (ref != mask).any()  # there are holes to fill
     np.testing.assert_array_equal(fill_holes_in_planes(mask), ref)
+
+
+def test_projection_range_of_a_coarse_mask_matches_the_coordinate_list():
+    # Reference: the block centres listed explicitly (np.argwhere), projected with numpy
+    from phantometry.locate import _coarse_to_world, _projection_range
+
+    rng = np.random.default_rng(3)
+    mask = rng.random((9, 14, 11)) < 0.2
+    aff = np.array([[0.0, 2.1, 0.3, -40.0], [2.0, 0.0, -0.2, 15.0], [0.1, 0.2, 3.3, 7.0], [0, 0, 0, 1.0]])
+    vol = Volume(np.zeros((27, 28, 33), np.float32), aff)
+    factors = np.array([3, 2, 3])
+    d = np.array([0.3, -0.8, 0.5])
+    d /= np.linalg.norm(d)
+    origin = np.array([1.0, 2.0, -3.0])
+    along = (_coarse_to_world(vol, np.argwhere(mask), factors) - origin) @ d
+    lo, hi = _projection_range(vol, mask, factors, d, origin)
+    assert lo == pytest.approx(float(along.min()), abs=1e-9) and hi == pytest.approx(float(along.max()), abs=1e-9)

@@ -274,10 +274,29 @@ def _mask_extent_mm(volume: Volume, mask: np.ndarray, factors: np.ndarray) -> np
     _, evecs = np.linalg.eigh(B @ cov_idx @ B.T)
     extent = []
     for e in evecs.T:
-        w = B.T @ e  # projection per coarse index step along (k, j, i)
-        proj = (w[0] * idx[0])[:, None, None] + (w[1] * idx[1])[None, :, None] + (w[2] * idx[2])[None, None, :]
-        extent.append(float(proj[mask].max() - proj[mask].min()))
+        lo, hi = _projection_range(volume, mask, factors, e)
+        extent.append(hi - lo)
     return np.sort(np.array(extent) + np.mean(np.abs(volume.spacing_mm * factors)))
+
+
+def _projection_range(volume: Volume, mask: np.ndarray, factors: np.ndarray, direction: np.ndarray, origin_mm: np.ndarray | None = None) -> tuple[float, float]:
+    """Smallest and largest ``(p - origin) . direction`` (mm) over the block centres ``p`` of a coarse mask.
+
+    The projection is linear in the coarse indices; it is evaluated one coarse plane at a
+    time (a loop over planes, not voxels), so no coordinate list of the mask is built.
+    """
+    B = volume.affine[:3, :3][:, ::-1] * np.asarray(factors, float)[None, :]
+    d = np.asarray(direction, float)
+    w = B.T @ d  # mm per coarse index step along (k, j, i)
+    start = volume.index_to_world((np.asarray(factors, float) - 1) / 2.0)  # block centre of coarse index (0, 0, 0)
+    const = float((start - (np.zeros(3) if origin_mm is None else np.asarray(origin_mm, float))) @ d)
+    in_plane = w[1] * np.arange(mask.shape[1])[:, None] + w[2] * np.arange(mask.shape[2])[None, :]
+    lo, hi = np.inf, -np.inf
+    for k in np.flatnonzero(mask.any(axis=(1, 2))):
+        vals = in_plane[mask[k]]
+        lo = min(lo, float(vals.min()) + w[0] * k)
+        hi = max(hi, float(vals.max()) + w[0] * k)
+    return const + lo, const + hi
 
 
 def _template_extent(template: Template) -> np.ndarray:
@@ -367,8 +386,8 @@ def _sphere_plane_offset(volume: Volume, template: Template, body: "_Body", a0: 
     u, v = _orthonormal_basis(d)
     step = max(1.0, float(np.min(np.abs(volume.spacing_mm))))
     band = max(s_.diameter_mm for s_ in template.spheres) / 2
-    along = (_coarse_to_world(volume, np.argwhere(body.mask), body.factors) - a0) @ d
-    lo, hi = float(along.min()) + band + 10.0, float(along.max()) - band - 10.0
+    along_lo, along_hi = _projection_range(volume, body.mask, body.factors, d, a0)
+    lo, hi = along_lo + band + 10.0, along_hi - band - 10.0
     if hi <= lo:
         raise PhantomNotFound(f"{where}: the body is too short along its axis to hold the sphere ring")
     s = np.arange(lo, hi + step / 2, step)

@@ -168,24 +168,32 @@ class NoiseModel:
         return rel ** (0.5 * self.variance_power)
 
     # ------------------------------------------------------------------ quadratic forms
-    def quadratic_form(self, a: np.ndarray, *, correlation: bool = False) -> float:
+    def quadratic_form(self, a: np.ndarray, *, correlation: bool = False, single_precision: bool = False) -> float:
         """``sum_{x,y} a_x a_y C(x - y)`` for a coefficient array ``a`` on a box of the grid.
 
         Computed as ``sum_tau C(tau) (a * a)(tau)`` with the autocorrelation of ``a`` by FFT
         (zero padded by the lag window). ``correlation=True`` uses ``rho`` instead of ``C``.
+        ``single_precision``: the FFTs in float32 (half the memory; about 1e-6 relative).
         """
         kern = self.correlation if correlation else self.autocov_bq2_ml2
         # lags beyond the box size are zero in the autocorrelation (zero padding by the window)
-        return float(np.sum(_autocorrelation(np.asarray(a, float), self.half_lags) * kern))
+        a = np.asarray(a, np.float32 if single_precision else float)
+        return float(np.sum(_autocorrelation(a, self.half_lags).astype(np.float64) * kern))
 
     def quadratic_form_flat(self, g: np.ndarray, flat: np.ndarray, shape: tuple[int, int, int], *, correlation: bool = True) -> float:
-        """:meth:`quadratic_form` of values ``g`` at flat voxel indices ``flat`` of a grid ``shape``."""
+        """:meth:`quadratic_form` of values ``g`` at flat voxel indices ``flat`` of a grid ``shape``.
+
+        The values are scattered onto their bounding box in single precision (the box is
+        mostly empty around scattered voxel sets; 1e-6 relative precision is ample for a
+        standard error).
+        """
         kji = np.array(np.unravel_index(np.asarray(flat), shape))
         lo = kji.min(axis=1)
-        hi = kji.max(axis=1)
-        box = np.zeros(tuple(hi - lo + 1))
-        np.add.at(box, tuple(kji - lo[:, None]), np.asarray(g, float))
-        return self.quadratic_form(box, correlation=correlation)
+        dims = tuple(int(v) for v in kji.max(axis=1) - lo + 1)
+        inner = np.ravel_multi_index(tuple(kji - lo[:, None]), dims)
+        del kji
+        box = np.bincount(inner, np.asarray(g, float), int(np.prod(dims))).astype(np.float32).reshape(dims)
+        return self.quadratic_form(box, correlation=correlation, single_precision=True)
 
     def weighted_mean_variance(self, weights: np.ndarray, level: np.ndarray | None = None) -> float:
         """Variance (Bq/mL)^2 of ``sum w v / sum w`` for weights on a box (level: same box, Bq/mL)."""
@@ -290,6 +298,12 @@ def background_mask(
         mask[k0:k1] = _background_slab(volume, placement, template, sub, clearance, z0, z1, zlo, zhi)
     mask &= np.isfinite(volume.data[box])
     assert mask.shape == nb
+    # the box of the voxels kept (the body's edge band and the inserts' surroundings are not)
+    if mask.any():
+        keep = [np.flatnonzero(mask.any(axis=tuple(b for b in range(3) if b != a))) for a in range(3)]
+        inner = tuple(slice(int(k[0]), int(k[-1]) + 1) for k in keep)
+        mask = mask[inner].copy()
+        box = tuple(slice(b.start + i.start, b.start + i.stop) for b, i in zip(box, inner))
     return box, mask  # type: ignore[return-value]
 
 
@@ -326,10 +340,24 @@ def _autocorrelation(a: np.ndarray, half_lags: Sequence[int]) -> np.ndarray:
     L = np.asarray(half_lags, int)
     size = [sfft.next_fast_len(int(n + l), real=True) for n, l in zip(a.shape, L)]
     f = sfft.rfftn(a, size, workers=fft_workers())
+    return _lags_of_power(f, size, L)
+
+
+def _lags_of_power(f: np.ndarray, size: Sequence[int], L: np.ndarray) -> np.ndarray:
+    """Lags ``-L..L`` of the inverse FFT of ``|f|^2`` (``f`` a half spectrum, overwritten).
+
+    The power spectrum replaces ``f`` in place and the inverse runs one axis at a time in
+    place (the last one real), so no second spectrum-sized array is made.
+    """
     power = f.real**2
     power += f.imag**2
+    f.real = power
+    f.imag = 0.0
+    del power
+    for axis in range(f.ndim - 1):
+        f = sfft.ifft(f, axis=axis, overwrite_x=True, workers=fft_workers())
+    acf = sfft.irfft(f, size[-1], axis=-1, overwrite_x=True, workers=fft_workers())
     del f
-    acf = sfft.irfftn(power, size, workers=fft_workers())
     idx = [np.r_[np.arange(-l, 0) % s, np.arange(0, l + 1)] for l, s in zip(L, size)]  # wrap-around lags
     return acf[np.ix_(*idx)]
 
@@ -340,8 +368,12 @@ def masked_autocovariance(values: np.ndarray, mask: np.ndarray, half_lags: Seque
     Both correlations by FFT in single precision (relative error about 1e-6 of ``C(0)``).
     Returns ``(C, pairs)``: the estimate (float64) and the number of voxel pairs behind each lag.
     """
-    num_w = _autocorrelation(np.where(mask, values, 0.0).astype(np.float32), half_lags).astype(np.float64)
-    den_w = np.rint(_autocorrelation(mask.astype(np.float32), half_lags).astype(np.float64))
+    L = np.asarray(half_lags, int)
+    size = [sfft.next_fast_len(int(n + l), real=True) for n, l in zip(mask.shape, L)]
+    # the masked values exist only while their transform is made (a temporary of the call)
+    num_w = _lags_of_power(sfft.rfftn(np.where(mask, values, np.float32(0)).astype(np.float32, copy=False), size, workers=fft_workers()), size, L)
+    num_w = num_w.astype(np.float64)
+    den_w = np.rint(_lags_of_power(sfft.rfftn(mask.astype(np.float32), size, workers=fft_workers()), size, L).astype(np.float64))
     with np.errstate(invalid="ignore", divide="ignore"):
         cov = np.where(den_w > 0.5, num_w / np.maximum(den_w, 1.0), 0.0)
     return cov, den_w
@@ -675,8 +707,8 @@ def _scaled_quadratic_form(noise: NoiseModel, volume: Volume, box, a: np.ndarray
     With ``level_fn(points_mm) -> Bq/mL`` (a noise-free model of the level) the exact form
     with ``s_x s_y`` is used instead.
     """
-    if not heteroscedastic:
-        return max(noise.quadratic_form(a), 0.0)
+    if not heteroscedastic:  # (large boxes: the background ROI sets) in single precision
+        return max(noise.quadratic_form(a, single_precision=True), 0.0)
     if level_fn is not None:  # a noise-free level is known: the exact form with s_x s_y
         return max(noise.quadratic_form(a * noise.scale_at(level_fn(_box_world(volume, box)))), 0.0)
     from scipy import signal
@@ -775,20 +807,32 @@ class _Target:
         peak_cand = search & valid  # the whole peak sphere inside the box
         if not peak_cand.any():
             peak_cand = search  # (weights beyond the box count as zero)
-        offsets = np.argwhere(kern > 0) - lo_k
-        kvals = kern[kern > 0] / float(kern.sum())
-        cand = np.argwhere(peak_cand)
-        inside = np.ones((len(cand), len(offsets)), bool)
-        cols = np.zeros((len(cand), len(offsets)), np.int64)
-        for axis, stride in enumerate((shape[1] * shape[2], shape[2], 1)):  # three axes, not voxels
-            q = cand[:, None, axis] + offsets[None, :, axis]
-            inside &= (q >= 0) & (q < shape[axis])
-            cols += q * stride
-        self.peak_matrix = sparse.csr_matrix(
-            (np.broadcast_to(kvals.astype(np.float32), inside.shape)[inside],
-             (np.broadcast_to(np.arange(len(cand))[:, None], inside.shape)[inside], cols[inside])),
-            shape=(len(cand), search.size),
-        )
+        offsets = np.argwhere(kern > 0) - lo_k  # in C order, so each row's columns ascend
+        kvals = (kern[kern > 0] / float(kern.sum())).astype(np.float32)
+        cand = np.argwhere(peak_cand).astype(np.int32)
+        strides = (int(shape[1] * shape[2]), int(shape[2]), 1)
+        if peak_cand is search and not (search & valid).any():
+            # some peak spheres reach beyond the box: keep only their entries inside it
+            inside = np.ones((len(cand), len(offsets)), bool)
+            for axis in range(3):  # three axes, not voxels
+                q = cand[:, None, axis] + offsets[None, :, axis]
+                inside &= (q >= 0) & (q < shape[axis])
+            counts = inside.sum(axis=1)
+        else:
+            inside = None
+            counts = np.full(len(cand), len(offsets))
+        # built directly in compressed-row form with 32-bit indices: no coordinate-list copy
+        cols = (cand @ np.array(strides, np.int32))[:, None] + (offsets @ np.array(strides))[None, :].astype(np.int32)
+        indptr = np.zeros(len(cand) + 1, np.int32)
+        np.cumsum(counts, out=indptr[1:])
+        if inside is None:
+            data = np.broadcast_to(kvals, cols.shape).ravel()
+            indices = cols.ravel()
+        else:
+            data = np.broadcast_to(kvals, cols.shape)[inside]
+            indices = cols[inside]
+        del cols
+        self.peak_matrix = sparse.csr_matrix((data, indices, indptr), shape=(len(cand), search.size))
         # the max and the isocontour VOI look only within the grown sphere: its bounding box
         nz = np.argwhere(grown)
         self.crop = tuple(slice(int(l), int(h) + 1) for l, h in zip(nz.min(axis=0), nz.max(axis=0)))
@@ -966,29 +1010,35 @@ def body_uncertainties(
             out[(s.name, "rc_max")] = out[(s.name, "rc_mean")] = out[(s.name, "rc_peak")] = 0.0
         else:
             searches.append((s.name, pl.insert_centre(s.name), float(s.diameter_mm), true))
+    def make_simulation() -> SearchSimulation:
+        return SearchSimulation(noise, vol, [(c, d) for _, c, d, _ in searches], cb_ref, model_fn, fraction=a.isocontour_fraction,
+                                peak_diameter_mm=a.peak_diameter_mm, n_draws=n_draws, seed=_seed("rc searches"))
+
     sim = None
-    if searches:
-        sim = SearchSimulation(noise, vol, [(c, d) for _, c, d, _ in searches], cb_ref, model_fn, fraction=a.isocontour_fraction,
-                               peak_diameter_mm=a.peak_diameter_mm, n_draws=n_draws, seed=_seed("rc searches"))
-
-    def run(chunk: tuple[int, int]):
-        with threads(1):
-            return sim.run_chunk(*chunk)  # type: ignore[union-attr]
-
-    n_threads = min(fft_workers(), len(sim.chunks)) if sim is not None else 0
-    pool = None
-    futures = []
-    if n_threads > 1:
+    chunks: list = []
+    if searches and fft_workers() > 1:
         from concurrent.futures import ThreadPoolExecutor
 
-        pool = ThreadPoolExecutor(n_threads)
-        futures = [pool.submit(run, chunk) for chunk in sim.chunks]  # type: ignore[union-attr]
-    try:
+        sim = make_simulation()
+
+        def run(chunk: tuple[int, int]):
+            with threads(1):
+                return sim.run_chunk(*chunk)  # type: ignore[union-attr]
+
+        with ThreadPoolExecutor(min(fft_workers(), len(sim.chunks))) as pool:
+            futures = [pool.submit(run, chunk) for chunk in sim.chunks]
+            try:
+                _roi_mean_uncertainties(analysis, noise, out, c_b, resolution_fit, overrides)
+                chunks = [f.result() for f in futures]
+            finally:
+                for f in futures:
+                    f.cancel()
+    else:
+        # one thread: one step after the other, so their working memories never add up
         _roi_mean_uncertainties(analysis, noise, out, c_b, resolution_fit, overrides)
-        chunks = [f.result() for f in futures] if pool is not None else [run(chunk) for chunk in (sim.chunks if sim else [])]
-    finally:
-        if pool is not None:
-            pool.shutdown(wait=True, cancel_futures=True)
+        if searches:
+            sim = make_simulation()
+            chunks = [sim.run_chunk(*chunk) for chunk in sim.chunks]
     sds_all = sim.standard_deviations(chunks) if sim is not None else []
     results = [(name, true, sds) for (name, _, _, true), sds in zip(searches, sds_all)]
     for name, true, sds in results:

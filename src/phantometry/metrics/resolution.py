@@ -460,6 +460,10 @@ def _voxels_near(volume: Volume, centre: np.ndarray, radius: float) -> tuple[np.
     return flat, world[keep]
 
 
+#: (voxel, sphere) pairs evaluated at a time by the blurred-sphere model.
+PAIR_BLOCK = 2048
+
+
 @dataclass
 class _Problem:
     values: np.ndarray  # (N,) Bq/mL
@@ -507,26 +511,35 @@ class _Problem:
         centres = np.asarray(p[3:], float).reshape(-1, 3)
         s = self.sigma(fwhm)
         ds_dfwhm = (fwhm / FWHM_PER_SIGMA**2) / s
-        r, rel = self.distances(centres)
-        R = self.radius[self.pair_sph]
-        c = self.true[self.pair_sph]
-        fc, fc_r, fc_s = blurred_ball_profile_derivatives(r, R, s)
-        fb, fb_r, fb_s = blurred_ball_profile_derivatives(r, R + self.wall[self.pair_sph], s)
         n = len(self.values)
-        pv = self.pair_vox
-        sc = np.bincount(pv, c * fc, n)
-        sb = np.bincount(pv, fb, n)
-        model = b + k * sc - b * sb
         n_s = len(self.radius)
+        sc = np.zeros(n)
+        sb = np.zeros(n)
+        d_s = np.zeros(n)
         J = np.zeros((n, 3 + 3 * n_s), dtype=np.float32)  # single precision: half the memory; sums in double (_gram)
-        J[:, 0] = np.bincount(pv, (k * c * fc_s - b * fb_s) * ds_dfwhm, n)
+        # (voxel, sphere) pairs in blocks (a loop over blocks, not voxels): the working arrays
+        # of the profiles and their derivatives stay small whatever the number of voxels
+        for a in range(0, len(self.pair_vox), PAIR_BLOCK):
+            pv = self.pair_vox[a : a + PAIR_BLOCK]
+            ps = self.pair_sph[a : a + PAIR_BLOCK]
+            rel = self.world[pv] - centres[ps]
+            r = np.sqrt(np.einsum("ij,ij->i", rel, rel))
+            R = self.radius[ps]
+            c = self.true[ps]
+            fc, fc_r, fc_s = blurred_ball_profile_derivatives(r, R, s)
+            fb, fb_r, fb_s = blurred_ball_profile_derivatives(r, R + self.wall[ps], s)
+            sc += np.bincount(pv, c * fc, n)
+            sb += np.bincount(pv, fb, n)
+            d_s += np.bincount(pv, k * c * fc_s - b * fb_s, n)
+            dvdr = k * c * fc_r - b * fb_r
+            rel /= np.maximum(r, 1e-9)[:, None]  # unit vectors
+            cols = 3 + 3 * ps
+            for axis in range(3):  # d r / d centre = -unit; each (voxel, sphere) pair is one entry
+                J[pv, cols + axis] -= dvdr * rel[:, axis]
+        model = b + k * sc - b * sb
+        J[:, 0] = d_s * ds_dfwhm
         J[:, 1] = sc
         J[:, 2] = 1.0 - sb
-        dvdr = k * c * fc_r - b * fb_r
-        unit = rel / np.maximum(r, 1e-9)[:, None]
-        cols = 3 + 3 * self.pair_sph
-        for axis in range(3):  # d r / d centre = -unit; each (voxel, sphere) pair is one entry
-            J[pv, cols + axis] -= dvdr * unit[:, axis]
         self._cache = (key, model, J)
         return model, J
 
@@ -600,6 +613,7 @@ def _fit_once(volume, spheres, start_centres, background, exclusions, noise, mar
         worlds.append(w)
     flat = np.concatenate(flats)
     world = np.concatenate(worlds)
+    del flats, worlds
     flat, first = np.unique(flat, return_index=True)
     world = world[first]
     keep = np.ones(len(flat), bool)
@@ -618,7 +632,7 @@ def _fit_once(volume, spheres, start_centres, background, exclusions, noise, mar
     # (voxel, sphere) pairs: own sphere and neighbours whose blur can reach the voxel
     reach = radius + wall + margin + 8.0
     near = np.stack([np.einsum("vk,vk->v", world - c, world - c) < r * r for c, r in zip(start_centres, reach)], axis=1)
-    pv, ps = np.nonzero(near)
+    pv, ps = (i.astype(np.int32) for i in np.nonzero(near))
     del near
     prob = _Problem(values, world, flat, pv, ps, radius, wall, true, voxel_var)
     hot = bool(np.any(true > 0))
@@ -709,7 +723,7 @@ def _fit_once(volume, spheres, start_centres, background, exclusions, noise, mar
     )
 
 
-def _gram(J: np.ndarray, r: np.ndarray | None = None, rows: int = 8192) -> tuple[np.ndarray, np.ndarray | None]:
+def _gram(J: np.ndarray, r: np.ndarray | None = None, rows: int = 2048) -> tuple[np.ndarray, np.ndarray | None]:
     """``J'J`` (and ``J'r``) summed in double precision over blocks of rows of a (single precision) ``J``."""
     n_par = J.shape[1]
     A = np.zeros((n_par, n_par))
@@ -749,6 +763,7 @@ def _solve(residual, jac, x0: np.ndarray, free: np.ndarray, tol: float = 1e-8, m
     lam = 1e-3
     for _ in range(max_iter):
         A, g = _gram(J, r)
+        J = None  # the normal equations hold what is needed; no second Jacobian beside the next one
         diag = np.diag(A).copy()
         diag = np.maximum(diag, 1e-12 * max(float(diag.max()), 1e-300))
         improved = False
