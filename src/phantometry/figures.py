@@ -46,9 +46,20 @@ def _finish(fig, path: str | os.PathLike, dpi: int, margins: dict[str, float] | 
 
 
 def _show_plane(ax, plane, vmax: float, title: str) -> None:
+    """A resampled plane in inverted greyscale (0 white, ``vmax`` black), in plane mm.
+
+    Drawn as a mesh of pixel squares: Agg fills the squares directly, so no canvas-sized
+    floating-point copy of the image is made (an ``imshow`` resamples the image to the
+    canvas in floating point first, which costs more memory than a small volume).
+    """
     nv, nu = plane.values.shape
-    extent = (-0.5 * plane.pixel_mm, (nu - 0.5) * plane.pixel_mm, -0.5 * plane.pixel_mm, (nv - 0.5) * plane.pixel_mm)
-    ax.imshow(np.nan_to_num(plane.values), cmap="gray_r", origin="lower", extent=extent, vmin=0, vmax=vmax, interpolation="nearest")
+    p = plane.pixel_mm
+    u_edges = (np.arange(nu + 1) - 0.5) * p
+    v_edges = (np.arange(nv + 1) - 0.5) * p
+    ax.pcolormesh(u_edges, v_edges, np.nan_to_num(plane.values), cmap="gray_r", vmin=0, vmax=vmax, shading="flat", antialiased=False,
+                  edgecolors="none", linewidth=0)
+    ax.set_xlim(u_edges[0], u_edges[-1])
+    ax.set_ylim(v_edges[0], v_edges[-1])
     ax.set_title(title, fontsize=9)
     ax.set_xticks([])
     ax.set_yticks([])
