@@ -247,22 +247,30 @@ def contrast_noise_chart(settings, sphere_diameters_mm: dict[str, float], path: 
     legend_h = 0.22 * int(np.ceil(len(settings) / (1 if len(settings) <= 6 else 2))) + 0.4
     fig = plt.figure(figsize=(11, 3.4 * nrows + legend_h))
     gs = fig.add_gridspec(nrows + 1, ncols, height_ratios=[3.4] * nrows + [legend_h])
+    keyed = [(number, _by_key(rows)) for number, _, rows in settings]
     for n, name in enumerate(spheres):
         ax = fig.add_subplot(gs[n // ncols, n % ncols])
-        for number, label, rows in settings:
-            d = _by_key(rows)
+        pts = []  # (x, y, x unc, y unc, failed, number)
+        for number, d in keyed:
             pc = (d.get((name, "percent_contrast")) or [None])[0]
             bv = (d.get((name, "background_variability_pct")) or [None])[0]
             if pc is None or bv is None or not (_finite(pc.value) and _finite(bv.value)):
                 continue
             failed = any(r.verdict == "fail" for r in d.get((name, "percent_contrast"), []) + d.get((name, "background_variability_pct"), []))
-            marker = _SETTING_MARKERS[(number - 1) % len(_SETTING_MARKERS)]
-            colour = _FAIL_COLOUR if failed else "black"
-            ax.errorbar(bv.value, pc.value,
-                        xerr=bv.uncertainty if _finite(bv.uncertainty) else None,
-                        yerr=pc.uncertainty if _finite(pc.uncertainty) else None,
-                        fmt=marker, ms=5, color=colour, mfc="white" if failed else colour, ecolor="#777777", elinewidth=0.8, capsize=2)
-            ax.annotate(str(number), (bv.value, pc.value), xytext=(4, 3), textcoords="offset points", fontsize=7)
+            pts.append((bv.value, pc.value, bv.uncertainty if _finite(bv.uncertainty) else 0.0,
+                        pc.uncertainty if _finite(pc.uncertainty) else 0.0, failed, number))
+        if pts:
+            x, y, ex, ey = (np.array([p[i] for p in pts], float) for i in range(4))
+            # every error bar of the panel in one call, then the markers grouped by shape and verdict
+            ax.errorbar(x, y, xerr=ex, yerr=ey, fmt="none", ecolor="#777777", elinewidth=0.8, capsize=2, zorder=2)
+            groups: dict = {}
+            for i, p in enumerate(pts):
+                groups.setdefault((_SETTING_MARKERS[(p[5] - 1) % len(_SETTING_MARKERS)], p[4]), []).append(i)
+            for (marker, failed), idx in groups.items():
+                colour = _FAIL_COLOUR if failed else "black"
+                ax.plot(x[idx], y[idx], marker, ms=5, color=colour, mfc="white" if failed else colour, ls="none", zorder=3)
+            for p in pts:
+                ax.annotate(str(p[5]), (p[0], p[1]), xytext=(4, 3), textcoords="offset points", fontsize=7)
         ax.margins(0.15)
         ax.set_title(f"{name.replace('sphere_', '')} sphere", fontsize=9)
         ax.set_xlabel("background variability N (%)", fontsize=8)
@@ -271,7 +279,8 @@ def contrast_noise_chart(settings, sphere_diameters_mm: dict[str, float], path: 
         ax.grid(True, color="#dddddd", lw=0.5)
     _legend_axis(fig, fig.add_subplot(gs[nrows, :]), settings)
     fig.suptitle(title or "Contrast against noise, one point per reconstruction setting (bars: standard uncertainty)", fontsize=10)
-    fig.tight_layout(rect=(0, 0, 1, 0.96))
+    height = fig.get_figheight()  # fixed margins in inches (a tight layout costs a second drawing)
+    fig.subplots_adjust(left=0.06, right=0.99, bottom=0.1 / height, top=1 - 0.7 / height, wspace=0.25, hspace=0.8 / 3.4)
     out = Path(path)
     fig.savefig(out, dpi=100)
     plt.close(fig)
@@ -328,6 +337,7 @@ def recovery_curves_chart(
                         seen.add((s, r.band, r.band_low, r.band_high))
                         x = sphere_diameters_mm[s]
                         ax.add_patch(Rectangle((x - 1.2, r.band_low), 2.4, r.band_high - r.band_low, fc="#e4e4e4", ec="#999999", lw=0.6, hatch="///", zorder=0))
+        bars: tuple[list, list, list] = ([], [], [])  # every setting's error bars, drawn in one call
         for (number, label, d), dx in zip(keyed, jitter):
             xs, ys, es, fails = [], [], [], []
             for s in spheres:
@@ -342,12 +352,16 @@ def recovery_curves_chart(
                 continue
             marker = _SETTING_MARKERS[(number - 1) % len(_SETTING_MARKERS)]
             ax.plot(xs, ys, color="#555555", lw=0.8, zorder=1)
-            ax.errorbar(xs, ys, yerr=es, fmt="none", ecolor="#888888", elinewidth=0.7, capsize=1.5, zorder=2)
+            bars[0].extend(xs)
+            bars[1].extend(ys)
+            bars[2].extend(es)
             ok = [i for i, f in enumerate(fails) if not f]
             bad = [i for i, f in enumerate(fails) if f]
             ax.plot([xs[i] for i in ok], [ys[i] for i in ok], marker, color="black", ms=4.5, ls="none", zorder=3)
             ax.plot([xs[i] for i in bad], [ys[i] for i in bad], marker, color=_FAIL_COLOUR, mfc="white", mew=1.3, ms=6, ls="none", zorder=4)
             ax.annotate(str(number), (xs[-1], ys[-1]), xytext=(5, 0), textcoords="offset points", fontsize=7, va="center")
+        if bars[0]:
+            ax.errorbar(bars[0], bars[1], yerr=bars[2], fmt="none", ecolor="#888888", elinewidth=0.7, capsize=1.5, zorder=2)
         ax.set_title("RC " + metric.removeprefix("rc_"), fontsize=9)
         ax.set_xlabel("sphere diameter (mm)", fontsize=8)
         ax.set_ylabel("recovery coefficient", fontsize=8)
@@ -355,7 +369,8 @@ def recovery_curves_chart(
         ax.grid(True, color="#dddddd", lw=0.5)
     _legend_axis(fig, fig.add_subplot(gs[1, :]), settings)
     fig.suptitle(title or "Recovery coefficients; grey boxes: acceptance bands; red open markers: outside the band", fontsize=10)
-    fig.tight_layout(rect=(0, 0, 1, 0.95))
+    height = fig.get_figheight()  # fixed margins in inches (a tight layout costs a second drawing)
+    fig.subplots_adjust(left=0.7 / fig.get_figwidth(), right=0.99, bottom=0.1 / height, top=1 - 0.5 / height, wspace=0.28, hspace=0.7 / 4.2)
     out = Path(path)
     fig.savefig(out, dpi=100)
     plt.close(fig)

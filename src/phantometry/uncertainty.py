@@ -380,7 +380,7 @@ def masked_autocovariance(values: np.ndarray, mask: np.ndarray, half_lags: Seque
 
 
 #: Most voxels the quadratic trend of the noise estimate is fitted to (an even subsample).
-TREND_FIT_VOXELS = 50_000
+TREND_FIT_VOXELS = 20_000
 
 
 def _quadratic_trend(values: np.ndarray, mask: np.ndarray) -> np.ndarray:
@@ -391,9 +391,10 @@ def _quadratic_trend(values: np.ndarray, mask: np.ndarray) -> np.ndarray:
     subsample of at most :data:`TREND_FIT_VOXELS` voxels (ample for ten smooth terms);
     returned on the whole box in single precision.
     """
-    idx = np.nonzero(mask)
-    step = max(1, int(math.ceil(idx[0].size / TREND_FIT_VOXELS)))
-    idx = tuple(i[::step] for i in idx)
+    flat = np.flatnonzero(mask)
+    step = max(1, int(math.ceil(flat.size / TREND_FIT_VOXELS)))
+    idx = np.unravel_index(flat[::step], mask.shape)
+    del flat
     centre = np.array([np.mean(i) for i in idx])
     scale = np.array([max(1.0, np.ptp(i) / 2) for i in idx])
     z, y, x = [(i - c) / s for i, c, s in zip(idx, centre, scale)]
@@ -895,10 +896,12 @@ class SearchSimulation:
         self.seed = int(seed)
         self.targets = [_Target(noise, volume, c, d, model_fn, peak_diameter_mm) for c, d in spheres]
         self.shape = tuple(int(v) for v in np.max([t.shape for t in self.targets], axis=0))
-        # draws per chunk: at most 2 million voxels, and a small fraction of the image, so the
-        # simulation's working memory (about ten chunk-sized arrays) stays below the volume's;
-        # at least ``chunks_at_least`` chunks, so threads can share the work
-        budget = min(2_000_000, max(volume.data.size // 16, 50_000))
+        # draws per chunk: at most 2 million voxels of the synthesis grid, and an eighth of the
+        # image, so the simulation's working memory stays below the volume's (the spectra and
+        # the per-sphere arrays are smaller than the grid; measured by
+        # benchmarks/bench_compare.py); at least ``chunks_at_least`` chunks, so threads can
+        # share the work
+        budget = min(2_000_000, max(volume.data.size // 8, 50_000))
         size = int(np.prod(_noise_filter(noise, self.shape).size))
         per_chunk = max(1, min(int(budget // size), -(-int(n_draws) // max(1, int(chunks_at_least)))))
         self.chunks = [(i, min(per_chunk, n_draws - start)) for i, start in enumerate(range(0, int(n_draws), per_chunk))]

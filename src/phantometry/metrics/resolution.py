@@ -774,6 +774,7 @@ def _solve(residual, jac, x0: np.ndarray, free: np.ndarray, tol: float = 1e-8, m
                 lam *= 10.0
                 continue
             q_new = q + step
+            r_new = J_new = None  # a rejected trial's Jacobian goes before the next is made
             r_new, J_new = evaluate(q_new)
             cost_new = float(r_new @ r_new)
             if np.isfinite(cost_new) and cost_new <= cost:
