@@ -211,3 +211,11 @@ def test_implausible_fit_is_refused(sphere_scans):
     wrong = [SphereObservation(o.name, o.centre_mm, o.diameter_mm, o.wall_mm, 10 * o.true_bq_ml) for o in _observations(res)]
     with pytest.raises(PhantomNotFound, match="no plausible solution"):
         fit_sphere_profiles(res.volume, wrong, 2000.0, exclusions=[_lung_exclusion(res)])
+
+
+@pytest.mark.parametrize("R, s", [(25.0, 4.0), (12.5, 2.0), (3.0, 5.0)])
+def test_disc_profile_off_axis_matches_noncentral_chi2(R, s):
+    # Reference library: scipy.stats.ncx2 (|X|^2 / s^2 for a 2-D normal at distance rho from the axis)
+    rho = np.linspace(0.0, R + 5 * s, 41)
+    ref = stats.ncx2.cdf((R / s) ** 2, 2, (rho / s) ** 2)
+    np.testing.assert_allclose(blurred_disc_profile(rho, R, s), ref, rtol=1e-9, atol=1e-12)

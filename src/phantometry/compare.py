@@ -426,7 +426,8 @@ def assign_labels(outcomes: Sequence[SeriesOutcome], mapping: dict[str, str] | N
 
 # ============================================================================== the worker
 #: Modules a worker needs; imported once by the fork server (or by each spawned worker at start).
-_WORKER_MODULES = ["phantometry.compare", "phantometry.measure", "phantometry.io.dicom", "phantometry.io.nifti", "phantometry.figures"]
+_WORKER_MODULES = ["phantometry.compare", "phantometry.measure", "phantometry.uncertainty", "phantometry.metrics.resolution", "phantometry.io.dicom",
+                   "phantometry.io.nifti", "phantometry.figures", "phantometry._agg"]
 
 
 _CACHE: dict[tuple, Any] = {}

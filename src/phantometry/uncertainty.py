@@ -712,10 +712,9 @@ def _scaled_quadratic_form(noise: NoiseModel, volume: Volume, box, a: np.ndarray
         return max(noise.quadratic_form(a, single_precision=True), 0.0)
     if level_fn is not None:  # a noise-free level is known: the exact form with s_x s_y
         return max(noise.quadratic_form(a * noise.scale_at(level_fn(_box_world(volume, box)))), 0.0)
-    from scipy import signal
+    from .fftconv import fft_convolve
 
-    with sfft.set_workers(fft_workers()):
-        field = signal.fftconvolve(a, noise.autocov_bq2_ml2, mode="same")
+    field = fft_convolve(a, noise.autocov_bq2_ml2, mode="same")
     vals = np.nan_to_num(volume.data[box].astype(np.float64)) / max(noise.background_bq_ml, 1e-12)
     if noise.variance_power != 1.0:
         vals = np.clip(vals, 0.0, None) ** noise.variance_power
