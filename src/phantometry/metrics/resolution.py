@@ -459,7 +459,8 @@ def _voxels_near(volume: Volume, centre: np.ndarray, radius: float) -> tuple[np.
     return flat, world[keep]
 
 
-#: (voxel, sphere) pairs evaluated at a time by the blurred-sphere model.
+#: Fewest (voxel, sphere) pairs evaluated at a time by the blurred-sphere model (blocks grow
+#: with the image: 1/256 of its voxel count, so their working memory stays a small fraction of it).
 PAIR_BLOCK = 2048
 
 
@@ -474,6 +475,7 @@ class _Problem:
     wall: np.ndarray  # (S,)
     true: np.ndarray  # (S,)
     voxel_var: float  # mean d^2 / 12
+    block: int = PAIR_BLOCK  # pairs per block of :meth:`evaluate`
     _cache: tuple | None = None
 
     def sigma(self, fwhm: float) -> float:
@@ -518,9 +520,9 @@ class _Problem:
         J = np.zeros((n, 3 + 3 * n_s), dtype=np.float32)  # single precision: half the memory; sums in double (_gram)
         # (voxel, sphere) pairs in blocks (a loop over blocks, not voxels): the working arrays
         # of the profiles and their derivatives stay small whatever the number of voxels
-        for a in range(0, len(self.pair_vox), PAIR_BLOCK):
-            pv = self.pair_vox[a : a + PAIR_BLOCK]
-            ps = self.pair_sph[a : a + PAIR_BLOCK]
+        for a in range(0, len(self.pair_vox), self.block):
+            pv = self.pair_vox[a : a + self.block]
+            ps = self.pair_sph[a : a + self.block]
             rel = self.world[pv] - centres[ps]
             r = np.sqrt(np.einsum("ij,ij->i", rel, rel))
             R = self.radius[ps]
@@ -633,7 +635,7 @@ def _fit_once(volume, spheres, start_centres, background, exclusions, noise, mar
     near = np.stack([np.einsum("vk,vk->v", world - c, world - c) < r * r for c, r in zip(start_centres, reach)], axis=1)
     pv, ps = (i.astype(np.int32) for i in np.nonzero(near))
     del near
-    prob = _Problem(values, world, flat, pv, ps, radius, wall, true, voxel_var)
+    prob = _Problem(values, world, flat, pv, ps, radius, wall, true, voxel_var, block=max(PAIR_BLOCK, volume.data.size // 256))
     hot = bool(np.any(true > 0))
 
     def unpack(q: np.ndarray) -> np.ndarray:
