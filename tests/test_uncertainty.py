@@ -287,24 +287,3 @@ def test_reported_uncertainties_match_monte_carlo(monkeypatch):
     ratios = {k: np.mean(uncertainties[k]) / np.std(values[k], ddof=1) for k in expected}
     bad = {f"{k[0]} {k[1]}": round(v, 3) for k, v in ratios.items() if not 0.7 <= v <= 1.3}
     assert not bad, bad
-
-
-def test_background_sets_at_once_equal_one_size_at_a_time():
-    # Same mathematics two ways: the per-size quadratic forms (autocorrelation of each weight
-    # box) against all sizes at once (one interpolation per plane, Parseval on one grid).
-    res = synthesize(SynthSpec(voxel_mm=(4.0,) * 3, psf_fwhm_mm=8.0, noise_cv=0.1, sphere_ratio=4.0, seed=11))
-    fill = FillRecord.from_dict(res.fill_record)
-    a = measure_volume(res.volume, TPL, fill, uncertainties=False, resolution=False)
-    noise = U.estimate_noise(res.volume, a.placement, TPL)
-    pl, bg = a.placement, TPL.background
-    centres = np.asarray(bg.centres_xy_mm, float)
-    discs = []
-    for off in bg.slice_offsets_mm:
-        plane = a.planes[off]
-        uv = plane.world_to_uv(pl.to_world(np.c_[centres, np.full(len(centres), off)]))
-        discs.extend((plane, c) for c in uv)
-    together = U.disc_set_variances(noise, res.volume, discs, bg.diameters_mm)
-    for d in bg.diameters_mm:
-        one = U.discs_variance(noise, res.volume, discs, d, heteroscedastic=False)
-        assert together[float(d)] == pytest.approx(one, rel=1e-5), d
-        assert one > 0

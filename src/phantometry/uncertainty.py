@@ -51,8 +51,9 @@ Method (documented in the README, "Uncertainties")
    GUM Supplement 1): :data:`BOOTSTRAP_DRAWS` noise fields with the estimated
    autocovariance and level law are added to the fitted noise-free blurred-sphere image
    (:mod:`phantometry.metrics.resolution`), the three searches are repeated on each draw,
-   and the SD over the draws is the standard uncertainty (:func:`bootstrap_search_sd`;
-   a fixed seed per sphere makes results reproducible).
+   and the SD over the draws is the standard uncertainty (:func:`bootstrap_search_sd`,
+   :class:`SearchSimulation`: every sphere takes its box out of one shared stack of
+   draws, made in chunks with fixed seeds, so results are reproducible).
 """
 
 from __future__ import annotations
@@ -88,7 +89,6 @@ __all__ = [
     "u_background_variability",
     "simulate_noise",
     "bootstrap_search_sd",
-    "disc_set_variances",
     "SearchSimulation",
     "body_uncertainties",
     "discs_variance",
@@ -485,20 +485,12 @@ def plane_voxel_weights(volume: Volume, plane: "PlaneImage", box2d: tuple[slice,
     -------
     (box, W) : array-order box of the volume and the voxel weights on it.
     """
-    used = weights2d > 0
-    box, dims, flat, corner_w = _plane_spread(volume, plane, box2d, used)
-    w = np.asarray(weights2d, float)[used]
-    out = np.bincount(flat, corner_w * np.tile(w, 8), int(np.prod(dims))).reshape(dims)
-    return box, out
-
-
-def _plane_spread(volume: Volume, plane: "PlaneImage", box2d: tuple[slice, slice], used: np.ndarray):
-    """Interpolation of the ``used`` nodes of a plane box from the voxels: the voxel box, its
-    shape, and for the 8 corners (corner-major) the flat voxel index and weight of each node."""
     rows = np.arange(box2d[0].start, box2d[0].stop, dtype=float)
     cols = np.arange(box2d[1].start, box2d[1].stop, dtype=float)
+    used = weights2d > 0
     rr, cc = np.meshgrid(rows, cols, indexing="ij")
     uv = np.stack([cc[used] * plane.pixel_mm, rr[used] * plane.pixel_mm], axis=-1)
+    w = weights2d[used].astype(float)
     idx = volume.world_to_index(plane.uv_to_world(uv))
     snapped = np.rint(idx)
     idx = np.where(np.abs(idx - snapped) < 1e-6, snapped, idx)
@@ -511,11 +503,12 @@ def _plane_spread(volume: Volume, plane: "PlaneImage", box2d: tuple[slice, slice
     flat_idx, flat_w = [], []
     for corner in np.ndindex(2, 2, 2):
         c = np.array(corner)
-        flat_w.append(np.prod(np.where(c == 1, frac, 1.0 - frac), axis=1))
+        flat_w.append(np.prod(np.where(c == 1, frac, 1.0 - frac), axis=1) * w)
         pos = np.clip(base + c, 0, shape - 1) - lo  # map_coordinates mode "nearest" at the faces
         flat_idx.append(np.ravel_multi_index(tuple(pos.T), dims))
+    out = np.bincount(np.concatenate(flat_idx), np.concatenate(flat_w), int(np.prod(dims))).reshape(dims)
     box = tuple(slice(int(a), int(b) + 1) for a, b in zip(lo, hi))
-    return box, dims, np.concatenate(flat_idx), np.concatenate(flat_w)
+    return box, out  # type: ignore[return-value]
 
 
 def level_map(volume: Volume, box: tuple[slice, slice, slice]) -> np.ndarray:
@@ -744,109 +737,38 @@ def discs_variance(
     single weight image before being spread onto the voxels (:func:`plane_voxel_weights`),
     so the covariance of every pair of discs, on one plane or across planes, is included.
     """
+    from .rois import _disc_batch
+
     k = len(discs)
+    by_plane: dict[int, tuple["PlaneImage", list[np.ndarray]]] = {}
+    for plane, uv in discs:
+        by_plane.setdefault(id(plane), (plane, []))[1].append(np.asarray(uv, float).reshape(2))
     parts = []
-    for plane, uvs in _discs_by_plane(discs).values():
-        box2d, img = _disc_plane_image(plane, uvs, diameter_mm, k)
+    for plane, uvs in by_plane.values():
+        # every disc of this plane at once: exact pixel fractions, each disc normalised to 1 / K
+        w, r0, c0, H = _disc_batch(plane, np.array(uvs), diameter_mm, 7)
+        w = w / w.sum(axis=(1, 2), keepdims=True) / k
+        nv, nu = plane.values.shape
+        ra, rb = max(int(r0.min()) - H, 0), min(int(r0.max()) + H + 1, nv)
+        ca, cb = max(int(c0.min()) - H, 0), min(int(c0.max()) + H + 1, nu)
+        img = np.zeros((rb - ra, cb - ca))
+        for stencil, r, c in zip(w, r0, c0):  # one small stencil per ROI (K ROIs, not voxels)
+            rows = slice(r - H, r + H + 1)
+            cols = slice(c - H, c + H + 1)
+            # clip the stencil to the plane (weights beyond it are zero for ROIs inside the image)
+            sr = slice(max(0, ra - rows.start), (2 * H + 1) - max(0, rows.stop - rb))
+            sc = slice(max(0, ca - cols.start), (2 * H + 1) - max(0, cols.stop - cb))
+            img[max(rows.start, ra) - ra : min(rows.stop, rb) - ra, max(cols.start, ca) - ca : min(cols.stop, cb) - ca] += stencil[sr, sc]
+        used_r = np.flatnonzero(img.sum(axis=1) > 0)
+        used_c = np.flatnonzero(img.sum(axis=0) > 0)
+        if used_r.size == 0:
+            raise PhantomNotFound("uncertainty: disc ROIs lie outside the plane image; check the ROI positions")
+        img = img[used_r[0] : used_r[-1] + 1, used_c[0] : used_c[-1] + 1]
+        box2d = (slice(ra + int(used_r[0]), ra + int(used_r[-1]) + 1), slice(ca + int(used_c[0]), ca + int(used_c[-1]) + 1))
         box3, w3 = plane_voxel_weights(volume, plane, box2d, img)
         parts.append((box3, w3, 1.0))
     box, a = combine_weights(parts)
     return _scaled_quadratic_form(noise, volume, box, a, heteroscedastic, level_fn)
-
-
-def _discs_by_plane(discs: Sequence[tuple["PlaneImage", np.ndarray]]) -> dict[int, tuple["PlaneImage", list[np.ndarray]]]:
-    by_plane: dict[int, tuple["PlaneImage", list[np.ndarray]]] = {}
-    for plane, uv in discs:
-        by_plane.setdefault(id(plane), (plane, []))[1].append(np.asarray(uv, float).reshape(2))
-    return by_plane
-
-
-def _disc_plane_image(plane: "PlaneImage", uvs: list[np.ndarray], diameter_mm: float, k: int) -> tuple[tuple[slice, slice], np.ndarray]:
-    """Weights of several discs on one plane: exact pixel fractions, each disc normalised to ``1 / k``.
-
-    Returns the plane box (rows, columns) of the pixels with weight and the weights on it.
-    """
-    from .rois import _disc_batch
-
-    w, r0, c0, H = _disc_batch(plane, np.array(uvs), diameter_mm, 7)
-    w = w / w.sum(axis=(1, 2), keepdims=True) / k
-    nv, nu = plane.values.shape
-    ra, rb = max(int(r0.min()) - H, 0), min(int(r0.max()) + H + 1, nv)
-    ca, cb = max(int(c0.min()) - H, 0), min(int(c0.max()) + H + 1, nu)
-    img = np.zeros((rb - ra, cb - ca))
-    for stencil, r, c in zip(w, r0, c0):  # one small stencil per ROI (K ROIs, not voxels)
-        rows = slice(r - H, r + H + 1)
-        cols = slice(c - H, c + H + 1)
-        # clip the stencil to the plane (weights beyond it are zero for ROIs inside the image)
-        sr = slice(max(0, ra - rows.start), (2 * H + 1) - max(0, rows.stop - rb))
-        sc = slice(max(0, ca - cols.start), (2 * H + 1) - max(0, cols.stop - cb))
-        img[max(rows.start, ra) - ra : min(rows.stop, rb) - ra, max(cols.start, ca) - ca : min(cols.stop, cb) - ca] += stencil[sr, sc]
-    used_r = np.flatnonzero(img.sum(axis=1) > 0)
-    used_c = np.flatnonzero(img.sum(axis=0) > 0)
-    if used_r.size == 0:
-        raise PhantomNotFound("uncertainty: disc ROIs lie outside the plane image; check the ROI positions")
-    img = img[used_r[0] : used_r[-1] + 1, used_c[0] : used_c[-1] + 1]
-    box2d = (slice(ra + int(used_r[0]), ra + int(used_r[-1]) + 1), slice(ca + int(used_c[0]), ca + int(used_c[-1]) + 1))
-    return box2d, img
-
-
-def disc_set_variances(
-    noise: NoiseModel,
-    volume: Volume,
-    discs: Sequence[tuple["PlaneImage", np.ndarray]],
-    diameters_mm: Sequence[float],
-) -> dict[float, float]:
-    """:func:`discs_variance` (uniform level) of the same disc centres at several diameters at once.
-
-    The background ROI sets: every size has the same centres, so the interpolation from each
-    plane to the voxels is worked out once, and every size's quadratic form comes from one
-    forward FFT by Parseval's theorem, ``sum_tau C(tau) (a * a)(tau) = (1/N) sum_k C^(k) |A(k)|^2``
-    on one grid (the autocovariance's transform ``C^`` made once), instead of an
-    autocorrelation per size. Returns diameter -> variance (Bq/mL)^2.
-    """
-    k = len(discs)
-    diameters = [float(d) for d in diameters_mm]
-    parts: dict[float, list] = {d: [] for d in diameters}
-    for plane, uvs in _discs_by_plane(discs).values():
-        images = {d: _disc_plane_image(plane, uvs, d, k) for d in diameters}
-        r_lo = min(b[0].start for b, _ in images.values())
-        r_hi = max(b[0].stop for b, _ in images.values())
-        c_lo = min(b[1].start for b, _ in images.values())
-        c_hi = max(b[1].stop for b, _ in images.values())
-        union = (slice(r_lo, r_hi), slice(c_lo, c_hi))
-        full = {}
-        for d, (b, img) in images.items():
-            canvas = np.zeros((r_hi - r_lo, c_hi - c_lo))
-            canvas[b[0].start - r_lo : b[0].stop - r_lo, b[1].start - c_lo : b[1].stop - c_lo] = img
-            full[d] = canvas
-        used = np.logical_or.reduce([img > 0 for img in full.values()])
-        box3, dims, flat, corner_w = _plane_spread(volume, plane, union, used)
-        for d in diameters:
-            w3 = np.bincount(flat, corner_w * np.tile(full[d][used], 8), int(np.prod(dims))).reshape(dims)
-            parts[d].append((box3, w3, 1.0))
-    boxes = {d: combine_weights(parts[d]) for d in diameters}
-    # one grid for every size: the largest box plus the lag window
-    shape = np.max([a.shape for _, a in boxes.values()], axis=0)
-    L = np.array(noise.half_lags)
-    size = [sfft.next_fast_len(int(n + l), real=True) for n, l in zip(shape, L)]
-    emb = np.zeros(size)
-    idx = [np.r_[np.arange(-l, 0) % s_, np.arange(0, l + 1)] for l, s_ in zip(L, size)]
-    emb[np.ix_(*idx)] = noise.autocov_bq2_ml2
-    c_hat = sfft.rfftn(emb, workers=fft_workers()).real
-    del emb
-    weight = np.full(c_hat.shape, 2.0)  # half spectrum: each component stands for k and -k ...
-    weight[..., 0] = 1.0  # ... except on the last axis's zero (and Nyquist) plane
-    if size[-1] % 2 == 0:
-        weight[..., -1] = 1.0
-    c_hat *= weight / float(np.prod(size))
-    del weight
-    out = {}
-    for d, (_, a) in boxes.items():
-        f = sfft.rfftn(a.astype(np.float32), size, workers=fft_workers())
-        power = f.real.astype(np.float64) ** 2 + f.imag.astype(np.float64) ** 2
-        del f
-        out[d] = max(float(np.sum(power * c_hat)), 0.0)
-    return out
 
 
 class _Target:
@@ -1171,8 +1093,9 @@ def _disc_uncertainties(analysis: Any, noise: NoiseModel) -> tuple[dict[tuple[st
         plane = analysis.planes[off]
         uv = plane.world_to_uv(pl.to_world(np.c_[centres_xy, np.full(len(centres_xy), off)]))
         discs_by_offset.extend((plane, c) for c in uv)
-    variances = disc_set_variances(noise, vol, discs_by_offset, list(analysis.background_roi_means))
-    u_cb: dict[float, float] = {d: math.sqrt(variances[float(d)]) for d in analysis.background_roi_means}
+    u_cb: dict[float, float] = {}
+    for d in analysis.background_roi_means:
+        u_cb[d] = math.sqrt(discs_variance(noise, vol, discs_by_offset, d, heteroscedastic=False))
     ref = a.reference_background_diameter_mm
     cb_ref, ucb_ref = c_b[ref], u_cb[ref]
     # ---- spheres
