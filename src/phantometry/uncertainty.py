@@ -1084,7 +1084,7 @@ def _disc_uncertainties(analysis: Any, noise: NoiseModel) -> tuple[dict[tuple[st
     pl = analysis.placement
     a = tpl.analysis
     bg = tpl.background
-    u_dir, v_dir, axis = pl.rotation[:, 0], pl.rotation[:, 1], pl.rotation[:, 2]
+    u_dir, v_dir = pl.rotation[:, 0], pl.rotation[:, 1]
     values = {(r.roi, r.metric): r.value for r in analysis.rows}
     # ---- background ROI sets: the mean of K ROI means per size (level = background)
     centres_xy = np.asarray(bg.centres_xy_mm, float)
