@@ -10,6 +10,8 @@ realisation (CV proportional to FWHM^-1.5). Then, in one run:
     thread per measurement (``phantometry.threads.threads(1)``, as a compare worker runs);
 (b) ``phantometry.compare.compare`` over the folder with 2 worker processes, timed from the
     call to its return (worker start-up, discovery, charts included) -> T_cmp;
+    (a) and (b) interleaved ``--repeats`` times, the best of each kept (on a shared machine
+    other processes only ever add time; every run is printed too);
 (c) memory: ``compare`` again over a few series with ``trace_memory=True``; each worker
     reports the tracemalloc peak of its task (numpy buffers included) and its maximum
     resident set size (``resource.getrusage``); also without the overlay picture and without
@@ -20,7 +22,7 @@ Prints the measured numbers; asserts nothing.
 
 Usage::
 
-    python benchmarks/bench_compare.py [--series 20] [--workers 2] [--memory-series 4]
+    python benchmarks/bench_compare.py [--series 20] [--workers 2] [--memory-series 4] [--repeats 3]
 """
 
 from __future__ import annotations
@@ -42,6 +44,7 @@ def main() -> None:
     ap.add_argument("--series", type=int, default=20)
     ap.add_argument("--workers", type=int, default=2)
     ap.add_argument("--memory-series", type=int, default=4)
+    ap.add_argument("--repeats", type=int, default=3, help="interleaved repetitions, best kept (default 3)")
     args = ap.parse_args()
     fwhms = np.linspace(4.0, 11.6, args.series)
     settings = [
@@ -60,25 +63,31 @@ def main() -> None:
               f"one float32 volume = {volume_bytes / 2**20:.2f} MiB")
 
         measure(fam["series"][0], fill=fam["fill"], out=tmp / "warm")  # imports and caches of this process
-        t0 = time.perf_counter()
-        for n, folder in enumerate(fam["series"], start=1):
-            measure(folder, fill=fam["fill"], out=tmp / "seq" / f"{n:02d}")
-        t_seq = time.perf_counter() - t0
-        # the same loop with one thread per measurement (as each compare worker runs): the
-        # default measure uses every CPU for its FFTs and RC simulations
         from phantometry.threads import threads
 
-        with threads(1):
+        # the three timings interleaved, each repeated; the best of each is kept (other
+        # processes on a shared machine only ever add time)
+        seq, seq1, cmp_ = [], [], []
+        for rep in range(args.repeats):
             t0 = time.perf_counter()
             for n, folder in enumerate(fam["series"], start=1):
-                measure(folder, fill=fam["fill"], out=tmp / "seq1" / f"{n:02d}")
-            t_seq1 = time.perf_counter() - t0
-
-        t0 = time.perf_counter()
-        result = compare(tmp / "recons", fill=fam["fill"], out=tmp / "cmp", workers=args.workers)
-        t_cmp = time.perf_counter() - t0
+                measure(folder, fill=fam["fill"], out=tmp / f"seq{rep}" / f"{n:02d}")
+            seq.append(time.perf_counter() - t0)
+            t0 = time.perf_counter()
+            result = compare(tmp / "recons", fill=fam["fill"], out=tmp / f"cmp{rep}", workers=args.workers)
+            cmp_.append(time.perf_counter() - t0)
+            # the same loop with one thread per measurement (as each compare worker runs): the
+            # default measure uses every CPU for its FFTs and RC simulations
+            with threads(1):
+                t0 = time.perf_counter()
+                for n, folder in enumerate(fam["series"], start=1):
+                    measure(folder, fill=fam["fill"], out=tmp / f"seq1_{rep}" / f"{n:02d}")
+                seq1.append(time.perf_counter() - t0)
+        t_seq, t_seq1, t_cmp = min(seq), min(seq1), min(cmp_)
         failed = len(result.failed)
         per_series = [o.seconds for o in result.outcomes]
+        print(f"runs (s): sequential {' '.join(f'{t:.1f}' for t in seq)}; compare {' '.join(f'{t:.1f}' for t in cmp_)}; "
+              f"sequential one thread {' '.join(f'{t:.1f}' for t in seq1)}; best of each below")
 
         print(f"sequential measure x{args.series}: {t_seq:.2f} s ({t_seq / args.series:.2f} s per series)")
         print(f"compare, {args.workers} workers:      {t_cmp:.2f} s (worker time per series {np.mean(per_series):.2f} s; "
@@ -89,6 +98,8 @@ def main() -> None:
             print(f"load average now: {' '.join(open('/proc/loadavg').read().split()[:3])} (other processes on the machine skew the speed-up)")
 
         subset = fam["series"][: args.memory_series]
+        if not subset:
+            return
         variants = [
             ("everything (default measure)", True, {}),
             ("no overlay", False, {}),
