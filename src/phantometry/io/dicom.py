@@ -91,6 +91,7 @@ from ..errors import (
 )
 from ..nuclides import NUCLIDES, Nuclide, get_nuclide
 from ..volume import Reconstruction, Scanner, Volume
+from .dicom_listing import ListingHeader, read_listing_header
 
 __all__ = [
     "SeriesInfo",
@@ -338,49 +339,98 @@ def _collect_files(roots: Sequence[Path]) -> list[Path]:
     return sorted(set(files))
 
 
-#: The attributes :func:`discover_series` reads (the rest of each header is skipped).
+#: The attributes a listing needs (read by pydicom when the fast walk declines a file).
 _LISTING_TAGS = ["SeriesInstanceUID", "SeriesNumber", "SeriesDescription", "Modality", "StudyInstanceUID", "TimezoneOffsetFromUTC"]
 
 
-def _read_header(path: Path, listing: bool = False) -> tuple[str, Any]:
-    """Parse one file with pixel data deferred (``listing``: only :data:`_LISTING_TAGS`).
-
-    Returns ``("ok", dataset)``, ``("skip", None)`` for non-DICOM/DICOMDIR files, or
-    ``("broken", reason)`` for DICOM files whose series cannot be told.
-    """
-    try:
-        if listing:
-            ds = pydicom.dcmread(path, stop_before_pixels=True, specific_tags=_LISTING_TAGS)
-        else:
-            ds = pydicom.dcmread(path, defer_size=_DEFER_BYTES)
-    except InvalidDicomError:
-        return "skip", None
-    except Exception as exc:  # pydicom raises many types on damaged files
-        return "broken", f"{type(exc).__name__}: {exc}"
-    sop_class = ds.file_meta.get("MediaStorageSOPClassUID") if hasattr(ds, "file_meta") else None
+def _series_problem(sop_class: str | None, has_series_uid: bool) -> tuple[str, str | None] | None:
+    """``("skip", None)``/``("broken", reason)`` for a file listing cannot use, else None."""
     if sop_class == MediaStorageDirectoryStorage:
         return "skip", None
-    if "SeriesInstanceUID" not in ds:
+    if not has_series_uid:
         if sop_class is not None and sop_class not in (
             PositronEmissionTomographyImageStorage,
             *_ENHANCED_PET,
         ):
             return "skip", None  # a complete non-PET object without series, e.g. a report
         return "broken", "no Series Instance UID could be read (truncated header?)"
-    return "ok", ds
+    return None
 
 
-def _scan(roots: Sequence[Path], listing: bool = False) -> tuple[dict[str, list[_Entry]], list[tuple[Path, str]]]:
+def _read_header(path: Path) -> tuple[str, Any]:
+    """Parse one file with pixel data deferred.
+
+    Returns ``("ok", dataset)``, ``("skip", None)`` for non-DICOM/DICOMDIR files, or
+    ``("broken", reason)`` for DICOM files whose series cannot be told.
+    """
+    try:
+        ds = pydicom.dcmread(path, defer_size=_DEFER_BYTES)
+    except InvalidDicomError:
+        return "skip", None
+    except Exception as exc:  # pydicom raises many types on damaged files
+        return "broken", f"{type(exc).__name__}: {exc}"
+    sop_class = ds.file_meta.get("MediaStorageSOPClassUID") if hasattr(ds, "file_meta") else None
+    problem = _series_problem(sop_class, "SeriesInstanceUID" in ds)
+    return problem if problem is not None else ("ok", ds)
+
+
+def _listing_header(path: Path) -> tuple[str, Any]:
+    """Like :func:`_read_header` with a :class:`ListingHeader` in place of the dataset.
+
+    The fast walk of :mod:`phantometry.io.dicom_listing` reads nearly every file; pydicom
+    reads the rest (and tells non-DICOM and damaged files).
+    """
+    try:
+        header = read_listing_header(path)
+    except OSError as exc:
+        return "broken", f"{type(exc).__name__}: {exc}"
+    if header is None:
+        try:
+            ds = pydicom.dcmread(path, stop_before_pixels=True, specific_tags=_LISTING_TAGS)
+        except InvalidDicomError:
+            return "skip", None
+        except Exception as exc:  # pydicom raises many types on damaged files
+            return "broken", f"{type(exc).__name__}: {exc}"
+        header = listing_header_of(ds)
+    problem = _series_problem(header.sop_class_uid, header.series_uid is not None)
+    return problem if problem is not None else ("ok", header)
+
+
+def listing_header_of(ds: Any) -> ListingHeader:
+    """The :class:`ListingHeader` of a dataset read by pydicom."""
+    meta = getattr(ds, "file_meta", None)
+    sop_class = meta.get("MediaStorageSOPClassUID") if meta is not None else None
+    return ListingHeader(
+        sop_class_uid=(str(sop_class).strip(" \x00") or None) if sop_class is not None else None,
+        series_uid=_ascii(ds, "SeriesInstanceUID") if "SeriesInstanceUID" in ds else None,
+        series_number=_int(ds, "SeriesNumber"),
+        series_description=_text(ds, "SeriesDescription"),
+        modality=_ascii(ds, "Modality"),
+        study_uid=_ascii(ds, "StudyInstanceUID"),
+        timezone_offset=_ascii(ds, "TimezoneOffsetFromUTC"),
+    )
+
+
+def _scan(roots: Sequence[Path]) -> tuple[dict[str, list[_Entry]], list[tuple[Path, str]]]:
     groups: dict[str, list[_Entry]] = {}
     broken: list[tuple[Path, str]] = []
     for path in _collect_files(roots):
-        status, payload = _read_header(path, listing)
+        status, payload = _read_header(path)
         if status == "ok":
             uid = _ascii(payload, "SeriesInstanceUID") or ""
             groups.setdefault(uid, []).append(_Entry(path, payload))
         elif status == "broken":
             broken.append((path, payload))
     return groups, broken
+
+
+def _list(roots: Sequence[Path]) -> dict[str, list[tuple[Path, ListingHeader]]]:
+    groups: dict[str, list[tuple[Path, ListingHeader]]] = {}
+    for path in _collect_files(roots):
+        status, header = _listing_header(path)
+        if status == "ok":
+            groups.setdefault(header.series_uid, []).append((path, header))
+    return groups
 
 
 def _series_info(uid: str, entries: list[_Entry]) -> SeriesInfo:
@@ -397,8 +447,21 @@ def _series_info(uid: str, entries: list[_Entry]) -> SeriesInfo:
     )
 
 
-def _sorted_infos(groups: dict[str, list[_Entry]]) -> list[SeriesInfo]:
-    infos = [_series_info(uid, entries) for uid, entries in groups.items()]
+def _listed_info(uid: str, listed: list[tuple[Path, ListingHeader]]) -> SeriesInfo:
+    first = listed[0][1]
+    return SeriesInfo(
+        series_uid=uid,
+        series_number=first.series_number,
+        series_description=first.series_description,
+        modality=first.modality,
+        file_count=len(listed),
+        files=tuple(path for path, _ in listed),
+        study_uid=first.study_uid,
+        time_zone_assumed=first.timezone_offset is None,
+    )
+
+
+def _sorted_infos(infos: list[SeriesInfo]) -> list[SeriesInfo]:
     big = 1 << 62
     return sorted(infos, key=lambda s: (s.series_number if s.series_number is not None else big, s.series_uid))
 
@@ -423,8 +486,8 @@ def discover_series(paths: str | os.PathLike | Iterable[str | os.PathLike]) -> l
     InputError
         If a path does not exist.
     """
-    groups, _ = _scan(_as_path_list(paths), listing=True)
-    return _sorted_infos(groups)
+    groups = _list(_as_path_list(paths))
+    return _sorted_infos([_listed_info(uid, listed) for uid, listed in groups.items()])
 
 
 def _choices(infos: Iterable[SeriesInfo]) -> str:
@@ -959,7 +1022,7 @@ def load_dicom(
         raise InputError(f"{path}: damaged DICOM file{more}: {reason}; remove it or copy it again")
     if not groups:
         raise NoPETSeries(f"{where}: no DICOM files found; give the folder holding the PET series")
-    info = _choose(_sorted_infos(groups), series, where)
+    info = _choose(_sorted_infos([_series_info(uid, entries) for uid, entries in groups.items()]), series, where)
     entries = groups[info.series_uid]
     _check_supported(entries, info, where)
 
