@@ -7,7 +7,9 @@ realisation (CV proportional to FWHM^-1.5). Then, in one run:
 
 (a) sequential: one ``phantometry.measure.measure`` call per series in this process (after one
     untimed warm-up call, so this process has its imports done) -> T_seq; and again with one
-    thread per measurement (``phantometry.threads.threads(1)``, as a compare worker runs);
+    thread per measurement (``phantometry.threads.threads(1)``); and, like for like, the
+    workers' own task (``compare.measure_series``: CSV, JSON and overlay, no per-series
+    recovery-curve picture) one after another with one thread for phantometry and BLAS;
 (b) ``phantometry.compare.compare`` over the folder with 2 worker processes, timed from the
     call to its return (worker start-up, discovery, charts included) -> T_cmp;
     (a) and (b) interleaved ``--repeats`` times, the best of each kept (on a shared machine
@@ -67,7 +69,11 @@ def main() -> None:
 
         # the three timings interleaved, each repeated; the best of each is kept (other
         # processes on a shared machine only ever add time)
-        seq, seq1, cmp_ = [], [], []
+        from phantometry.compare import discover_jobs, measure_series
+        from phantometry.threads import current_threads, set_threads
+
+        jobs, _ = discover_jobs(tmp / "recons")
+        seq, seq1, cmp_, seq_task = [], [], [], []
         for rep in range(args.repeats):
             t0 = time.perf_counter()
             for n, folder in enumerate(fam["series"], start=1):
@@ -83,17 +89,32 @@ def main() -> None:
                 for n, folder in enumerate(fam["series"], start=1):
                     measure(folder, fill=fam["fill"], out=tmp / f"seq1_{rep}" / f"{n:02d}")
                 seq1.append(time.perf_counter() - t0)
-        t_seq, t_seq1, t_cmp = min(seq), min(seq1), min(cmp_)
+            # like for like: the workers' own task (measure_series: no recovery-curve picture,
+            # which compare draws once for all settings) one after another in this process,
+            # with one thread for phantometry and for BLAS, as in a worker
+            before = current_threads()
+            set_threads(1)
+            try:
+                t0 = time.perf_counter()
+                for job in jobs:
+                    measure_series(job, "iec-body", str(fam["fill"]), out_dir=str(tmp / f"task{rep}" / job.folder_name))
+                seq_task.append(time.perf_counter() - t0)
+            finally:
+                set_threads(before)
+        t_seq, t_seq1, t_cmp, t_task = min(seq), min(seq1), min(cmp_), min(seq_task)
         failed = len(result.failed)
         per_series = [o.seconds for o in result.outcomes]
         print(f"runs (s): sequential {' '.join(f'{t:.1f}' for t in seq)}; compare {' '.join(f'{t:.1f}' for t in cmp_)}; "
-              f"sequential one thread {' '.join(f'{t:.1f}' for t in seq1)}; best of each below")
+              f"sequential one thread {' '.join(f'{t:.1f}' for t in seq1)}; "
+              f"sequential worker tasks {' '.join(f'{t:.1f}' for t in seq_task)}; best of each below")
 
         print(f"sequential measure x{args.series}: {t_seq:.2f} s ({t_seq / args.series:.2f} s per series)")
         print(f"compare, {args.workers} workers:      {t_cmp:.2f} s (worker time per series {np.mean(per_series):.2f} s; "
               f"{failed} failed)")
         print(f"speed-up: {t_seq / t_cmp:.2f}  (goal >= 1.7)")
         print(f"  (against sequential measure with one thread per measurement, {t_seq1:.2f} s: {t_seq1 / t_cmp:.2f})")
+        print(f"  (like for like: the workers' own tasks one after another in this process, {t_task:.2f} s: "
+              f"{t_task / t_cmp:.2f}; {args.workers} workers at most {args.workers:.1f})")
         if os.path.exists("/proc/loadavg"):
             print(f"load average now: {' '.join(open('/proc/loadavg').read().split()[:3])} (other processes on the machine skew the speed-up)")
 

@@ -768,6 +768,19 @@ def _context() -> multiprocessing.context.BaseContext:
     return multiprocessing.get_context("spawn")
 
 
+def worker_pool(n_workers: int) -> ProcessPoolExecutor:
+    """The pool of worker processes :func:`compare` measures in.
+
+    Each worker gets its share of the CPUs (at least one thread) for its FFTs, simulations
+    and BLAS/LAPACK calls (:func:`phantometry.threads.set_threads`), so the machine is not
+    oversubscribed; workers are forked from a fork server that has the measuring modules
+    imported (where the platform has one).
+    """
+    n_cpu = os.cpu_count() or 1
+    return ProcessPoolExecutor(max_workers=n_workers, mp_context=_context(),
+                               initializer=set_threads, initargs=(max(1, n_cpu // n_workers),))
+
+
 def compare(
     inputs: Sequence[str | os.PathLike] | str | os.PathLike,
     *,
@@ -852,11 +865,10 @@ def compare(
         # start the workers now so that their imports overlap the header scan below
         # (from a thread: with the fork server, starting a worker waits for its module preload)
         n_workers = workers or n_cpu
-        # each worker gets its share of the CPUs for its FFTs and simulations, and this process
-        # (which only measures should the pool break) one thread: no oversubscription, and
-        # one measurement's working memory per process
-        executor = ProcessPoolExecutor(max_workers=n_workers, mp_context=_context(),
-                                       initializer=set_threads, initargs=(max(1, n_cpu // n_workers),))
+        # each worker gets its share of the CPUs (worker_pool), and this process (which only
+        # measures should the pool break) one thread: no oversubscription, and one
+        # measurement's working memory per process
+        executor = worker_pool(n_workers)
         threads_before = current_threads()
         set_threads(1)
 

@@ -14,6 +14,7 @@ import threading
 from typing import Iterator
 
 _threads: int | None = None
+_blas_limits = None  # the threadpoolctl limiter set by set_threads
 _local = threading.local()
 
 
@@ -37,9 +38,34 @@ def current_threads() -> int | None:
 
 
 def set_threads(n: int | None) -> None:
-    """Set the thread count of this process (``None``: back to the default)."""
-    global _threads
+    """Set the thread count of this process (``None``: back to the default).
+
+    Also caps the thread pools of the BLAS/LAPACK and OpenMP libraries numpy and scipy use
+    (through threadpoolctl) at ``n``; ``None`` restores them. Without the cap, every worker
+    process of :func:`phantometry.compare.compare` runs an OpenBLAS pool of one thread per
+    CPU, and two workers on two CPUs slowed each other's matrix products in the resolution
+    fit by 2 to 12 times (benchmarks/bench_compare.py).
+    """
+    global _threads, _blas_limits
     _threads = None if n is None else max(1, int(n))
+    from threadpoolctl import threadpool_limits
+
+    if _blas_limits is not None:
+        _blas_limits.restore_original_limits()
+        _blas_limits = None
+    if _threads is not None:
+        _blas_limits = threadpool_limits(limits=_threads)
+
+
+def library_threads() -> dict[str, int]:
+    """Threads of each BLAS/OpenMP pool loaded in this process (``{"openblas": 1}``)."""
+    from threadpoolctl import threadpool_info
+
+    pools: dict[str, int] = {}
+    for pool in threadpool_info():
+        name = pool.get("internal_api", "?")
+        pools[name] = max(pools.get(name, 0), int(pool.get("num_threads", 0)))
+    return pools
 
 
 @contextlib.contextmanager
