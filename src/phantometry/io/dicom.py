@@ -91,7 +91,7 @@ from ..errors import (
 )
 from ..nuclides import NUCLIDES, Nuclide, get_nuclide
 from ..volume import Reconstruction, Scanner, Volume
-from .dicom_listing import ListingHeader, read_listing_header
+from .dicom_listing import ListingHeader, first_int, read_listing_header
 
 __all__ = [
     "SeriesInfo",
@@ -226,13 +226,7 @@ def _text(ds: Any, keyword: str) -> str | None:
 
 
 def _int(ds: Any, keyword: str) -> int | None:
-    text = _ascii(ds, keyword)
-    if text is None:
-        return None
-    try:
-        return int(float(text.split("\\")[0]))
-    except ValueError:
-        return None
+    return first_int(_ascii(ds, keyword))
 
 
 def _float(ds: Any, keyword: str) -> float | None:

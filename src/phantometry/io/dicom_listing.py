@@ -25,7 +25,7 @@ import os
 import struct
 from dataclasses import dataclass
 
-__all__ = ["ListingHeader", "read_listing_header"]
+__all__ = ["ListingHeader", "first_int", "read_listing_header"]
 
 _PREAMBLE = 128
 _FIRST_READ = 16384
@@ -100,7 +100,8 @@ def _ascii_text(raw: bytes) -> str | None:
     return text or None
 
 
-def _series_number(text: str | None) -> int | None:
+def first_int(text: str | None) -> int | None:
+    """The first value of an IS/DS text as an integer (None when absent or not a number)."""
     if text is None:
         return None
     try:
@@ -222,7 +223,7 @@ def _walk(data: bytes, complete: bool) -> ListingHeader:
     return ListingHeader(
         sop_class_uid=_ascii_text(meta.get(0x00020002, b"")),
         series_uid=_ascii_text(found.get("series_uid", b"")),
-        series_number=_series_number(number_text),
+        series_number=first_int(number_text),
         series_description=_description(found["series_description"]) if "series_description" in found else None,
         modality=_ascii_text(found.get("modality", b"")),
         study_uid=_ascii_text(found.get("study_uid", b"")),
