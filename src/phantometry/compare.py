@@ -921,8 +921,8 @@ class _Run:
     """Hands the series to the workers, one at a time each.
 
     Worker processes are forked from a fork server that has imported numpy, scipy,
-    matplotlib and phantometry once (about a second and a half, while the series are
-    listed); the thread that starts the pool hands it its first series as soon as it is up,
+    matplotlib and phantometry once (one to two seconds, while this process lists the
+    series); the thread that starts the pool hands it its first series as soon as it is up,
     and the main process only dispatches (measuring here as well only made the workers
     slower: 13.2 s against 12.4 s for 20 series on 2 cores). Should the pool break, the main
     process measures the rest itself. At most ``workers + 1`` series are handed to the pool at

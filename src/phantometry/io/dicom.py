@@ -351,18 +351,25 @@ def _series_problem(sop_class: str | None, has_series_uid: bool) -> tuple[str, s
     return None
 
 
+def _dcmread(path: Path, **options: Any) -> tuple[str, Any]:
+    """``("ok", dataset)``, ``("skip", None)`` for a non-DICOM file or ``("broken", reason)``."""
+    try:
+        return "ok", pydicom.dcmread(path, **options)
+    except InvalidDicomError:
+        return "skip", None
+    except Exception as exc:  # pydicom raises many types on damaged files
+        return "broken", f"{type(exc).__name__}: {exc}"
+
+
 def _read_header(path: Path) -> tuple[str, Any]:
     """Parse one file with pixel data deferred.
 
     Returns ``("ok", dataset)``, ``("skip", None)`` for non-DICOM/DICOMDIR files, or
     ``("broken", reason)`` for DICOM files whose series cannot be told.
     """
-    try:
-        ds = pydicom.dcmread(path, defer_size=_DEFER_BYTES)
-    except InvalidDicomError:
-        return "skip", None
-    except Exception as exc:  # pydicom raises many types on damaged files
-        return "broken", f"{type(exc).__name__}: {exc}"
+    status, ds = _dcmread(path, defer_size=_DEFER_BYTES)
+    if status != "ok":
+        return status, ds
     sop_class = ds.file_meta.get("MediaStorageSOPClassUID") if hasattr(ds, "file_meta") else None
     problem = _series_problem(sop_class, "SeriesInstanceUID" in ds)
     return problem if problem is not None else ("ok", ds)
@@ -379,12 +386,9 @@ def _listing_header(path: Path) -> tuple[str, Any]:
     except OSError as exc:
         return "broken", f"{type(exc).__name__}: {exc}"
     if header is None:
-        try:
-            ds = pydicom.dcmread(path, stop_before_pixels=True, specific_tags=_LISTING_TAGS)
-        except InvalidDicomError:
-            return "skip", None
-        except Exception as exc:  # pydicom raises many types on damaged files
-            return "broken", f"{type(exc).__name__}: {exc}"
+        status, ds = _dcmread(path, stop_before_pixels=True, specific_tags=_LISTING_TAGS)
+        if status != "ok":
+            return status, ds
         header = listing_header_of(ds)
     problem = _series_problem(header.sop_class_uid, header.series_uid is not None)
     return problem if problem is not None else ("ok", header)
@@ -427,29 +431,14 @@ def _list(roots: Sequence[Path]) -> dict[str, list[tuple[Path, ListingHeader]]]:
     return groups
 
 
-def _series_info(uid: str, entries: list[_Entry]) -> SeriesInfo:
-    first = entries[0].ds
-    return SeriesInfo(
-        series_uid=uid,
-        series_number=_int(first, "SeriesNumber"),
-        series_description=_text(first, "SeriesDescription"),
-        modality=_ascii(first, "Modality"),
-        file_count=len(entries),
-        files=tuple(e.path for e in entries),
-        study_uid=_ascii(first, "StudyInstanceUID"),
-        time_zone_assumed=_ascii(first, "TimezoneOffsetFromUTC") is None,
-    )
-
-
-def _listed_info(uid: str, listed: list[tuple[Path, ListingHeader]]) -> SeriesInfo:
-    first = listed[0][1]
+def _series_info(uid: str, first: ListingHeader, files: Sequence[Path]) -> SeriesInfo:
     return SeriesInfo(
         series_uid=uid,
         series_number=first.series_number,
         series_description=first.series_description,
         modality=first.modality,
-        file_count=len(listed),
-        files=tuple(path for path, _ in listed),
+        file_count=len(files),
+        files=tuple(files),
         study_uid=first.study_uid,
         time_zone_assumed=first.timezone_offset is None,
     )
@@ -481,7 +470,7 @@ def discover_series(paths: str | os.PathLike | Iterable[str | os.PathLike]) -> l
         If a path does not exist.
     """
     groups = _list(_as_path_list(paths))
-    return _sorted_infos([_listed_info(uid, listed) for uid, listed in groups.items()])
+    return _sorted_infos([_series_info(uid, listed[0][1], [path for path, _ in listed]) for uid, listed in groups.items()])
 
 
 def _choices(infos: Iterable[SeriesInfo]) -> str:
@@ -1016,7 +1005,8 @@ def load_dicom(
         raise InputError(f"{path}: damaged DICOM file{more}: {reason}; remove it or copy it again")
     if not groups:
         raise NoPETSeries(f"{where}: no DICOM files found; give the folder holding the PET series")
-    info = _choose(_sorted_infos([_series_info(uid, entries) for uid, entries in groups.items()]), series, where)
+    infos = [_series_info(uid, listing_header_of(entries[0].ds), [e.path for e in entries]) for uid, entries in groups.items()]
+    info = _choose(_sorted_infos(infos), series, where)
     entries = groups[info.series_uid]
     _check_supported(entries, info, where)
 
