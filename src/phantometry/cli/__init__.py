@@ -16,30 +16,39 @@ import typer
 
 from ..errors import PhantometryError
 
+#: Options shared by every typer app of the command line: plain click-style usage errors (a
+#: usage line and one error line), no rich tracebacks (errors are turned into one line by main).
+APP_SETTINGS: dict = {"rich_markup_mode": None, "pretty_exceptions_enable": False}
+
 app = typer.Typer(
     add_completion=False,
     no_args_is_help=True,
+    **APP_SETTINGS,
     help="Quantitative image-quality analysis of PET phantom scans. Results support, and do not "
     "replace, a qualified medical physicist; follow local regulations and the scanner maker's "
     "acceptance procedures.",
 )
-templates_app = typer.Typer(no_args_is_help=True, help="List, show and check ROI templates.")
+templates_app = typer.Typer(no_args_is_help=True, help="List, show and check ROI templates.", **APP_SETTINGS)
 app.add_typer(templates_app, name="templates")
 
 _state = {"debug": False}
 
 
-@app.callback()
-def _root(
-    debug: bool = typer.Option(False, "--debug", help="Show tracebacks of errors."),
-    version: bool = typer.Option(False, "--version", help="Print the version and exit.", is_eager=True),
-) -> None:
-    _state["debug"] = debug
-    if version:
+def _print_version(value: bool) -> None:
+    """Eager ``--version``: print and stop before any command is required."""
+    if value:
         from .. import __version__
 
         typer.echo(f"phantometry {__version__}")
         raise typer.Exit(0)
+
+
+@app.callback()
+def _root(
+    debug: bool = typer.Option(False, "--debug", help="Show tracebacks of errors."),
+    version: bool = typer.Option(False, "--version", help="Print the version and exit.", is_eager=True, callback=_print_version),
+) -> None:
+    _state["debug"] = debug
 
 
 from . import commands  # noqa: E402,F401  (registers the commands)
@@ -49,33 +58,33 @@ from . import compare as _compare  # noqa: E402,F401
 
 
 def main(argv: Optional[list[str]] = None) -> int:
-    """Entry point of the ``phantometry`` console script."""
+    """Entry point of the ``phantometry`` console script; returns the exit code.
+
+    The app runs in typer's standalone mode, so usage errors (missing or unknown options, a
+    value of the wrong type) are printed by the command-line library itself: a usage line and
+    one error line, exit code 2. Only public typer names are used here.
+    """
     args = list(sys.argv[1:] if argv is None else argv)
     debug = "--debug" in args
     try:
-        rc = app(args=args, prog_name="phantometry", standalone_mode=False)
+        app(args=args, prog_name="phantometry", standalone_mode=True)
+    except SystemExit as exc:  # normal end, typer.Exit, usage errors (already printed)
+        if exc.code is None:
+            return 0
+        if isinstance(exc.code, int):
+            return exc.code
+        print(f"phantometry: error: {exc.code}", file=sys.stderr)
+        return 1
     except PhantometryError as exc:
         if debug:
             traceback.print_exc()
-        msg = str(exc).replace("\n", " ")
+        msg = " ".join(str(exc).split("\n"))
         print(f"phantometry: error: {msg}", file=sys.stderr)
         return 2
-    except typer.Exit as exc:
-        return int(exc.exit_code or 0)
-    except SystemExit as exc:  # click usage errors already printed
-        code = exc.code if isinstance(exc.code, int) else 2
-        return code
     except KeyboardInterrupt:
         print("phantometry: interrupted", file=sys.stderr)
         return 130
     except Exception as exc:  # a bug: say so briefly
-        import click
-
-        if isinstance(exc, click.exceptions.ClickException):
-            exc.show()
-            return exc.exit_code
-        if isinstance(exc, click.exceptions.Abort):
-            return 1
         if debug:
             traceback.print_exc()
         print(
@@ -83,8 +92,7 @@ def main(argv: Optional[list[str]] = None) -> int:
             file=sys.stderr,
         )
         return 1
-    # with standalone_mode=False click returns the exit code of typer.Exit / ctx.exit
-    return rc if isinstance(rc, int) else 0
+    return 0
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -10,10 +10,10 @@ from rich.console import Console
 from rich.markup import escape
 from rich.table import Table
 
-from . import app
+from . import APP_SETTINGS, app
 
 console = Console(highlight=False)
-bands_app = typer.Typer(no_args_is_help=True, help="List and show acceptance band sets (limits per ROI and metric).")
+bands_app = typer.Typer(no_args_is_help=True, **APP_SETTINGS, help="List and show acceptance band sets (limits per ROI and metric).")
 app.add_typer(bands_app, name="bands")
 
 

@@ -146,9 +146,7 @@ def measure_cmd(
         if any_failed(analysis.rows):
             failed = sum(1 for r in analysis.rows if r.verdict == "fail")
             console.print(f"[bold]--strict[/bold]: {failed} banded value(s) fail; exit code 3")
-            # SystemExit, not typer.Exit: with standalone_mode=False click returns typer.Exit's
-            # code from app() instead of raising it, and main() would report 0
-            raise SystemExit(3)
+            raise typer.Exit(3)
 
 
 def _print_resolution_and_verdicts(analysis, banded: bool) -> None:

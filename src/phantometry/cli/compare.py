@@ -106,5 +106,4 @@ def compare_cmd(
     files = "comparison.csv, ranking.csv, summary.json, contrast_noise.png, recovery_curves.png" + (", report.html" if report else "")
     console.print(f"wrote {out}/ ({files}); {len(result.succeeded)} of {len(result.outcomes)} series measured", markup=False)
     if result.exit_code:
-        # SystemExit rather than typer.Exit: click swallows Exit's code when not standalone
-        raise SystemExit(result.exit_code)
+        raise typer.Exit(result.exit_code)

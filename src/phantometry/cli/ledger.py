@@ -19,10 +19,11 @@ from rich.table import Table
 
 from ..errors import InputError, LedgerError
 from ..results import CAUTION
-from . import app
+from . import APP_SETTINGS, app
 
 ledger_app = typer.Typer(
     no_args_is_help=True,
+    **APP_SETTINGS,
     help="Trend ledger: record analyses, list them, trend one metric with control limits, "
     "baselines, drift checks, CSV export/import. --db URL or $PHANTOMETRY_DB selects the store.",
 )
@@ -258,7 +259,7 @@ def check_cmd(
     n_flags = sum(len(r.flags) for r in flagged)
     console.print(f"{n_flags} drift flag(s) in {len(flagged)} of {len(results)} metric series checked", markup=False)
     if strict and n_flags:
-        raise SystemExit(1)  # (typer.Exit is swallowed by click's non-standalone mode in cli.main)
+        raise typer.Exit(1)
 
 
 @ledger_app.command("export")
