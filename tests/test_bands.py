@@ -12,16 +12,17 @@ from phantometry.bands import (
     BandSet,
     apply_bands,
     builtin_band_dir,
+    check_band_set,
     list_band_sets,
-    load_band_set,
 )
 from phantometry.cli import main
 from phantometry.errors import BandError
 from phantometry.fill import FillRecord
+from phantometry.phantoms import known_metrics, load_band_set, load_template
 from phantometry.results import Measurement
-from phantometry.templates import load_template
 
 TPL = load_template("iec-body")
+KNOWN = known_metrics(TPL)
 
 # EANM FDG PET/CT guideline v2.0 (Boellaard et al., Eur J Nucl Med Mol Imaging
 # 2015;42:328-354) and its accreditation specification: RC ranges at 10:1 (confirmed values,
@@ -142,7 +143,7 @@ def test_verdicts_inclusive_limits_nan_absent_and_unbanded():
         _row("sphere_10mm", "rc_max", math.nan),  # not a number: n/a
         _row("sphere_10mm", "percent_contrast", 30.0, "%"),  # no band: untouched
     ]
-    out, warnings = apply_bands(rows, [bs], fill=_fill(10.0), template=TPL)
+    out, warnings = apply_bands(rows, [bs], fill=_fill(10.0))
     by = {(r.roi, r.metric): r for r in out}
     assert by[("sphere_37mm", "rc_mean")].verdict == "pass"
     assert (by[("sphere_37mm", "rc_mean")].band_low, by[("sphere_37mm", "rc_mean")].band_high) == (0.76, 0.89)
@@ -160,7 +161,7 @@ def test_verdicts_inclusive_limits_nan_absent_and_unbanded():
 def test_cold_sphere_rc_is_na_with_reason():
     fill = FillRecord.from_dict({"nuclide": "F-18", "background": {"concentration_kbq_ml": 2.0, "measured_at": "2026-11-03T10:30:00+01:00"},
                                  "spheres": {"ratio_to_background": 10.0}, "cold": ["sphere_37mm"]})
-    out, _ = apply_bands([], [load_band_set("eanm-fdg-2015")], fill=fill, template=TPL)
+    out, _ = apply_bands([], [load_band_set("eanm-fdg-2015")], fill=fill)
     r = next(r for r in out if (r.roi, r.metric) == ("sphere_37mm", "rc_max"))
     assert r.verdict == "n/a" and "cold" in r.note
 
@@ -195,7 +196,7 @@ def test_recalled_limits_say_so_in_the_note():
 
 @pytest.mark.parametrize("ratio, warns", [(10.0, False), (10.9, False), (11.5, True), (4.0, True)])
 def test_ratio_mismatch_over_10_percent_warns(ratio, warns):
-    out, warnings = apply_bands([_row("sphere_37mm", "rc_max", 1.0)], [load_band_set("eanm-fdg-2015")], fill=_fill(ratio), template=TPL)
+    out, warnings = apply_bands([_row("sphere_37mm", "rc_max", 1.0)], [load_band_set("eanm-fdg-2015")], fill=_fill(ratio))
     assert bool(warnings) is warns
     r = next(r for r in out if (r.roi, r.metric) == ("sphere_37mm", "rc_max"))
     if warns:
@@ -210,7 +211,7 @@ def test_band_for_another_template_is_refused(tmp_path):
     bs = load_band_set(str(p))
     bs.template = "small-animal"
     with pytest.raises(BandError, match="is for template small-animal.*iec-body"):
-        apply_bands([], [bs], template=TPL)
+        check_band_set(bs, TPL.name, KNOWN)
 
 
 # ----------------------------------------------------------------------------- CLI

@@ -10,7 +10,7 @@ from phantometry.fill import FillRecord
 from phantometry.locate import locate_generic
 from phantometry.measure import measure, measure_volume
 from phantometry.synth import FWHM_PER_SIGMA, SynthSpec, synthesize, write_synthetic
-from phantometry.templates import check_template, load_template
+from phantometry.phantoms import check_template, load_template
 
 TPL = load_template("site-rod-cylinder")
 

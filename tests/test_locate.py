@@ -36,7 +36,7 @@ def test_localisation_accuracy_over_random_poses(voxel):
             flip=bool(trial % 2),
         )
         res = synthesize(spec)
-        pl = locate(res.volume, TPL)
+        pl = locate(res.volume, TPL, axis_insert="lung_insert")
         errors += _sphere_errors(res, pl)
         # the fitted rotation agrees with the truth
         assert np.allclose(pl.rotation, res.rotation, atol=0.03)
@@ -48,7 +48,7 @@ def test_cold_spheres_are_located():
     # 2012-edition style fill: 28 and 37 mm spheres with water (cold)
     cold = ["sphere_28mm", "sphere_37mm"]
     res = synthesize(SynthSpec(voxel_mm=(3, 3, 3), noise_cv=0.1, cold=cold, rotation_deg=(2, -3, 200), shift_mm=(5, 8, -10)))
-    pl = locate(res.volume, TPL, hot={n: n not in cold for n in (s.name for s in TPL.spheres)})
+    pl = locate(res.volume, TPL, axis_insert="lung_insert", hot={n: n not in cold for n in (s.name for s in TPL.spheres)})
     assert max(_sphere_errors(res, pl)) < 1.0
 
 
@@ -66,7 +66,7 @@ def test_kabsch_recovers_known_transform():
 def test_overrides_for_three_spheres_skip_the_search():
     res = synthesize(SynthSpec(voxel_mm=(4, 4, 4), noise_cv=0.05, rotation_deg=(0, 0, 33)))
     ov = {n: np.array(res.truth["inserts"][n]["centre_mm"]) for n in ("sphere_37mm", "sphere_22mm", "sphere_13mm")}
-    pl = locate(res.volume, TPL, overrides=ov)
+    pl = locate(res.volume, TPL, axis_insert="lung_insert", overrides=ov)
     assert pl.ring_score is None  # no search was made
     assert pl.fits["sphere_37mm"].source == "override"
     assert max(_sphere_errors(res, pl)) < 1.0
@@ -80,14 +80,14 @@ def test_wrong_phantom_size_is_refused():
     data = (((x - 30) ** 2 + (y - 30) ** 2) < 15**2).astype(np.float32) * 5000
     vol = Volume(data, np.diag([2.0, 2.0, 2.0, 1.0]))
     with pytest.raises(PhantomNotFound, match="template iec-body describes"):
-        locate(vol, TPL)
+        locate(vol, TPL, axis_insert="lung_insert")
 
 
 def test_empty_image_is_refused():
     from phantometry.volume import Volume
 
     with pytest.raises(PhantomNotFound, match="empty"):
-        locate(Volume(np.zeros((10, 10, 10), np.float32), np.eye(4)), TPL)
+        locate(Volume(np.zeros((10, 10, 10), np.float32), np.eye(4)), TPL, axis_insert="lung_insert")
 
 
 def test_ten_to_one_fill_with_strong_noise():
@@ -95,7 +95,7 @@ def test_ten_to_one_fill_with_strong_noise():
     # must not be mistaken for the body
     for seed in range(2):
         res = synthesize(SynthSpec(voxel_mm=(4, 4, 4), sphere_ratio=10, background_kbq_ml=2.0, noise_cv=0.2, seed=seed, rotation_deg=(0, 0, 70 * seed)))
-        pl = locate(res.volume, TPL, activity_ratio={s.name: 10.0 for s in TPL.spheres})
+        pl = locate(res.volume, TPL, axis_insert="lung_insert", activity_ratio={s.name: 10.0 for s in TPL.spheres})
         assert max(_sphere_errors(res, pl)) < 1.0
         assert pl.background_estimate_bq_ml == pytest.approx(2000, rel=0.05)
 

@@ -26,7 +26,7 @@ from phantometry.metrics.resolution import (
 )
 from phantometry.synth import SynthSpec, correlated_unit_noise, synthesize
 from phantometry.templates import load_template
-from phantometry.uncertainty import estimate_noise
+from phantometry.noise import estimate_noise
 
 TPL = load_template("iec-body")
 

@@ -14,7 +14,7 @@ from phantometry.errors import InputError
 from phantometry.io.nifti import write_nifti
 from phantometry.measure import measure
 from phantometry.rois import cylinder_weights, sphere_weights
-from phantometry.seg import MASK_WEIGHT_THRESHOLD, roi_masks
+from phantometry.phantoms.body import MASK_WEIGHT_THRESHOLD
 
 # DICOM PS3.4 B.5: Segmentation Storage SOP Class UID (recalled; highdicom's SOP_CLASS_UIDS agrees)
 SEGMENTATION_STORAGE = "1.2.840.10008.5.1.4.1.1.66.4"
@@ -95,7 +95,7 @@ def test_voxel_counts_match_roi_masks(seg_run):
     for n, mask in expected.items():
         assert int(rebuilt[n].sum()) == int(mask.sum()) > 0
         assert np.array_equal(rebuilt[n], mask)
-    kinds = roi_masks(a)
+    kinds = a.roi_masks()
     assert [k.voxel_count for k in kinds] == [int(rebuilt[n].sum()) for n in (1, 2, 3)]
     assert MASK_WEIGHT_THRESHOLD == 0.5
     # background discs: one slice thick, 12 centres x 5 offsets, each about pi r^2 / pixel area voxels
@@ -147,7 +147,7 @@ def test_cold_spheres_get_their_own_segment(tmp_path):
     seg = hd.seg.segread(tmp_path / "r" / "rois_seg.dcm")
     labels = [str(s.SegmentLabel) for s in seg.SegmentSequence]
     assert labels == ["hot spheres", "cold spheres", "background ROIs", "low-density insert"]
-    kinds = {k.kind: k for k in roi_masks(a)}
+    kinds = {k.kind: k for k in a.roi_masks()}
     assert kinds["cold_spheres"].roi_names == ["sphere_28mm", "sphere_37mm"]
     # two cold spheres of 28 and 37 mm: about (pi/6)(28^3 + 37^3) mm^3 of 27 mm^3 voxels
     expected = math.pi / 6 * (28**3 + 37**3) / 27.0

@@ -13,7 +13,7 @@ from phantometry.locate import locate_small_animal
 from phantometry.measure import measure_volume
 from phantometry.metrics.nu4 import ratio_with_std, uniformity
 from phantometry.synth import FWHM_PER_SIGMA, SynthSpec, synthesize
-from phantometry.templates import check_template, load_template
+from phantometry.phantoms import check_template, load_template
 
 TPL = load_template("small-animal")
 
@@ -43,7 +43,7 @@ def test_localisation_over_random_poses():
     for trial in range(4):
         res = synthesize(_spec(noise_cv=0.15, seed=trial, shift_mm=tuple(rng.uniform(-5, 5, 3)),
                                rotation_deg=(rng.uniform(-5, 5), rng.uniform(-5, 5), rng.uniform(0, 360)), flip=bool(trial % 2)))
-        pl = locate_small_animal(res.volume, TPL)
+        pl = locate_small_animal(res.volume, TPL, solid_section="solid_section", rod_profile_z_mm=(-15.0, -5.0))
         errs += [float(np.linalg.norm(pl.insert_centre(n) - np.array(d["centre_mm"]))) for n, d in res.truth["inserts"].items()]
     assert np.mean(errs) < 0.3 and np.max(errs) < 0.6
 

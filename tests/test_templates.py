@@ -7,7 +7,8 @@ import pytest
 import yaml
 
 from phantometry.errors import TemplateError
-from phantometry.templates import builtin_template_dir, check_template, list_templates, load_template, template_from_dict
+from phantometry.phantoms import check_template, load_template
+from phantometry.templates import builtin_template_dir, list_templates, template_from_dict
 
 
 @pytest.fixture()

@@ -6,7 +6,11 @@ import math
 import numpy as np
 import pytest
 
-from phantometry import uncertainty as U
+from phantometry import noise as U
+from phantometry.phantoms import body as BODY
+from phantometry.metrics import nu2 as NU2
+from phantometry.metrics import recovery as RC
+from phantometry.rois import centres_in_sphere
 from phantometry.errors import PhantomNotFound
 from phantometry.fill import FillRecord
 from phantometry.locate import Placement
@@ -172,16 +176,16 @@ def test_simulated_searches_equal_the_roi_engine_on_the_same_draws(monkeypatch):
     vol = Volume(np.zeros(shape, np.float32), aff)
     truth = model_fn(vol.index_to_world(np.stack([kk, jj, ii], axis=-1)))
     fields = []
-    real = U._noise_fields
+    real = U.noise_fields
 
     def recording(*args):
         out = real(*args)
         fields.append(out.copy())
         return out
 
-    monkeypatch.setattr(U, "_noise_fields", recording)
-    sds = U.bootstrap_search_sd(nm, vol, centre, diameter, bg, model_fn, n_draws=40, seed=3)
-    box, _ = U._centres_within(vol, centre, diameter / 2 + 12.41 / 2 + 2 * 2.0)
+    monkeypatch.setattr(RC, "noise_fields", recording)
+    sds = RC.bootstrap_search_sd(nm, vol, centre, diameter, bg, model_fn, n_draws=40, seed=3)
+    box, _ = centres_in_sphere(vol, centre, diameter / 2 + 12.41 / 2 + 2 * 2.0)
     draws = np.concatenate(fields, axis=-1)
     assert draws.shape[-1] == 40
     stats = collections.defaultdict(list)
@@ -220,11 +224,11 @@ def test_propagation_formulas_follow_the_gum_law():
     ch, uh, cb, ub, r = 15000.0, 400.0, 5300.0, 25.0, 4.0
     qh = lambda a, b: (a / b - 1) / (r - 1) * 100  # NEMA NU 2 Q_H (recalled)
     qc = lambda a, b: (1 - a / b) * 100  # NEMA NU 2 Q_C (recalled)
-    assert U.u_percent_contrast_hot(ch, uh, cb, ub, r) == pytest.approx(_numeric_u(qh, [ch, cb], [uh, ub]), rel=1e-5)
-    assert U.u_percent_contrast_cold(900.0, 60.0, cb, ub) == pytest.approx(_numeric_u(qc, [900.0, cb], [60.0, ub]), rel=1e-5)
+    assert NU2.u_percent_contrast_hot(ch, uh, cb, ub, r) == pytest.approx(_numeric_u(qh, [ch, cb], [uh, ub]), rel=1e-5)
+    assert NU2.u_percent_contrast_cold(900.0, 60.0, cb, ub) == pytest.approx(_numeric_u(qc, [900.0, cb], [60.0, ub]), rel=1e-5)
     assert U.u_ratio(40.0, 3.0, cb, ub) == pytest.approx(_numeric_u(lambda a, b: a / b, [40.0, cb], [3.0, ub]), rel=1e-5)
     n_pct = 5.0
-    assert U.u_background_variability(n_pct, 60, cb, ub) == pytest.approx(n_pct * math.sqrt(1 / 118 + (ub / cb) ** 2))
+    assert NU2.u_background_variability(n_pct, 60, cb, ub) == pytest.approx(n_pct * math.sqrt(1 / 118 + (ub / cb) ** 2))
 
 
 def test_switches_and_noise_free_image():
@@ -265,7 +269,7 @@ def test_reported_uncertainties_match_monte_carlo(monkeypatch):
     # noise-free 4 mm image; the reported standard uncertainty of each metric (mean over the
     # realisations) must match the SD of the metric across them within 30 % (issue 4). With
     # 50 samples the empirical SD itself scatters by about 10 %.
-    monkeypatch.setattr(U, "BOOTSTRAP_DRAWS", 100)
+    monkeypatch.setattr(BODY, "BOOTSTRAP_DRAWS", 100)
     base = synthesize(SynthSpec(voxel_mm=(4.0,) * 3, psf_fwhm_mm=8.0, noise_cv=0.0, sphere_ratio=4.0))
     fill = FillRecord.from_dict(base.fill_record)
     centres = {n: np.array(d["centre_mm"]) for n, d in base.truth["inserts"].items() if n.startswith("sphere")}

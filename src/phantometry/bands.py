@@ -36,7 +36,7 @@ import math
 import os
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Literal, Sequence
+from typing import TYPE_CHECKING, Any, Literal, Mapping, Sequence
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
@@ -46,7 +46,6 @@ from .results import Measurement
 
 if TYPE_CHECKING:  # pragma: no cover
     from .fill import FillRecord
-    from .templates import Template
 
 __all__ = [
     "BANDS_PATH_ENV",
@@ -59,7 +58,7 @@ __all__ = [
     "list_band_sets",
     "load_band_set",
     "load_band_set_file",
-    "known_metrics",
+    "unit_of_metric",
     "any_failed",
     "RATIO_WARNING_FRACTION",
 ]
@@ -68,35 +67,6 @@ __all__ = [
 BANDS_PATH_ENV = "PHANTOMETRY_BANDS"
 #: Relative difference between a band set's activity ratio and the fill record's that warns.
 RATIO_WARNING_FRACTION = 0.10
-
-#: Metrics a body image-quality analysis produces, by kind of ROI.
-SPHERE_METRICS = (
-    "percent_contrast",
-    "background_variability_pct",
-    "rc_max",
-    "rc_mean",
-    "rc_peak",
-    "centre_x_mm",
-    "centre_y_mm",
-    "centre_z_mm",
-)
-LUNG_METRICS = ("lung_residual_pct",)
-BACKGROUND_METRICS = ("mean_bq_ml", "activity_recovery")
-PHANTOM_METRICS = ("effective_fwhm_mm",)
-_UNITS = {
-    "percent_contrast": "%",
-    "background_variability_pct": "%",
-    "rc_max": "1",
-    "rc_mean": "1",
-    "rc_peak": "1",
-    "centre_x_mm": "mm",
-    "centre_y_mm": "mm",
-    "centre_z_mm": "mm",
-    "lung_residual_pct": "%",
-    "mean_bq_ml": "Bq/mL",
-    "activity_recovery": "1",
-    "effective_fwhm_mm": "mm",
-}
 
 
 # =========================================================================== public types
@@ -310,27 +280,11 @@ def band_set_from_dict(data: Any, source: str = "<bands>") -> BandSet:
 
 
 # =========================================================================== template checks
-def known_metrics(template: "Template") -> dict[str, tuple[str, ...]] | None:
-    """ROI name -> metrics the template's analysis produces; None when not known for its kind.
-
-    For ``body_image_quality``: every sphere the NU 2 / recovery metrics, the low-density
-    insert ``lung_residual_pct``, ``background`` the mean and activity recovery, ``phantom``
-    the effective FWHM.
-    """
-    kind = getattr(template.analysis, "kind", None)
-    if kind != "body_image_quality":
-        return None
-    out: dict[str, tuple[str, ...]] = {s.name: SPHERE_METRICS for s in template.spheres}
-    lung = getattr(template.analysis, "lung_insert", None)
-    if lung:
-        out[lung] = LUNG_METRICS
-    out["background"] = BACKGROUND_METRICS
-    out["phantom"] = PHANTOM_METRICS
-    return out
 
 
-def check_band_set(band_set: BandSet, template: "Template") -> None:
-    """Check that every entry names an ROI and metric ``template`` has.
+def check_band_set(band_set: BandSet, template_name: str, known: Mapping[str, Sequence[str]]) -> None:
+    """Check that a band set is for ``template_name`` and every entry names an ROI and metric
+    the template's analysis produces (``known``: ROI -> metrics, from its phantom kind).
 
     Raises
     ------
@@ -338,22 +292,32 @@ def check_band_set(band_set: BandSet, template: "Template") -> None:
         Naming the file, each entry at fault and the choices.
     """
     where = band_set.path or band_set.name
-    if band_set.template != template.name:
+    if band_set.template != template_name:
         raise BandError(
             f"{where}: band set {band_set.name} is for template {band_set.template}, but the scan is measured with "
-            f"template {template.name}; choose a band set for {template.name} (phantometry bands list)"
+            f"template {template_name}; choose a band set for {template_name} (phantometry bands list)"
         )
-    vocab = known_metrics(template)
-    rois = set(vocab) if vocab is not None else set(template.roi_names) | {"phantom"}
     problems = []
     for i, e in enumerate(band_set.entries):
         label = f"entries[{i}] ({e.roi} {e.metric})"
-        if e.roi not in rois:
-            problems.append(f"{label}: template {template.name} has no ROI {e.roi!r}; ROIs: {', '.join(sorted(rois))}")
-        elif vocab is not None and e.metric not in vocab[e.roi]:
-            problems.append(f"{label}: ROI {e.roi} has no metric {e.metric!r}; metrics: {', '.join(vocab[e.roi])}")
+        if e.roi not in known:
+            problems.append(f"{label}: template {template_name} has no ROI {e.roi!r}; ROIs: {', '.join(sorted(known))}")
+        elif e.metric not in known[e.roi]:
+            problems.append(f"{label}: ROI {e.roi} has no metric {e.metric!r}; metrics: {', '.join(known[e.roi])}")
     if problems:
         raise BandError(f"{where}: " + "; ".join(problems))
+
+
+def unit_of_metric(metric: str) -> str:
+    """The unit a metric's name implies (phantometry's naming rule): ``%`` for ``*_pct`` and
+    ``percent_contrast``, ``mm`` for ``*_mm``, ``Bq/mL`` for ``*_bq_ml``, else ``1`` (a ratio)."""
+    if metric.endswith("_pct") or metric == "percent_contrast":
+        return "%"
+    if metric.endswith("_mm"):
+        return "mm"
+    if metric.endswith("_bq_ml"):
+        return "Bq/mL"
+    return "1"
 
 
 # =========================================================================== finding and loading
@@ -386,35 +350,25 @@ def list_band_sets(extra_dirs: Sequence[str | os.PathLike] | None = None) -> dic
     return found
 
 
-def load_band_set_file(path: str | os.PathLike, *, templates_dirs: Sequence[str | os.PathLike] | None = None, check: bool = True) -> BandSet:
-    """Load one band-set file and (``check=True``) validate it against its template.
+def load_band_set_file(path: str | os.PathLike) -> BandSet:
+    """Load one band-set file (schema and name; its ROIs and metrics are checked against the
+    template when it is applied, :func:`check_band_set`).
 
     Raises
     ------
     BandError
-        Unreadable file, invalid YAML or schema, name differing from the file name, unknown
-        template, or ROIs/metrics the template lacks.
+        Unreadable file, invalid YAML or schema, or a name differing from the file name.
     """
     p = Path(path)
     bs = band_set_from_dict(read_yaml_file(p, BandError, "band set"), source=str(p))
     if bs.name != p.stem:
         raise BandError(f"{p}: name {bs.name!r} differs from the file name {p.stem!r}; make them equal so the set is found by its name")
-    if check:
-        from .templates import load_template
-
-        try:
-            tpl = load_template(bs.template, list(templates_dirs or []))
-        except PhantometryError as exc:
-            raise BandError(f"{p}: template {bs.template!r} cannot be loaded ({exc})") from None
-        check_band_set(bs, tpl)
     return bs
 
 
 def load_band_set(
     name_or_path: str | os.PathLike | BandSet,
     extra_dirs: Sequence[str | os.PathLike] | None = None,
-    *,
-    templates_dirs: Sequence[str | os.PathLike] | None = None,
 ) -> BandSet:
     """A band set by name (searched as :func:`band_search_path` says) or by file path.
 
@@ -429,7 +383,7 @@ def load_band_set(
     if p.suffix in (".yaml", ".yml") or p.exists():
         if not p.exists():
             raise BandError(f"{p}: band-set file not found")
-        return load_band_set_file(p, templates_dirs=templates_dirs)
+        return load_band_set_file(p)
     available = list_band_sets(extra_dirs)
     name = str(name_or_path)
     if name not in available:
@@ -437,7 +391,7 @@ def load_band_set(
             f"unknown band set {name!r}; available: {', '.join(sorted(available)) or 'none'} "
             f"(give a file path, or add a folder with ${BANDS_PATH_ENV})"
         )
-    return load_band_set_file(available[name], templates_dirs=templates_dirs)
+    return load_band_set_file(available[name])
 
 
 # =========================================================================== verdicts
@@ -460,7 +414,6 @@ def apply_bands(
     band_sets: Sequence[BandSet],
     *,
     fill: "FillRecord | None" = None,
-    template: "Template | None" = None,
 ) -> tuple[list[Measurement], list[str]]:
     """Judge measurement rows against band sets.
 
@@ -474,7 +427,6 @@ def apply_bands(
         the note gives each set's limits and verdict.
     fill : the fill record; when given, a set whose ``activity_ratio`` differs by more than
         10 % from an insert's ratio warns (and says so in the affected rows' notes).
-    template : when given, each set is checked against it (:func:`check_band_set`).
 
     Returns
     -------
@@ -491,8 +443,6 @@ def apply_bands(
         if bs.name in seen_names:
             continue
         seen_names.add(bs.name)
-        if template is not None:
-            check_band_set(bs, template)
         sets.append(bs)
     if not sets:
         return list(rows), warnings
@@ -545,7 +495,7 @@ def apply_bands(
             roi=roi,
             metric=metric,
             value=math.nan,
-            unit=_UNITS.get(metric, ""),
+            unit=unit_of_metric(metric),
             note=why,
         )
         out.append(_banded(row, matches, ratio_notes))

@@ -57,7 +57,7 @@ from typing import Any, Callable, Sequence
 
 from . import __version__
 from .errors import InputError, NoPETSeries, PhantometryError
-from .results import CAUTION, CSV_COLUMNS, Measurement, _fmt, atomic_output_dir, measurements_csv, to_json
+from .results import CAUTION, CSV_COLUMNS, Measurement, _fmt, atomic_output_dir, to_json
 from .threads import current_threads, set_threads
 from .volume import Reconstruction
 
@@ -203,6 +203,10 @@ class ComparisonResult:
     hot_spheres: dict[str, bool] = field(default_factory=dict)
     workers: int = 1
     seconds: float = 0.0
+    #: the template the series were measured with
+    template: Any = None
+    #: (file name, caption) of the charts written
+    charts: list[tuple[str, str]] = field(default_factory=list)
 
     @property
     def succeeded(self) -> list[SeriesOutcome]:
@@ -426,7 +430,8 @@ def assign_labels(outcomes: Sequence[SeriesOutcome], mapping: dict[str, str] | N
 
 # ============================================================================== the worker
 #: Modules a worker needs; imported once by the fork server (or by each spawned worker at start).
-_WORKER_MODULES = ["phantometry.compare", "phantometry.measure", "phantometry.uncertainty", "phantometry.metrics.resolution", "phantometry.io.dicom",
+_WORKER_MODULES = ["phantometry.compare", "phantometry.measure", "phantometry.noise", "phantometry.metrics.resolution", "phantometry.io.dicom",
+                   "phantometry.phantoms.body", "phantometry.phantoms.small_animal", "phantometry.phantoms.inserts",
                    "phantometry.io.nifti", "phantometry.figures", "phantometry._agg"]
 
 
@@ -442,7 +447,7 @@ def _mtime(path: str) -> int:
 
 def _cached_template(template: str, templates_dirs: tuple[str, ...]):
     """The template, parsed once per process (and again when its file changes)."""
-    from .templates import load_template
+    from .phantoms import load_template
 
     key = ("template", template, templates_dirs, _mtime(template))
     if key not in _CACHE:
@@ -570,7 +575,7 @@ def _measure_into(
     bands: tuple[str, ...] = (),
     measure_options: dict[str, Any] | None = None,
 ) -> None:
-    from .measure import analysis_json, measure_volume
+    from .measure import judge, measure_volume, write_results
 
     tpl = _cached_template(template, tuple(templates_dirs))
     fill = _cached_fill(fill_path)
@@ -587,21 +592,14 @@ def _measure_into(
     outcome.reconstruction = volume.reconstruction
     analysis = measure_volume(volume, tpl, fill, where=job.where, **(measure_options or {}))
     if bands:
-        rows, notes = _apply_bands(analysis.rows, _cached_bands(bands), fill, tpl)
-        analysis.rows[:] = rows
-        analysis.warnings.extend(n for n in notes if n not in analysis.warnings)
+        judge(analysis, _cached_bands(bands))
     outcome.rows = analysis.rows
     outcome.warnings.extend(analysis.warnings)
     outcome.localisation = analysis.placement.as_dict()
     if out_dir is not None:
         folder = Path(out_dir)
         folder.mkdir(parents=True, exist_ok=True)
-        (folder / "measurements.csv").write_text(measurements_csv(analysis.rows), encoding="utf-8")
-        (folder / "measurements.json").write_text(to_json(analysis_json(analysis)), encoding="utf-8")
-        if overlay:
-            from .figures import overlay_picture
-
-            overlay_picture(analysis, folder / "overlay.png")
+        write_results(analysis, folder, overlay=overlay, pictures=False)
 
 
 # ============================================================================== ranking
@@ -733,26 +731,16 @@ def _load_bands(names: Sequence[str], template: Any = None) -> list[Any]:
     """Band sets by name or file; checked against the template when one is given."""
     if not names:
         return []
-    try:
-        from .bands import load_band_set
-    except ImportError:  # pragma: no cover - the bands module ships with the package
-        raise InputError("--bands: acceptance bands are not available in this installation (phantometry.bands missing); reinstall phantometry") from None
+    from .bands import check_band_set, load_band_set
+
     sets = [load_band_set(n) for n in names]
     if template is not None:
-        from .bands import check_band_set
+        from .phantoms import known_metrics
 
+        known = known_metrics(template)
         for bs in sets:
-            check_band_set(bs, template)
+            check_band_set(bs, template.name, known)
     return sets
-
-
-def _apply_bands(rows: list[Measurement], band_sets: list[Any], fill: Any, template: Any) -> tuple[list[Measurement], list[str]]:
-    if not band_sets:
-        return rows, []
-    from .bands import apply_bands
-
-    new_rows, notes = apply_bands(rows, band_sets, fill=fill, template=template)
-    return list(new_rows), list(notes)
 
 
 # ============================================================================== main entry
@@ -843,7 +831,7 @@ def compare(
         Problems with the inputs common to all series (nothing is written).
     """
     from .fill import load_fill_record
-    from .templates import load_template
+    from .phantoms import load_template
 
     t_start = time.perf_counter()
     dirs = [str(d) for d in (templates_dirs or [])]
@@ -1041,6 +1029,7 @@ def _finish(
         sphere_diameters_mm={s.name: float(s.diameter_mm) for s in tpl.spheres},
         hot_spheres={s.name: not fill_record.is_cold(s.name) for s in tpl.spheres},
         workers=n_workers,
+        template=tpl,
     )
 
 
@@ -1083,28 +1072,29 @@ def summary_json(result: ComparisonResult) -> dict[str, Any]:
 
 
 def _write_outputs(result: ComparisonResult, tmp: Path, report: bool, executor: ProcessPoolExecutor | None = None) -> None:
-    from .figures import contrast_noise_chart, recovery_curves_chart
+    from .fill import FillRecord
+    from .phantoms import kind_of
+    from .phantoms.base import ComparedSetting
 
     (tmp / "comparison.csv").write_text(comparison_csv(result.outcomes), encoding="utf-8")
     (tmp / "ranking.csv").write_text(ranking_csv(result), encoding="utf-8")
     (tmp / "summary.json").write_text(to_json(summary_json(result)), encoding="utf-8")
-    settings = [(o.job.number, o.label, o.rows) for o in result.succeeded]
+    settings = [ComparedSetting(o.job.number, o.label, o.rows) for o in result.succeeded]
     if settings:
-        charts = [
-            (contrast_noise_chart, (settings, result.sphere_diameters_mm, str(tmp / "contrast_noise.png")), {}),
-            (recovery_curves_chart, (settings, result.sphere_diameters_mm, str(tmp / "recovery_curves.png")), {"hot": result.hot_spheres}),
-        ]
+        tpl = result.template
+        charts = kind_of(tpl).comparison_charts(tpl, FillRecord.from_dict(result.fill), settings)
+        result.charts = [(c.file_name, c.caption) for c in charts]
         futures = []
-        if executor is not None:  # the workers are warm: draw the two charts side by side
+        if executor is not None:  # the workers are warm: draw the charts side by side
             try:
-                futures = [executor.submit(fn, *a, **kw) for fn, a, kw in charts]
+                futures = [executor.submit(c.function, *c.args, tmp / c.file_name, **c.kwargs) for c in charts]
                 for f in futures:
                     f.result()
             except Exception:
                 futures = []
         if not futures:
-            for fn, a, kw in charts:
-                fn(*a, **kw)
+            for c in charts:
+                c.draw(tmp)
     if report:
         from .report import write_compare_report
 
@@ -1157,7 +1147,7 @@ def write_synthetic_family(
 
     from .io.dicom import parse_iterations_subsets
     from .io.dicom_write import write_dicom_series
-    from .synth import SynthSpec, _auto_matrix, correlated_unit_noise, gaussian_blur, phantom_pose, synthesize
+    from .synth import SynthSpec, auto_matrix, correlated_unit_noise, gaussian_blur, phantom_pose, synthesize
     from .templates import load_template
     from .volume import Reconstruction as _Recon
 
@@ -1166,7 +1156,7 @@ def write_synthetic_family(
     if matrix is None:  # leave room for the widest PSF of the family
         widest = SynthSpec(**{**spec.__dict__, "psf_fwhm_mm": max(float(s["fwhm_mm"]) for s in settings)})
         tpl = load_template(spec.phantom)
-        spec.matrix = _auto_matrix(widest, tpl, *phantom_pose(widest, tpl))
+        spec.matrix = auto_matrix(widest, tpl, *phantom_pose(widest, tpl))
     base = synthesize(spec)
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)

@@ -9,12 +9,15 @@ from __future__ import annotations
 
 import os
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Sequence
 
 import numpy as np
 
 if TYPE_CHECKING:  # pragma: no cover
-    from .measure import BodyAnalysis
+    from .bands import BandSet
+    from .metrics.resolution import ResolutionFit
+    from .phantoms.base import Overlay
+    from .results import Measurement
     from .volume import Volume
 
 
@@ -72,63 +75,65 @@ def _circle(ax, uv, diameter, **kw) -> None:
     ax.add_patch(Circle((float(uv[0]), float(uv[1])), diameter / 2, fill=False, **kw))
 
 
-def overlay_picture(analysis: "BodyAnalysis", path: str | os.PathLike) -> Path:
-    """Sphere plane and a longitudinal view with every ROI drawn and labelled (PNG)."""
-    from .rois import sample_plane
+#: Outline colour and line style of each shape role (colour tells hot from cold; the line style
+#: tells the ROI kinds apart in greyscale print too).
+_ROLE_STYLE = {
+    "hot": dict(color="#c03000", lw=1.4, ls="-"),
+    "cold": dict(color="#0050c0", lw=1.4, ls="-"),
+    "background": dict(color="#207020", lw=1.0, ls="--"),
+    "insert": dict(color="#7030a0", lw=1.2, ls=":"),
+    "voi": dict(color="#207020", lw=1.2, ls="-"),
+    "search": dict(color="#c03000", lw=1.0, ls="--"),
+    "peak": dict(color="#0050c0", lw=1.5, ls="-"),
+    "guide": dict(color="#808080", lw=0.8, ls="--"),
+}
+_LABEL_BOX = dict(boxstyle="round,pad=0.15", fc="white", ec="none", alpha=0.8)
 
+
+def _draw_shape(ax, shape, view_width_mm: float) -> None:
+    """One :class:`~phantometry.phantoms.base.Shape` on a view (plane mm)."""
+    from matplotlib.patches import Circle, Polygon, Rectangle
+
+    st = _ROLE_STYLE[shape.role]
+    if shape.kind == "circle":
+        u, v = (float(x) for x in shape.centre_uv)
+        r = float(shape.size_mm) / 2
+        ax.add_patch(Circle((u, v), r, fill=False, color=st["color"], lw=st["lw"], ls=st["ls"]))
+        if shape.label is not None:
+            if shape.role == "background":  # a number in the middle of the circle
+                ax.text(u, v, shape.label, ha="center", va="center", fontsize=7, color=st["color"])
+            elif shape.label_below:
+                ax.annotate(shape.label, (u, v - r - 2), ha="center", va="top", fontsize=8)
+            else:
+                ax.annotate(shape.label, (u, v + r + 0.06 * r + 0.6), ha="center", va="bottom", fontsize=8, color="black", bbox=_LABEL_BOX)
+    elif shape.kind == "rect":
+        u, v = (float(x) for x in shape.centre_uv)
+        w, h = shape.size_mm
+        ax.add_patch(Rectangle((u - w / 2, v - h / 2), w, h, fill=False, color=st["color"], lw=st["lw"], ls=st["ls"]))
+    elif shape.kind == "marker":
+        u, v = (float(x) for x in shape.centre_uv)
+        ax.plot([u], [v], marker="+", color=st["color"], ms=9, mew=st["lw"])
+    elif shape.kind == "hline":
+        v = float(shape.centre_uv[1])
+        ax.plot([0, view_width_mm], [v, v], color=st["color"], lw=0.8, ls=st["ls"])
+    elif shape.kind == "contour":
+        ax.add_patch(Polygon(np.asarray(shape.points_uv, float), closed=True, fill=False, color=st["color"], lw=st["lw"], ls=st["ls"]))
+
+
+def overlay_picture(overlay: "Overlay", path: str | os.PathLike) -> Path:
+    """Draw an analysis's overlay (:meth:`phantometry.phantoms.base.Analysis.overlay`): its
+    views side by side, every ROI outlined (PNG)."""
     plt = _plt()
-    pl = analysis.placement
-    tpl = analysis.template
-    vol = analysis.volume
-    plane = analysis.planes[0.0] if 0.0 in analysis.planes else next(iter(analysis.planes.values()))
-    vmax = float(np.nanpercentile(plane.values, 99.5)) or 1.0
-    fig, axes = plt.subplots(1, 2, figsize=(12, 6.2), gridspec_kw={"width_ratios": [1.25, 1]})
-    ax = axes[0]
-    _show_plane(ax, plane, vmax, "Sphere plane: spheres (solid), 37 mm background ROIs (dashed), insert ROI (dotted)")
-    for s in tpl.spheres:
-        uv = plane.world_to_uv(pl.insert_centre(s.name))
-        hot = not analysis.fill.is_cold(s.name)
-        _circle(ax, uv, s.diameter_mm, color="#c03000" if hot else "#0050c0", lw=1.4)
-        ax.annotate(s.name.replace("sphere_", ""), (uv[0], uv[1] + s.diameter_mm / 2 + 2), ha="center", va="bottom", fontsize=8, color="black",
-                    bbox=dict(boxstyle="round,pad=0.15", fc="white", ec="none", alpha=0.8))
-    bg = tpl.background
-    if bg is not None:
-        d = max(bg.diameters_mm)
-        for i, (x, y) in enumerate(bg.centres_xy_mm):
-            uv = plane.world_to_uv(pl.to_world([x, y, 0.0]))
-            _circle(ax, uv, d, color="#207020", lw=1.0, ls="--")
-            ax.text(uv[0], uv[1], str(i + 1), ha="center", va="center", fontsize=7, color="#207020")
-    a = tpl.analysis
-    if getattr(a, "lung_insert", None):
-        lung = tpl.insert(a.lung_insert)
-        uv = plane.world_to_uv(pl.to_world([lung.centre_mm[0], lung.centre_mm[1], 0.0]))
-        _circle(ax, uv, a.lung_roi_diameter_mm, color="#7030a0", lw=1.2, ls=":")
-        ax.annotate("insert", (uv[0], uv[1] - a.lung_roi_diameter_mm / 2 - 2), ha="center", va="top", fontsize=8)
-    # longitudinal view through the phantom axis and the template x direction
-    u = pl.rotation[:, 0]
-    axis = pl.axis_world
-    centre = pl.to_world([0.0, 0.0, 0.0])
-    half = max(tpl.body_length_mm, 2 * tpl.body.half_extent_xy_mm) / 2 + 10
-    lon = sample_plane(vol, centre, u, axis, half)
-    ax2 = axes[1]
-    _show_plane(ax2, lon, vmax, "Longitudinal view along the phantom axis: background slices (dashed)")
-    for s in tpl.spheres:
-        c = pl.insert_centre(s.name)
-        dist = abs(float(lon.distance_to_plane(c)))
-        r = s.diameter_mm / 2
-        if dist < r:
-            uv = lon.world_to_uv(c)
-            _circle(ax2, uv, 2 * np.sqrt(r * r - dist * dist), color="#c03000", lw=1.2)
-    if bg is not None:
-        nu = lon.values.shape[1] * lon.pixel_mm
-        for off in bg.slice_offsets_mm:
-            uv = lon.world_to_uv(pl.to_world([0.0, 0.0, off]))
-            ax2.plot([0, nu], [uv[1], uv[1]], color="#207020", lw=0.8, ls="--")
-    tilt = pl.as_dict()["axis_tilt_deg"]
-    fig.suptitle(
-        f"{tpl.title} | series {vol.series_description or vol.series_uid or ''} | axis tilt {tilt:.1f} deg | ring match {pl.ring_score or 0:.2f}",
-        fontsize=10,
-    )
+    n = len(overlay.views)
+    ratios = overlay.width_ratios or [1.0] * n
+    fig, axes = plt.subplots(1, n, figsize=(5.4 * sum(ratios), 5.8), gridspec_kw={"width_ratios": ratios}, squeeze=False)
+    for ax, view in zip(axes[0], overlay.views):
+        vmax = view.vmax if view.vmax else (float(np.nanpercentile(view.plane.values, 99.5)) or 1.0)
+        _show_plane(ax, view.plane, vmax, view.title)
+        width = view.plane.values.shape[1] * view.plane.pixel_mm
+        for shape in view.shapes:
+            _draw_shape(ax, shape, width)
+    fig.suptitle(overlay.title, fontsize=10)
     return _finish(fig, path, dpi=110, margins=dict(left=0.01, right=0.99, bottom=0.05, top=0.9, wspace=0.04))
 
 
@@ -149,47 +154,6 @@ def diagnostic_picture(volume: "Volume", path: str | os.PathLike) -> Path:
     fig.savefig(out, dpi=90)
     plt.close(fig)
     return out
-
-
-def small_animal_overlay(analysis, path: str | os.PathLike) -> Path:
-    """Rod-section slice average with search circles and peaks, and a longitudinal view with
-    the uniform-region and spill-over VOIs (PNG)."""
-    from .rois import sample_plane
-
-    plt = _plt()
-    pl = analysis.placement
-    tpl = analysis.template
-    a = tpl.analysis
-    img = analysis.rod_image
-    fig, axes = plt.subplots(1, 2, figsize=(11, 5.4))
-    ax = axes[0]
-    vmax = float(np.nanpercentile(img.values, 99.8)) or 1.0
-    _show_plane(ax, img, vmax, f"Rod section, mean of slices {a.rod_profile_z_mm[0]:g} to {a.rod_profile_z_mm[1]:g} mm: search circles, peaks (+)")
-    z_ref = a.rod_profile_z_mm[0]
-    for r in tpl.rods:
-        uv = img.world_to_uv(pl.to_world([r.centre_mm[0], r.centre_mm[1], z_ref]))
-        _circle(ax, uv, r.diameter_mm * a.rod_search_diameter_factor, color="#c03000", lw=1.0, ls="--")
-        pk = analysis.rod_peaks_uv[r.name]
-        ax.plot([pk[0]], [pk[1]], marker="+", color="#0050c0", ms=9, mew=1.5)
-        ax.annotate(r.name.replace("rod_", ""), (uv[0], uv[1] + r.diameter_mm * a.rod_search_diameter_factor / 2 + 0.6), ha="center", va="bottom", fontsize=8,
-                    bbox=dict(boxstyle="round,pad=0.15", fc="white", ec="none", alpha=0.8))
-    ax2 = axes[1]
-    u = pl.rotation[:, 0]
-    centre = pl.to_world(tpl.body_centre_mm)
-    lon = sample_plane(analysis.volume, centre, u, pl.axis_world, max(tpl.body_length_mm, 2 * tpl.body.half_extent_xy_mm) / 2 + 3)
-    _show_plane(ax2, lon, float(np.nanpercentile(lon.values, 99.8)) or 1.0, "Longitudinal view: uniform VOI (solid), spill-over VOIs (dotted)")
-    from matplotlib.patches import Rectangle
-
-    def box(centre_t, diameter, length, **kw):
-        c = lon.world_to_uv(pl.to_world(centre_t))
-        ax2.add_patch(Rectangle((c[0] - diameter / 2, c[1] - length / 2), diameter, length, fill=False, **kw))
-
-    uv_ = a.uniform_voi
-    box([0.0, 0.0, uv_.centre_z_mm], uv_.diameter_mm, uv_.length_mm, color="#207020", lw=1.2)
-    for c in tpl.chambers:
-        box(list(c.centre_mm), a.spillover_voi.diameter_mm, a.spillover_voi.length_mm, color="#7030a0", lw=1.2, ls=":")
-    fig.suptitle(f"{tpl.title} | series {analysis.volume.series_description or analysis.volume.series_uid or ''} | rod match {pl.ring_score or 0:.2f}", fontsize=10)
-    return _finish(fig, path, dpi=110)
 
 
 # ----------------------------------------------------------------------------- comparison charts
@@ -377,36 +341,17 @@ def recovery_curves_chart(
     return out
 
 
-def inserts_overlay(analysis, path: str | os.PathLike) -> Path:
-    """A user-defined phantom: a transverse and a longitudinal view through the inserts' mean
-    position with every insert VOI drawn and labelled (PNG)."""
-    from .rois import sample_plane
-
-    plt = _plt()
-    pl = analysis.placement
-    tpl = analysis.template
-    inserts = [i for i in tpl.inserts if i.fill != "solid"]
-    z_mid = float(np.mean([i.centre_mm[2] for i in inserts])) if inserts else 0.0
-    half = tpl.body.half_extent_xy_mm + 5
-    tra = sample_plane(analysis.volume, pl.to_world([*tpl.body.centre_xy_mm, z_mid]), pl.rotation[:, 0], pl.rotation[:, 1], half)
-    lon = sample_plane(analysis.volume, pl.to_world(tpl.body_centre_mm), pl.rotation[:, 0], pl.axis_world, max(half, tpl.body_length_mm / 2 + 5))
-    vmax = float(np.nanpercentile(tra.values, 99.5)) or 1.0
-    fig, axes = plt.subplots(1, 2, figsize=(11, 5.4))
-    _show_plane(axes[0], tra, vmax, f"Transverse view at z = {z_mid:g} mm (template frame)")
-    _show_plane(axes[1], lon, vmax, "Longitudinal view along the phantom axis")
-    for ins in inserts:
-        c = pl.insert_centre(ins.name)
-        hot = analysis.true_insert_bq_ml.get(ins.name, 0.0) > analysis.true_background_bq_ml
-        col = "#c03000" if hot else "#0050c0"
-        uv = tra.world_to_uv(c)
-        _circle(axes[0], uv, ins.diameter_mm, color=col, lw=1.2)
-        axes[0].annotate(ins.name, (uv[0], uv[1] + ins.diameter_mm / 2 + 2), ha="center", va="bottom", fontsize=8,
-                         bbox=dict(boxstyle="round,pad=0.15", fc="white", ec="none", alpha=0.8))
-    fig.suptitle(f"{tpl.title} | match {pl.ring_score or 0:.2f}", fontsize=10)
-    return _finish(fig, path, dpi=100)
-
-
-def recovery_curve_picture(analysis: "BodyAnalysis", path: str | os.PathLike) -> Path:
+def recovery_curve_picture(
+    rows: "Sequence[Measurement]",
+    hot_spheres: Sequence[tuple[str, float, float, float]],
+    diameters_mm: Sequence[float],
+    fit: "ResolutionFit | None",
+    band_sets: "Sequence[BandSet]",
+    path: str | os.PathLike,
+    *,
+    isocontour_fraction: float = 0.5,
+    peak_diameter_mm: float = 12.41,
+) -> Path:
     """Measured recovery coefficients with the fitted blurred-sphere curves and the bands (PNG).
 
     One panel per metric (RC max, RC mean, RC peak): the hot spheres' values with their
@@ -414,28 +359,33 @@ def recovery_curve_picture(analysis: "BodyAnalysis", path: str | os.PathLike) ->
     (:mod:`phantometry.metrics.resolution`, continuous in diameter, at the fitted FWHM, sphere
     scale and background), and the active acceptance bands as grey hatched boxes; values
     outside a band are red open markers.
+
+    Parameters
+    ----------
+    rows : the measurement rows.
+    hot_spheres : (roi, inner diameter mm, wall mm, true concentration Bq/mL) of each hot sphere.
+    diameters_mm : every sphere's diameter (the axis range).
+    fit : the effective-resolution fit, or None (no model curves).
+    band_sets : the band sets applied.
     """
     from matplotlib.patches import Rectangle
 
     from .metrics.resolution import model_rc_max, model_rc_mean, model_rc_peak
 
     plt = _plt()
-    tpl = analysis.template
-    hot = [s for s in tpl.spheres if not analysis.fill.is_cold(s.name)]
-    rows = _by_key(analysis.rows)
-    fit = getattr(analysis, "resolution", None)
+    rows_by = _by_key(rows)
     metrics = ("rc_max", "rc_mean", "rc_peak")
     fig, axes = plt.subplots(1, 3, figsize=(13, 4.6))
-    d_all = [s.diameter_mm for s in tpl.spheres]
+    d_all = list(diameters_mm)
     d_grid = np.linspace(max(2.0, min(d_all) * 0.6), max(d_all) * 1.12, 60)
-    band_sets = list(getattr(analysis, "band_sets", []))
+    band_sets = list(band_sets)
     labelled: set = set()
     hatches = ("///", "\\\\\\", "...", "xxx")
     for ax, metric in zip(axes, metrics):
         n_sets = max(1, len(band_sets))
         for j, bs in enumerate(band_sets):
-            for s in hot:
-                e = bs.entry(s.name, metric)
+            for name, diameter, _, _ in hot_spheres:
+                e = bs.entry(name, metric)
                 if e is None:
                     continue
                 lo = e.low if e.low is not None else 0.0
@@ -445,27 +395,27 @@ def recovery_curve_picture(analysis: "BodyAnalysis", path: str | os.PathLike) ->
                 if bs.name not in labelled:
                     labelled.add(bs.name)
                     label = f"band {bs.name}"
-                ax.add_patch(Rectangle((s.diameter_mm - 1.2 + j * width, lo), width, hi - lo, fc="#e4e4e4", ec="#999999", lw=0.6,
+                ax.add_patch(Rectangle((diameter - 1.2 + j * width, lo), width, hi - lo, fc="#e4e4e4", ec="#999999", lw=0.6,
                                        hatch=hatches[j % len(hatches)], zorder=0, label=label))
-        if fit is not None and hot:
-            wall = float(np.mean([s.wall_mm for s in hot]))
-            true = float(np.mean([analysis.true_insert_bq_ml[s.name] for s in hot]))
+        if fit is not None and hot_spheres:
+            wall = float(np.mean([h[2] for h in hot_spheres]))
+            true = float(np.mean([h[3] for h in hot_spheres]))
             k = fit.sphere_scale
             ratio = k * true / fit.background_bq_ml if fit.background_bq_ml > 0 else 1e9
             kw = dict(activity_ratio=ratio, wall_mm=wall, voxel_mm=fit.voxel_mm)
             if metric == "rc_max":
                 curve = model_rc_max(d_grid, fit.fwhm_mm, **kw)
             elif metric == "rc_mean":
-                curve = model_rc_mean(d_grid, fit.fwhm_mm, fraction=tpl.analysis.isocontour_fraction, **kw)
+                curve = model_rc_mean(d_grid, fit.fwhm_mm, fraction=isocontour_fraction, **kw)
             else:
-                curve = model_rc_peak(d_grid, fit.fwhm_mm, peak_diameter_mm=tpl.analysis.peak_diameter_mm, **kw)
+                curve = model_rc_peak(d_grid, fit.fwhm_mm, peak_diameter_mm=peak_diameter_mm, **kw)
             ax.plot(d_grid, k * np.asarray(curve), color="#1f5fa0", lw=1.3, zorder=1, label=f"model (noise-free), FWHM {fit.fwhm_mm:.2f} mm")
         xs, ys, es, fails = [], [], [], []
-        for s in hot:
-            rs = rows.get((s.name, metric))
+        for name, diameter, _, _ in hot_spheres:
+            rs = rows_by.get((name, metric))
             if not rs or not _finite(rs[0].value):
                 continue
-            xs.append(s.diameter_mm)
+            xs.append(diameter)
             ys.append(rs[0].value)
             es.append(rs[0].uncertainty if _finite(rs[0].uncertainty) else 0.0)
             fails.append(any(r.verdict == "fail" for r in rs))

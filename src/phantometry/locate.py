@@ -451,7 +451,7 @@ def _match_rotation(profile: np.ndarray, model: np.ndarray, hands: tuple[int, ..
     return best[1], best[2], best[0]
 
 
-def _pose_from_axis(a_plane: np.ndarray, d: np.ndarray, u: np.ndarray, v: np.ndarray, theta0: float, hand: int, template: Template) -> tuple[np.ndarray, np.ndarray]:
+def _pose_from_axis(a_plane: np.ndarray, d: np.ndarray, u: np.ndarray, v: np.ndarray, theta0: float, hand: int, template: Template, axis_ins: Insert) -> tuple[np.ndarray, np.ndarray]:
     ex = math.cos(theta0) * u + math.sin(theta0) * v
     if hand == 1:
         ey = -math.sin(theta0) * u + math.cos(theta0) * v
@@ -460,7 +460,7 @@ def _pose_from_axis(a_plane: np.ndarray, d: np.ndarray, u: np.ndarray, v: np.nda
         ey = math.sin(theta0) * u - math.cos(theta0) * v
         ez = -d
     rot = np.column_stack([ex, ey, ez])
-    ax = template.insert(template.analysis.axis_insert)
+    ax = axis_ins
     plane_z = float(np.mean([s.centre_mm[2] for s in template.spheres]))
     origin_on_axis = np.array([ax.centre_mm[0], ax.centre_mm[1], plane_z])
     t = a_plane - rot @ origin_on_axis
@@ -513,6 +513,7 @@ def locate(
     volume: Volume,
     template: Template,
     *,
+    axis_insert: str,
     hot: dict[str, bool] | None = None,
     activity_ratio: dict[str, float] | None = None,
     overrides: dict[str, np.ndarray] | None = None,
@@ -522,6 +523,8 @@ def locate(
 
     Parameters
     ----------
+    axis_insert : str
+        The cold insert on the phantom axis (found first; the template's ``analysis.axis_insert``).
     hot : dict name -> bool
         Which spheres are hot (True) or cold (False), from the fill record; all hot if omitted.
     activity_ratio : dict name -> float
@@ -538,8 +541,8 @@ def locate(
         When the phantom cannot be found or the fit is poor; the message says why.
     """
     where = where or (volume.source or "image")
-    if template.analysis.kind != "body_image_quality":
-        raise TemplateError(f"template {template.name}: locate() handles body phantoms; got analysis kind {template.analysis.kind}")
+    if template.background is None or not template.spheres:
+        raise TemplateError(f"template {template.name}: locate() handles body phantoms (spheres and background ROIs)")
     overrides = {k: np.asarray(v, float) for k, v in (overrides or {}).items()}
     for name in overrides:
         template.insert(name)  # raises for unknown names
@@ -559,7 +562,7 @@ def locate(
             np.array([s.centre_mm for s in sphere_overrides]), np.array([overrides[s.name] for s in sphere_overrides])
         )
     else:
-        axis_ins = template.insert(template.analysis.axis_insert)
+        axis_ins = template.insert(axis_insert)
         a0, d = find_axis(volume, body, axis_ins, where)
         ring_r = float(np.median([math.hypot(s.centre_mm[0] - axis_ins.centre_mm[0], s.centre_mm[1] - axis_ins.centre_mm[1]) for s in spheres]))
         off, u, v = _sphere_plane_offset(volume, template, body, a0, d, bg, ring_r, where)
@@ -583,7 +586,7 @@ def locate(
                 f"{where}: the sphere ring does not match template {template.name} (match score {ring_score:.2f} < 0.30); "
                 "check the fill record (hot/cold spheres) and the template, or give --centre NAME=x,y,z for three spheres"
             )
-        rot, t = _pose_from_axis(a_plane, d, u, v, theta0, hand, template)
+        rot, t = _pose_from_axis(a_plane, d, u, v, theta0, hand, template, axis_ins)
     fits: dict[str, InsertFit] = {}
     noise = max(body.noise_sd, 1e-6 * bg)
     for _round in range(2):
@@ -652,6 +655,8 @@ def locate_small_animal(
     volume: Volume,
     template: Template,
     *,
+    solid_section: str,
+    rod_profile_z_mm: tuple[float, float],
     overrides: dict[str, np.ndarray] | None = None,
     where: str | None = None,
 ) -> Placement:
@@ -675,7 +680,6 @@ def locate_small_animal(
     overrides = {k: np.asarray(v, float) for k, v in (overrides or {}).items()}
     for name in overrides:
         template.insert(name)
-    a = template.analysis
     body_r = template.body.diameter_mm / 2 if template.body.shape == "cylinder" else template.body.arc_radius_mm
     target = max(float(np.min(np.abs(volume.spacing_mm))), min(6.0, 2 * body_r / 15))
     body = find_body(volume, where, target)
@@ -700,7 +704,7 @@ def locate_small_animal(
     u, v = _orthonormal_basis(d)
     rods = template.rods
     ring_r = float(np.median([math.hypot(r.centre_mm[0], r.centre_mm[1]) for r in rods]))
-    solid_len = float(template.insert(a.solid_section).length_mm)
+    solid_len = float(template.insert(solid_section).length_mm)
     uniform_len = template.body_length_mm - solid_len
     step = max(0.25, float(np.min(np.abs(volume.spacing_mm))) / 2)
     s = np.arange(-template.body_length_mm, template.body_length_mm + step / 2, step)
@@ -742,7 +746,7 @@ def locate_small_animal(
     face = centre
     u, v = _orthonormal_basis(d)
     # ---- rotation from the rods
-    z0, z1 = a.rod_profile_z_mm
+    z0, z1 = rod_profile_z_mm
     zs = np.arange(z0, z1 + 1e-9, max(step, 0.5))
     n_bins = 360
     theta = (np.arange(n_bins) + 0.5) * 2 * np.pi / n_bins
@@ -822,10 +826,8 @@ def _refine_cylinder_axis(volume: Volume, face: np.ndarray, d: np.ndarray, z_fro
 # =============================================================================== generic
 def _template_value_at(template: Template, pts: np.ndarray, conc: dict[str, float], background: float) -> np.ndarray:
     """Point samples of the expected concentration of a template at template-frame points."""
-    from .synth import _painting_order  # the same painting order as the synthesizer
-
     val = np.where(template.body_inside(pts), background, 0.0)
-    for ins in _painting_order(template):
+    for ins in template.painting_order():  # the synthesizer's order
         rel = pts - np.asarray(ins.centre_mm, float)
         r_out = ins.outer_diameter_mm / 2
         if ins.shape == "sphere":

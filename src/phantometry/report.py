@@ -28,7 +28,7 @@ from .results import CAUTION, Measurement
 
 if TYPE_CHECKING:  # pragma: no cover
     from .compare import ComparisonResult
-    from .measure import BodyAnalysis
+    from .phantoms.base import Analysis, ResultGrid
 
 _CSS = """
 :root { --ink: #161616; --muted: #555; --rule: #b8b8b8; --faint: #f3f3f3;
@@ -194,27 +194,19 @@ def _measurements_table(rows: Sequence[Measurement], table_id: str = "measuremen
     return f'<table id="{esc(table_id)}"><caption>Every (ROI, metric) row, as in measurements.csv; u is the standard uncertainty.</caption>{head}<tbody>{"".join(body)}</tbody></table>'
 
 
-_SPHERE_METRICS = (
-    ("percent_contrast", "contrast Q (%)"),
-    ("background_variability_pct", "BV N (%)"),
-    ("rc_max", "RC max"),
-    ("rc_mean", "RC mean"),
-    ("rc_peak", "RC peak"),
-)
-
-
-def _sphere_table(rows: Sequence[Measurement], diameters: dict[str, float], hot: dict[str, bool]) -> str:
+def _grid_table(rows: Sequence[Measurement], grid: "ResultGrid") -> str:
+    """A :class:`~phantometry.phantoms.base.ResultGrid` as an HTML table (value &plusmn; u, verdict marks)."""
     by: dict[tuple[str, str], list[Measurement]] = {}
     for r in rows:
         by.setdefault((r.roi, r.metric), []).append(r)
-    head = "<thead><tr><th>sphere</th><th class=\"num\">diameter (mm)</th><th>fill</th>" + "".join(
-        f"<th class=\"num\">{esc(t)}</th>" for _, t in _SPHERE_METRICS) + "<th>verdict</th></tr></thead>"
+    head = ("<thead><tr><th>ROI</th>" + "".join(f"<th>{esc(t)}</th>" for t in grid.descriptor_titles)
+            + "".join(f"<th class=\"num\">{esc(t)}</th>" for _, t in grid.metrics) + "<th>verdict</th></tr></thead>")
     body = []
-    for name in sorted(diameters, key=lambda n: diameters[n]):
+    for roi, descriptors in grid.rois:
         cells = []
         verdicts = []
-        for metric, _ in _SPHERE_METRICS:
-            rs = by.get((name, metric), [])
+        for metric, _ in grid.metrics:
+            rs = by.get((roi, metric), [])
             if not rs:
                 cells.append('<td class="num">&ndash;</td>')
                 continue
@@ -223,9 +215,15 @@ def _sphere_table(rows: Sequence[Measurement], diameters: dict[str, float], hot:
             mark = " &#10007;" if v == "fail" else ""
             cls = ' v-fail' if v == "fail" else ""
             cells.append(f'<td class="num{cls}">{format_value(rs[0].value, rs[0].unit, rs[0].uncertainty)}{mark}</td>')
-        body.append(f"<tr><td>{esc(name)}</td><td class=\"num\">{diameters[name]:g}</td><td>{'hot' if hot.get(name, True) else 'cold'}</td>"
-                    f"{''.join(cells)}{verdict_cell(_worst(verdicts))}</tr>")
-    return f'<table id="spheres"><caption>One row per sphere (NEMA NU 2 contrast and background variability; recovery coefficients of hot spheres); values &plusmn; standard uncertainty.</caption>{head}<tbody>{"".join(body)}</tbody></table>'
+        body.append(f"<tr><td>{esc(roi)}</td>" + "".join(f"<td>{esc(d)}</td>" for d in descriptors)
+                    + f"{''.join(cells)}{verdict_cell(_worst(verdicts))}</tr>")
+    return f'<table id="{esc(grid.table_id)}"><caption>{grid.caption}</caption>{head}<tbody>{"".join(body)}</tbody></table>'
+
+
+#: Captions of the kinds' extra pictures in the report (by file name).
+_PICTURE_CAPTIONS = {
+    "recovery_curve.png": "Measured recovery coefficients with the fitted blurred-sphere model at the effective FWHM; bars: standard uncertainty.",
+}
 
 
 def _png_of(draw) -> bytes:
@@ -244,35 +242,31 @@ def _read(path: Path) -> bytes | None:
 
 
 # ============================================================================== measure report
-def measure_report_html(analysis: "BodyAnalysis", *, folder: str | os.PathLike | None = None) -> str:
+def measure_report_html(analysis: "Analysis", *, folder: str | os.PathLike | None = None) -> str:
     """The report of one measurement as an HTML string.
 
     Parameters
     ----------
-    analysis : BodyAnalysis
-        From :func:`phantometry.measure.measure_volume` (bands applied if any).
+    analysis : Analysis
+        From :func:`phantometry.measure.measure_volume` (bands applied if any), of any kind.
     folder : path, optional
-        The result folder; its ``overlay.png`` (and ``recovery_curve.png`` when present) are
-        embedded, otherwise the overlay is drawn here.
+        The result folder; its ``overlay.png`` and the kind's other pictures are embedded
+        from it, otherwise they are drawn here.
     """
-    from .figures import overlay_picture, recovery_curves_chart
+    from .figures import overlay_picture
 
     vol = analysis.volume
     tpl = analysis.template
     fill = analysis.fill
     rows = analysis.rows
-    body_kind = tpl.analysis.kind == "body_image_quality"
     folder = Path(folder) if folder is not None else None
     overlay = _read(folder / "overlay.png") if folder else None
-    if overlay is None and body_kind:
-        overlay = _png_of(lambda p: overlay_picture(analysis, p))
-    diameters = {s.name: float(s.diameter_mm) for s in tpl.spheres} if body_kind else {}
-    hot = {s.name: not fill.is_cold(s.name) for s in tpl.spheres} if body_kind else {}
-    rc_png = None
-    if diameters and any(r.metric.startswith("rc_") for r in rows):
-        rc_png = _png_of(lambda p: recovery_curves_chart([(1, "this scan", rows)], diameters, p, hot=hot,
-                                                         title="Recovery coefficients of this scan; grey boxes: acceptance bands"))
-    fit_png = _read(folder / "recovery_curve.png") if folder else None
+    if overlay is None:
+        overlay = _png_of(lambda p: overlay_picture(analysis.overlay(), p))
+    extra = []
+    for name, draw in analysis.pictures().items():
+        png = _read(folder / name) if folder else None
+        extra.append((name, png if png is not None else _png_of(draw)))
     rec = vol.reconstruction
     scanner = " ".join(x for x in (vol.scanner.manufacturer, vol.scanner.model) if x)
     series_items = [
@@ -289,18 +283,14 @@ def measure_report_html(analysis: "BodyAnalysis", *, folder: str | os.PathLike |
         ("voxel (z, y, x) mm", " x ".join(f"{s:.3g}" for s in vol.spacing_mm)),
         ("source", vol.source),
     ]
-    ratio = None
-    if any(hot.values()):
-        first_hot = next(n for n, h in hot.items() if h)
-        try:
-            ratio = f"{fill.activity_ratio(first_hot):.3g} : 1"
-        except Exception:  # a record without a hot sphere stock
-            ratio = None
+    true_bg = analysis.true_background_bq_ml
+    hot_ratios = sorted({round(c / true_bg, 3) for c in analysis.true_insert_bq_ml.values() if _finite(true_bg) and true_bg > 0 and c > true_bg})
+    ratio = ", ".join(f"{r:g} : 1" for r in hot_ratios) or None
     fill_items = [
         ("fill record", fill.source),
         ("nuclide", fill.nuclide.name),
         ("background at scan time", f"{analysis.true_background_bq_ml / 1000:.3f} kBq/mL" if _finite(getattr(analysis, "true_background_bq_ml", None)) else None),
-        ("sphere : background", ratio),
+        ("hot inserts : background", ratio),
         ("cold inserts", ", ".join(fill.cold) if fill.cold else "none"),
         ("site", getattr(fill, "site", None)),
         ("phantom", getattr(fill, "phantom", None)),
@@ -326,11 +316,10 @@ def measure_report_html(analysis: "BodyAnalysis", *, folder: str | os.PathLike |
         '<section id="summary" class="summary">'
         f'<div><h2>Series</h2>{_dl(series_items)}</div><div><h2>Fill record</h2>{_dl(fill_items)}</div></section>'
         f'<section id="placement"><h2>ROI placement</h2>{_dl(loc_items)}'
-        + _figure(overlay, "ROI overlay", "Sphere plane and longitudinal view with every ROI as placed: spheres solid, background ROIs dashed, insert ROI dotted.")
+        + _figure(overlay, "ROI overlay", "Every ROI as placed, drawn on the image planes named above each view.")
         + fit_table + "</section>"
-        '<section id="results">' + (f"<h2>Spheres</h2>{_sphere_table(rows, diameters, hot)}" if diameters else "")
-        + _figure(rc_png, "recovery coefficients", "Recovery coefficients against sphere diameter; bars: standard uncertainty; grey boxes: acceptance bands; red open markers: outside the band.")
-        + _figure(fit_png, "recovery curve fit", "Measured recovery with the fitted blurred-sphere model.")
+        '<section id="results"><h2>Results</h2>' + "".join(_grid_table(rows, g) for g in analysis.result_grids())
+        + "".join(_figure(png, name, _PICTURE_CAPTIONS.get(name, name)) for name, png in extra)
         + f"<h2>All measurements</h2>{_measurements_table(rows)}</section>"
         + (f'<section id="warnings"><h2>Warnings</h2><ul class="warnings">{warn}</ul></section>' if warn else "")
     )
@@ -339,7 +328,7 @@ def measure_report_html(analysis: "BodyAnalysis", *, folder: str | os.PathLike |
     return _page(title, subtitle, body)
 
 
-def write_measure_report(analysis: "BodyAnalysis", path: str | os.PathLike, *, folder: str | os.PathLike | None = None) -> Path:
+def write_measure_report(analysis: "Analysis", path: str | os.PathLike, *, folder: str | os.PathLike | None = None) -> Path:
     """Write :func:`measure_report_html` to ``path`` (UTF-8)."""
     out = Path(path)
     out.write_text(measure_report_html(analysis, folder=folder), encoding="utf-8")
@@ -440,12 +429,7 @@ def compare_report_html(result: "ComparisonResult", *, folder: str | os.PathLike
         failed = ('<section id="failures"><h2>Series that could not be measured</h2><table id="failed">'
                   "<thead><tr><th class=\"num\">#</th><th>source</th><th>error</th><th>message</th></tr></thead>"
                   f"<tbody>{frows}</tbody></table></section>")
-    charts = (
-        _figure(_read(base / "contrast_noise.png"), "contrast against noise",
-                "Percent contrast against background variability per sphere, one numbered point per setting; bars: standard uncertainty.")
-        + _figure(_read(base / "recovery_curves.png"), "recovery curves",
-                  "Recovery coefficients of every setting; grey boxes: acceptance bands; red open markers: outside the band.")
-    )
+    charts = "".join(_figure(_read(base / name), name, caption) for name, caption in result.charts)
     matrices = "".join(
         _settings_matrix(result, m, t)
         for m, t in (("rc_mean", "RC mean"), ("rc_max", "RC max"), ("rc_peak", "RC peak"),

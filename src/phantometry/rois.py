@@ -186,7 +186,7 @@ def _index_box(
     return box, clipped  # type: ignore[return-value]
 
 
-def _box_world(volume: Volume, box: tuple[slice, ...]) -> np.ndarray:
+def box_world(volume: Volume, box: tuple[slice, ...]) -> np.ndarray:
     """World mm of the voxel centres of a box, shape (nk, nj, ni, 3)."""
     e = _edges(volume)
     t = volume.affine[:3, 3]
@@ -340,7 +340,7 @@ def fractional_occupancy(
     idx = volume.world_to_index(corners)
     box, clipped = _index_box(volume, idx.min(axis=0), idx.max(axis=0))
     e = _edges(volume)
-    centres = _box_world(volume, box)
+    centres = box_world(volume, box)
     nb = centres.shape[:3]
     inside_c = np.asarray(inside_fn(centres.reshape(-1, 3)), dtype=bool).reshape(nb)
     # cell corners: centres shifted by half a step along every axis, on an (n+1)^3 lattice
@@ -402,7 +402,7 @@ def sphere_weights(volume: Volume, centre_mm: np.ndarray, diameter_mm: float, su
     c_idx = volume.world_to_index(c)
     half = r * np.linalg.norm(g, axis=1)
     box, clipped = _index_box(volume, c_idx - half, c_idx + half)
-    rel = _box_world(volume, box) - c
+    rel = box_world(volume, box) - c
     w = _sphere_fractions(rel, _edges(volume), r, s)
     return RoiWeights(box=box, weights=w.astype(np.float32), clipped=clipped)
 
@@ -450,7 +450,7 @@ def cylinder_weights(
     c_idx = volume.world_to_index(c)
     box, clipped = _index_box(volume, c_idx - half, c_idx + half)
     e = _edges(volume)
-    rel = (_box_world(volume, box) - c).reshape(-1, 3)
+    rel = (box_world(volume, box) - c).reshape(-1, 3)
     axial = rel @ a
     radial = np.sqrt(np.maximum(np.einsum("ij,ij->i", rel, rel) - axial * axial, 0.0))
     rho = _circumradius(e)
@@ -587,7 +587,7 @@ def _weighted_mean_sd(x: np.ndarray, w: np.ndarray, where: str = "") -> tuple[fl
 
 
 # =========================================================================== voxel-centre searches
-def _centres_in_sphere(
+def centres_in_sphere(
     volume: Volume, centre_mm: np.ndarray, radius_mm: float
 ) -> tuple[tuple[slice, slice, slice], np.ndarray]:
     """Box and boolean mask of voxels whose centres lie within the sphere.
@@ -600,7 +600,7 @@ def _centres_in_sphere(
     half = radius_mm * np.linalg.norm(_index_gradients(volume), axis=1)
     try:
         box, _ = _index_box(volume, c_idx - half, c_idx + half)
-        rel = _box_world(volume, box) - c
+        rel = box_world(volume, box) - c
         mask = np.einsum("...i,...i->...", rel, rel) <= radius_mm * radius_mm
     except PhantomNotFound:
         mask = np.zeros((0, 0, 0), bool)
@@ -641,7 +641,7 @@ def max_in_sphere(volume: Volume, centre_mm: np.ndarray, diameter_mm: float) -> 
         World mm of that voxel's centre (first in array order on ties).
     """
     r = 0.5 * _check_diameter(diameter_mm, "search diameter")
-    box, mask = _centres_in_sphere(volume, centre_mm, r)
+    box, mask = centres_in_sphere(volume, centre_mm, r)
     vals = np.where(mask, volume.data[box], -np.inf)
     flat = int(np.argmax(vals))
     loc = np.unravel_index(flat, vals.shape)
@@ -683,7 +683,7 @@ def peak_search(
     """
     r_region = 0.5 * _check_diameter(region_diameter_mm, "peak search region diameter")
     r_peak = 0.5 * _check_diameter(peak_diameter_mm, "peak sphere diameter")
-    cbox, cmask = _centres_in_sphere(volume, region_centre_mm, r_region)
+    cbox, cmask = centres_in_sphere(volume, region_centre_mm, r_region)
     e = _edges(volume)
     g = _index_gradients(volume)
     hk = np.ceil(r_peak * np.linalg.norm(g, axis=1) + 0.5).astype(int)
@@ -776,7 +776,7 @@ def isocontour_mean(
         )
     threshold = bg + f * (max_value - bg)
     margin = float(np.max(volume.spacing_mm))
-    box, mask = _centres_in_sphere(volume, centre_mm, r + margin)
+    box, mask = centres_in_sphere(volume, centre_mm, r + margin)
     vals = volume.data[box].astype(np.float64)  # compare in float64: no float32 rounding of T
     candidates = mask & (vals >= threshold)
     labels, _ = ndimage.label(candidates, structure=np.ones((3, 3, 3), dtype=bool))

@@ -4,26 +4,20 @@ Any DICOM viewer that reads Segmentation Storage (DICOM PS3.3 A.51, Segmentation
 show where phantometry measured, over the original images. The object is built with highdicom
 (Herrmann et al., J Digit Imaging 2022;35:1719-1737); one segment per ROI kind:
 
-=====================  =========================================================================
-segment                ROIs (as placed by :func:`phantometry.locate.locate`)
-=====================  =========================================================================
-``hot spheres``        every sphere filled hot, at its fitted centre, inner diameter
-``cold spheres``       every sphere filled with water (only when the fill record has some)
-``background ROIs``    the largest background circles (37 mm in ``iec-body``; the smaller sizes
-                       are concentric inside them) on every background slice offset
-``low-density insert`` the insert ROI circles (``lung_roi_diameter_mm``) on every insert slice
-=====================  =========================================================================
+the segments are the ROI kinds the analysis reports (:meth:`phantometry.phantoms.base.Analysis.roi_masks`;
+for the body phantom: hot spheres, cold spheres, background ROIs, low-density insert, see
+:meth:`phantometry.phantoms.body.BodyAnalysis.roi_masks`). Kinds whose analyses cannot be
+exported say so before anything is measured (:func:`check_seg_request`).
 
 Masks from the ROI weights
 --------------------------
 ROIs carry sub-voxel weights (the fraction of each voxel cell inside the ROI,
 :mod:`phantometry.rois`). A binary segment cannot, so a voxel belongs to a segment when its
-weight for at least one ROI of that kind is **>= 0.5** (:data:`MASK_WEIGHT_THRESHOLD`): half or
-more of the voxel cell lies inside. For a sphere this keeps the mask volume close to the sphere
-volume (partial voxels gained and lost roughly balance). The circles the NEMA NU 2 analysis uses
-live on a plane; here each is a disc one slice thick (a cylinder of the slice spacing along the
-phantom axis, centred on the plane), so its mask is the slice (or, for an oblique axis, the
-slices) the circle was sampled from.
+weight for at least one ROI of that kind is **>= 0.5**: half or more of the voxel cell lies
+inside. For a sphere this keeps the mask volume close to the sphere volume (partial voxels
+gained and lost roughly balance). Circles sampled on a plane are discs one slice thick (a
+cylinder of the slice spacing along the phantom axis, centred on the plane), so their mask is
+the slice (or, for an oblique axis, the slices) the circle was sampled from.
 
 No patient identity is written: Patient Name, Patient ID and Patient Birth Date are left empty
 (the SEG is tied to the images by Study, Series, SOP Instance and Frame of Reference UIDs).
@@ -33,117 +27,22 @@ from __future__ import annotations
 
 import copy
 import os
-from dataclasses import dataclass
 from pathlib import Path
-from typing import TYPE_CHECKING, Iterable, Sequence
+from typing import Iterable, Sequence
 
 import numpy as np
 
 from .errors import InputError
-from .rois import RoiWeights, cylinder_weights, sphere_weights
+from .phantoms.base import Analysis, PhantomKind, RoiKindMask
+from .templates import Template
+from .volume import Volume
 
-if TYPE_CHECKING:  # pragma: no cover
-    from .measure import BodyAnalysis
-    from .volume import Volume
-
-#: A voxel is in a binary segment when at least this fraction of its cell lies inside an ROI.
-MASK_WEIGHT_THRESHOLD = 0.5
 
 #: Identity attributes blanked in the source headers before highdicom copies the patient module.
 _IDENTITY_KEYWORDS = ("PatientName", "PatientID", "PatientBirthDate", "OtherPatientIDs", "OtherPatientNames", "AccessionNumber")
 
 
-@dataclass
-class RoiKindMask:
-    """Binary mask of one ROI kind on the volume grid.
-
-    Attributes
-    ----------
-    kind : str
-        Machine name (``hot_spheres``, ``cold_spheres``, ``background_rois``, ``low_density_insert``).
-    label : str
-        Segment label written to the SEG (``hot spheres`` ...).
-    mask : ndarray of bool, shape (nz, ny, nx)
-        True where the voxel weight of at least one ROI of the kind is >= 0.5.
-    roi_names : list of str
-        The ROIs that make up the kind (e.g. ``sphere_37mm``, ``background_37mm_+0mm_01``).
-    """
-
-    kind: str
-    label: str
-    mask: np.ndarray
-    roi_names: list[str]
-
-    @property
-    def voxel_count(self) -> int:
-        return int(np.count_nonzero(self.mask))
-
-
-def _add(mask: np.ndarray, roi: RoiWeights) -> None:
-    sub = mask[roi.box]
-    np.logical_or(sub, roi.weights >= MASK_WEIGHT_THRESHOLD, out=sub)
-
-
-def _slice_thickness_along(volume: "Volume", axis_world: np.ndarray) -> float:
-    """Spacing (mm) of the array axis most parallel to ``axis_world``."""
-    cosines = np.abs(volume.axes_world @ np.asarray(axis_world, float))
-    return float(volume.spacing_mm[int(np.argmax(cosines))])
-
-
-def roi_masks(analysis: "BodyAnalysis") -> list[RoiKindMask]:
-    """Binary masks of every ROI kind placed by the analysis (see the module notes).
-
-    Parameters
-    ----------
-    analysis : BodyAnalysis
-        The result of :func:`phantometry.measure.measure_volume`.
-
-    Returns
-    -------
-    list of RoiKindMask
-        In segment order; kinds without any ROI (e.g. no cold spheres) are left out.
-    """
-    volume = analysis.volume
-    tpl = analysis.template
-    pl = analysis.placement
-    shape = volume.shape
-    axis = pl.axis_world
-    thickness = _slice_thickness_along(volume, axis)
-    kinds: list[RoiKindMask] = []
-
-    hot = RoiKindMask("hot_spheres", "hot spheres", np.zeros(shape, bool), [])
-    cold = RoiKindMask("cold_spheres", "cold spheres", np.zeros(shape, bool), [])
-    for s in tpl.spheres:
-        target = cold if analysis.fill.is_cold(s.name) else hot
-        _add(target.mask, sphere_weights(volume, pl.insert_centre(s.name), s.diameter_mm))
-        target.roi_names.append(s.name)
-    kinds += [k for k in (hot, cold) if k.roi_names]
-
-    bg = tpl.background
-    if bg is not None:
-        d = max(bg.diameters_mm)
-        kind = RoiKindMask("background_rois", "background ROIs", np.zeros(shape, bool), [])
-        for off in bg.slice_offsets_mm:
-            pts = pl.to_world(np.c_[np.asarray(bg.centres_xy_mm, float), np.full(len(bg.centres_xy_mm), off)])
-            for n, p in enumerate(pts, start=1):
-                _add(kind.mask, cylinder_weights(volume, p, axis, d, thickness))
-                kind.roi_names.append(f"background_{d:g}mm_{off:+g}mm_{n:02d}")
-        kinds.append(kind)
-
-    a = tpl.analysis
-    if getattr(a, "lung_insert", None):
-        lung = tpl.insert(a.lung_insert)
-        offsets = a.lung_slice_offsets_mm or (bg.slice_offsets_mm if bg is not None else [0.0])
-        kind = RoiKindMask("low_density_insert", "low-density insert", np.zeros(shape, bool), [])
-        for off in offsets:
-            p = pl.to_world([lung.centre_mm[0], lung.centre_mm[1], off])
-            _add(kind.mask, cylinder_weights(volume, p, axis, a.lung_roi_diameter_mm, thickness))
-            kind.roi_names.append(f"{lung.name}_{off:+g}mm")
-        kinds.append(kind)
-    return kinds
-
-
-def check_seg_source(volume: "Volume", where: str | None = None) -> None:
+def check_seg_source(volume: Volume, where: str | None = None) -> None:
     """Refuse a volume that has no DICOM source series to reference (e.g. NIfTI input).
 
     Raises
@@ -159,25 +58,24 @@ def check_seg_source(volume: "Volume", where: str | None = None) -> None:
         )
 
 
-def check_seg_request(volume: "Volume", template, where: str | None = None) -> None:
+def check_seg_request(volume: Volume, template: Template, kind: PhantomKind, where: str | None = None) -> None:
     """Refuse ``--seg`` early (before measuring) when it cannot be written.
 
     Raises
     ------
     InputError
-        NIfTI input (see :func:`check_seg_source`), or a template whose analysis is not a body
-        image-quality one (the ROI kinds of this module).
+        NIfTI input (see :func:`check_seg_source`), or an analysis kind whose ROIs are not
+        exported (``PhantomKind.supports_seg``).
     """
     check_seg_source(volume, where)
-    kind = template.analysis.kind
-    if kind != "body_image_quality":
+    if not kind.supports_seg:
         raise InputError(
             f"{where or volume.source or 'image'}: --seg exports the ROIs of body image-quality templates; "
-            f"template {template.name} is of kind {kind}; drop --seg"
+            f"template {template.name} is of kind {kind.name}; drop --seg"
         )
 
 
-def _source_datasets(volume: "Volume", source_paths: Sequence[str | os.PathLike] | None) -> list:
+def _source_datasets(volume: Volume, source_paths: Sequence[str | os.PathLike] | None) -> list:
     """Headers of the source slices (no pixel data), in the volume's slice order."""
     import pydicom
 
@@ -212,14 +110,8 @@ def _segment_descriptions(kinds: Iterable[RoiKindMask], algorithm_type: str):
     from . import __version__
 
     # Coded concepts from the DICOM content mapping resource (PS3.16): category "Physical
-    # object" (SCT 260787004); types "Sphere" (DCM 122485), "Background" (DCM 125040),
-    # "Phantom" (DCM 113681) for the insert.
-    types = {
-        "hot_spheres": codes.DCM.Sphere,
-        "cold_spheres": codes.DCM.Sphere,
-        "background_rois": codes.DCM.Background,
-        "low_density_insert": codes.DCM.Phantom,
-    }
+    # object" (SCT 260787004); types from the ROI kind: "Sphere" (DCM 122485), "Background"
+    # (DCM 125040), "Phantom" (DCM 113681).
     algorithm = hd.AlgorithmIdentificationSequence(
         name="phantometry", version=__version__, family=codes.cid7162.HistogramAnalysis,
         source="phantometry ROI placement (template fit)",
@@ -231,7 +123,7 @@ def _segment_descriptions(kinds: Iterable[RoiKindMask], algorithm_type: str):
                 segment_number=number,
                 segment_label=k.label,
                 segmented_property_category=codes.SCT.PhysicalObject,
-                segmented_property_type=types[k.kind],
+                segmented_property_type=getattr(codes.DCM, k.segment_type),
                 algorithm_type=algorithm_type,
                 algorithm_identification=algorithm,
                 tracking_id=k.kind,
@@ -242,7 +134,7 @@ def _segment_descriptions(kinds: Iterable[RoiKindMask], algorithm_type: str):
 
 
 def write_seg(
-    analysis: "BodyAnalysis",
+    analysis: Analysis,
     path: str | os.PathLike,
     *,
     source_paths: Sequence[str | os.PathLike] | None = None,
@@ -251,8 +143,9 @@ def write_seg(
 
     Parameters
     ----------
-    analysis : BodyAnalysis
-        Result of :func:`phantometry.measure.measure_volume` on a DICOM-loaded volume.
+    analysis : Analysis
+        Result of :func:`phantometry.measure.measure_volume` on a DICOM-loaded volume, of a
+        kind whose ROIs are exported (``roi_masks``).
     path : path
         Output file (``.dcm``).
     source_paths : list of paths, optional
@@ -274,7 +167,7 @@ def write_seg(
 
     volume = analysis.volume
     check_seg_source(volume)
-    kinds = roi_masks(analysis)
+    kinds = analysis.roi_masks()
     sources = _source_datasets(volume, source_paths)
     manual = any(f.source == "override" for f in analysis.placement.fits.values())
     pixels = np.stack([k.mask for k in kinds], axis=-1)  # (frames = slices, rows, cols, segments)
@@ -292,7 +185,7 @@ def write_seg(
         manufacturer_model_name="phantometry",
         software_versions=__version__,
         device_serial_number=scanner.serial or "none",
-        content_description=f"phantometry ROIs, template {analysis.template.name}, voxel weight >= {MASK_WEIGHT_THRESHOLD}",
+        content_description=f"phantometry ROIs, template {analysis.template.name}, voxel weight >= 0.5",
         content_label="PHANTOMROIS",
         series_description=f"phantometry ROIs ({analysis.template.name})",
     )
@@ -302,4 +195,4 @@ def write_seg(
     return out
 
 
-__all__ = ["MASK_WEIGHT_THRESHOLD", "RoiKindMask", "roi_masks", "check_seg_source", "check_seg_request", "write_seg"]
+__all__ = ["RoiKindMask", "check_seg_source", "check_seg_request", "write_seg"]

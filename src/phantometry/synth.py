@@ -175,7 +175,7 @@ def _grid_affine(shape_zyx: tuple[int, int, int], voxel_mm: tuple[float, float, 
     return a
 
 
-def _auto_matrix(spec: SynthSpec, template: Template, rot: np.ndarray, t: np.ndarray) -> tuple[int, int, int]:
+def auto_matrix(spec: SynthSpec, template: Template, rot: np.ndarray, t: np.ndarray) -> tuple[int, int, int]:
     corners = _body_corners(template) @ rot.T + t
     extent = np.max(np.abs(corners), axis=0) * 2 + 2 * (spec.psf_fwhm_mm * 2 + 8.0)
     return tuple(int(math.ceil(e / v)) for e, v in zip(extent, spec.voxel_mm))  # type: ignore[return-value]
@@ -218,21 +218,6 @@ def _insert_weights(volume: Volume, ins: Insert, rot: np.ndarray, t: np.ndarray,
     return cylinder_weights(volume, centre, rot @ ins.axis_unit, diameter, float(ins.length_mm) + extra_length)
 
 
-def _painting_order(template: Template) -> list[Insert]:
-    done: list[Insert] = []
-    remaining = list(template.inserts)
-    while remaining:
-        for ins in remaining:
-            if ins.inside is None or ins.inside in {d.name for d in done}:
-                done.append(ins)
-                remaining.remove(ins)
-                break
-        else:  # pragma: no cover - cycles are refused by the template checks
-            done.extend(remaining)
-            break
-    return done
-
-
 def rasterise(template: Template, volume: Volume, rot: np.ndarray, t: np.ndarray, concentrations: dict[str, float], background_bq_ml: float) -> np.ndarray:
     """Noise-free, unblurred truth on the volume grid (Bq/mL, voxel-cell means)."""
     data = np.zeros(volume.shape, dtype=np.float64)
@@ -265,7 +250,7 @@ def rasterise(template: Template, volume: Volume, rot: np.ndarray, t: np.ndarray
             roi = fractional_occupancy(volume, inside_body, [lo[0], lo[1], zlo], [hi[0], hi[1], zhi])
             sub = data[roi.box]
             np.maximum(sub, background_bq_ml * roi.weights, out=sub)
-    for ins in _painting_order(template):
+    for ins in template.painting_order():
         # value of what holds this insert: the body's background, or its container insert
         holder = background_bq_ml if ins.inside is None else concentrations[ins.inside]
         try:
@@ -323,7 +308,7 @@ def synthesize(spec: SynthSpec) -> SynthResult:
     spec.validate()
     template = load_template(spec.phantom, spec.templates_dirs)
     rot, t = phantom_pose(spec, template)
-    matrix = spec.matrix or _auto_matrix(spec, template, rot, t)
+    matrix = spec.matrix or auto_matrix(spec, template, rot, t)
     shape = (int(matrix[2]), int(matrix[1]), int(matrix[0]))
     affine = _grid_affine(shape, spec.voxel_mm)
     grid = Volume(np.zeros(shape, np.float32), affine)  # the grid's geometry; voxels come below

@@ -19,7 +19,7 @@ from pathlib import Path
 from typing import Annotated, Any, Literal, Union
 
 import numpy as np
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError, field_validator, model_validator
 
 from .yamlfile import read_yaml_file
 from .errors import TemplateError
@@ -216,52 +216,21 @@ class BackgroundSet(_Strict):
         return len(self.centres_xy_mm) * len(self.slice_offsets_mm)
 
 
-class BodyImageQuality(_Strict):
-    """Analysis options of a body image-quality phantom (NEMA NU 2 image quality section)."""
+class AnalysisBlock(BaseModel):
+    """A template's ``analysis:`` block: which analysis kind applies, and its options.
 
-    kind: Literal["body_image_quality"]
-    axis_insert: str
-    lung_insert: str | None = None
-    lung_roi_diameter_mm: float = Field(default=30.0, gt=0)
-    lung_slice_offsets_mm: list[float] | None = None
-    reference_background_diameter_mm: float = Field(default=37.0, gt=0)
-    peak_diameter_mm: float = Field(default=12.41, gt=0)
-    isocontour_fraction: float = Field(default=0.5, gt=0, lt=1)
+    The options are validated by the kind (:mod:`phantometry.phantoms`, one module per kind,
+    ``PhantomKind.options``); here only ``kind`` is checked, so a new kind needs no change to
+    this module.
+    """
 
+    model_config = ConfigDict(extra="allow", frozen=True)
 
-class CylinderVoi(_Strict):
-    """A cylindrical VOI along the phantom axis (template frame)."""
+    kind: str = Field(pattern=r"^[a-z][a-z0-9_]*$")
 
-    centre_z_mm: float = 0.0
-    diameter_mm: float = Field(gt=0)
-    length_mm: float = Field(gt=0)
-
-
-class SpilloverVoi(_Strict):
-    diameter_mm: float = Field(gt=0)
-    length_mm: float = Field(gt=0)
-
-
-class SmallAnimalImageQuality(_Strict):
-    """Analysis options of the NEMA NU 4 small-animal image-quality phantom."""
-
-    kind: Literal["small_animal_image_quality"]
-    solid_section: str
-    uniform_voi: CylinderVoi
-    rod_profile_z_mm: Vec2
-    rod_search_diameter_factor: float = Field(default=2.0, gt=0)
-    spillover_voi: SpilloverVoi
-
-
-class InsertsOnly(_Strict):
-    """A user phantom measured insert by insert (mean, recovery or spill-over per insert)."""
-
-    kind: Literal["inserts"]
-    reference_voi: CylinderVoi
-    insert_voi_fraction: float = Field(default=0.8, gt=0, le=1)
-
-
-Analysis = Annotated[Union[BodyImageQuality, SmallAnimalImageQuality, InsertsOnly], Field(discriminator="kind")]
+    def raw(self) -> dict[str, Any]:
+        """The block as written (kind and options)."""
+        return {"kind": self.kind, **(self.model_extra or {})}
 
 
 class Template(_Strict):
@@ -276,8 +245,10 @@ class Template(_Strict):
     body: Body
     inserts: list[Insert]
     background: BackgroundSet | None = None
-    analysis: Analysis
+    analysis: AnalysisBlock
     source_path: str | None = Field(default=None, exclude=True)
+    #: the analysis options validated by the template's kind (set by ``PhantomKind.options``)
+    _kind_options: Any = PrivateAttr(default=None)
 
     @model_validator(mode="after")
     def _references(self) -> "Template":
@@ -288,21 +259,6 @@ class Template(_Strict):
         for ins in self.inserts:
             if ins.inside is not None and ins.inside not in names:
                 raise ValueError(f"insert {ins.name}: inside names unknown insert {ins.inside!r}")
-        a = self.analysis
-        for key in ("axis_insert", "lung_insert", "solid_section"):
-            ref = getattr(a, key, None)
-            if ref is not None and ref not in names:
-                raise ValueError(f"analysis.{key} names unknown insert {ref!r}; inserts: {', '.join(names)}")
-        if a.kind == "body_image_quality":
-            if self.background is None:
-                raise ValueError("analysis kind body_image_quality needs a background ROI set")
-            if not self.spheres:
-                raise ValueError("analysis kind body_image_quality needs inserts with role: sphere")
-        if a.kind == "small_animal_image_quality":
-            if not self.rods:
-                raise ValueError("analysis kind small_animal_image_quality needs inserts with role: rod")
-            if not self.chambers:
-                raise ValueError("analysis kind small_animal_image_quality needs inserts with role: chamber")
         return self
 
     # -------------------------------------------------------------------------- queries
@@ -329,15 +285,29 @@ class Template(_Strict):
         return [i for i in self.inserts if i.role == "chamber"]
 
     @property
-    def roi_names(self) -> list[str]:
-        names = [i.name for i in self.inserts]
-        if self.background is not None:
-            names.append("background")
-        if self.analysis.kind == "small_animal_image_quality":
-            names.append("uniform_region")
-        if self.analysis.kind == "inserts":
-            names.append("reference")
-        return names
+    def kind_options(self) -> Any:
+        """The analysis options as validated by the template's kind (None until validated)."""
+        return self._kind_options
+
+    def set_kind_options(self, value: Any) -> None:
+        """Keep the options as validated by the template's kind (``PhantomKind.options``)."""
+        self._kind_options = value
+
+    def painting_order(self) -> list[Insert]:
+        """Inserts in the order their activity is laid down: an insert that holds others
+        (``inside:``) before the ones it holds, so those overwrite it where they are."""
+        done: list[Insert] = []
+        remaining = list(self.inserts)
+        while remaining:
+            for ins in remaining:
+                if ins.inside is None or ins.inside in {d.name for d in done}:
+                    done.append(ins)
+                    remaining.remove(ins)
+                    break
+            else:  # a cycle of inside: references (refused by check_template): keep the rest as written
+                done.extend(remaining)
+                break
+        return done
 
     def body_inside(self, points_mm: np.ndarray) -> np.ndarray:
         """True where template-frame points (..., 3) lie inside the body interior."""
@@ -377,10 +347,14 @@ class Template(_Strict):
 
 
 # ----------------------------------------------------------------------------------- loading
-def _format_validation_error(path: str, err: ValidationError) -> str:
+def format_validation_error(path: str, err: ValidationError, prefix: str | None = None) -> str:
+    """Pydantic's errors of a template (or of its ``analysis:`` block, ``prefix="analysis"``)
+    as one line naming the file and each key at fault."""
     problems = []
     for e in err.errors():
-        loc = ".".join(str(x) for x in e["loc"] if not (isinstance(x, str) and x in ("cylinder", "d_shape", "body_image_quality", "function-after[_shape_fields(), Insert]")))
+        loc = ".".join(str(x) for x in e["loc"] if not (isinstance(x, str) and x in ("cylinder", "d_shape", "function-after[_shape_fields(), Insert]")))
+        if prefix:
+            loc = f"{prefix}.{loc}" if loc else prefix
         msg = e["msg"].removeprefix("Value error, ")
         if e["type"] == "extra_forbidden":
             msg = "unknown key (check the spelling; see the README section on ROI templates)"
@@ -403,7 +377,7 @@ def template_from_dict(data: Any, source: str = "<template>") -> Template:
     try:
         tpl = Template.model_validate({**data, "source_path": source})
     except ValidationError as err:
-        raise TemplateError(_format_validation_error(source, err)) from None
+        raise TemplateError(format_validation_error(source, err)) from None
     return tpl
 
 
@@ -516,50 +490,7 @@ def check_template(tpl: Template) -> list[str]:
                         f"background.centres_xy_mm[{c_idx}]: {max(bg.diameters_mm):g} mm ROI edge is {dist:.1f} mm from "
                         f"{ins.name}, less than min_clearance_mm {bg.min_clearance_mm:g}"
                     )
-    a = tpl.analysis
-    if a.kind == "small_animal_image_quality":
-        problems += _check_small_animal(tpl)
-    if a.kind == "body_image_quality":
-        if a.reference_background_diameter_mm not in (bg.diameters_mm if bg else []):
-            problems.append(
-                f"analysis.reference_background_diameter_mm: {a.reference_background_diameter_mm:g} is not one of "
-                f"background.diameters_mm"
-            )
-        for s in tpl.spheres:
-            if bg is not None and s.diameter_mm not in bg.diameters_mm:
-                problems.append(f"background.diameters_mm: no {s.diameter_mm:g} mm size for {s.name} (NEMA NU 2 needs one per sphere)")
     return problems
-
-
-def _check_small_animal(tpl: Template) -> list[str]:
-    """VOIs of the NU 4 analysis lie in their regions (uniform VOI clear of the solid section
-    and the chambers, spill-over VOI inside each chamber, rod profile along the rods)."""
-    a = tpl.analysis
-    out: list[str] = []
-    u = a.uniform_voi
-    uz0, uz1 = u.centre_z_mm - u.length_mm / 2, u.centre_z_mm + u.length_mm / 2
-    z0, z1 = tpl.body.z_range_mm
-    r_body = tpl.body.diameter_mm / 2 if tpl.body.shape == "cylinder" else tpl.body.arc_radius_mm
-    if uz0 < z0 or uz1 > z1 or u.diameter_mm / 2 > r_body:
-        out.append("analysis.uniform_voi: extends outside the body")
-    solid = tpl.insert(a.solid_section)
-    sz0, sz1 = solid.centre_mm[2] - solid.length_mm / 2, solid.centre_mm[2] + solid.length_mm / 2
-    if uz0 < sz1 and uz1 > sz0:
-        out.append(f"analysis.uniform_voi: z {uz0:g}..{uz1:g} mm overlaps the solid section ({sz0:g}..{sz1:g} mm)")
-    for c in tpl.chambers:
-        half = c.length_mm / 2 + c.wall_mm
-        cz0, cz1 = c.centre_mm[2] - half, c.centre_mm[2] + half
-        radial = math.hypot(c.centre_mm[0], c.centre_mm[1]) - c.outer_diameter_mm / 2
-        if uz0 < cz1 and uz1 > cz0 and radial < u.diameter_mm / 2:
-            out.append(f"analysis.uniform_voi: overlaps chamber {c.name}")
-        if a.spillover_voi.diameter_mm > c.diameter_mm or a.spillover_voi.length_mm > c.length_mm:
-            out.append(f"analysis.spillover_voi: larger than chamber {c.name} ({c.diameter_mm:g} x {c.length_mm:g} mm)")
-    r0, r1 = a.rod_profile_z_mm
-    for r in tpl.rods:
-        rz0, rz1 = r.centre_mm[2] - r.length_mm / 2, r.centre_mm[2] + r.length_mm / 2
-        if r0 < rz0 or r1 > rz1 or r0 >= r1:
-            out.append(f"analysis.rod_profile_z_mm: {r0:g}..{r1:g} mm is not within {r.name} ({rz0:g}..{rz1:g} mm)")
-    return out
 
 
 def _insert_surface_points(ins: Insert, n: int = 24) -> np.ndarray:

@@ -28,7 +28,7 @@ def bands_list(dirs: Optional[List[str]] = typer.Option(None, "--dir", help="Ext
         console.print("no band sets found", markup=False)
     for name, path in found.items():
         try:
-            bs = load_band_set_file(path, check=False)
+            bs = load_band_set_file(path)
             desc = f"{bs.title}  [template {bs.template}, {len(bs.entries)} limits"
             desc += f", {bs.activity_ratio:g}:1]" if bs.activity_ratio else "]"
         except PhantometryError as exc:
@@ -44,8 +44,10 @@ def bands_show(
 ) -> None:
     """Show a band set, validated against its template: source, notes and every limit."""
     from ..bands import load_band_set
+    from ..phantoms import check_band_file
 
     bs = load_band_set(name, dirs or [])
+    check_band_file(bs)
     if as_json:
         console.print_json(json.dumps(bs.summary()))
         return

@@ -6,7 +6,7 @@ import json
 import tempfile
 from datetime import datetime
 from pathlib import Path
-from typing import List, Optional
+from typing import TYPE_CHECKING, List, Optional
 
 import typer
 from rich.console import Console
@@ -16,6 +16,9 @@ from rich.table import Table
 from ..errors import InputError
 from ..results import CAUTION
 from . import app, templates_app
+
+if TYPE_CHECKING:  # pragma: no cover
+    from ..phantoms.base import Analysis
 
 console = Console(highlight=False)
 
@@ -41,39 +44,17 @@ def _fmt(v, nd=2) -> str:
         return str(v)
 
 
-def print_sphere_table(analysis) -> None:
-    """The terminal summary: one row per sphere, then background and insert."""
-    if not hasattr(analysis, "sphere_rows"):  # another phantom kind: its own table
-        cols, body = analysis.table()
-        t = Table(title=analysis.template.title, caption=CAUTION, caption_justify="left")
-        for c in cols:
-            t.add_column(c, no_wrap=True, justify="left" if c in ("ROI", "metric") else "right")
-        for row in body:
-            t.add_row(*row)
-        console.print(t)
-        for w in analysis.warnings:
-            console.print("[bold]WARNING[/bold]: " + escape(w))
-        return
-    t = Table(title=f"{analysis.template.title}", caption=CAUTION, caption_justify="left")
-    t.add_column("ROI", no_wrap=True, min_width=11)
-    t.add_column("fill", no_wrap=True)
-    for col in ("contrast %", "BV %", "RC max", "RC mean", "RC peak", "resid mm"):
-        t.add_column(col, justify="right")
-    for row in analysis.sphere_rows():
-        t.add_row(
-            row["roi"],
-            "hot" if row["hot"] else "cold",
-            _fmt(row.get("percent_contrast"), 1),
-            _fmt(row.get("background_variability_pct"), 2),
-            _fmt(row.get("rc_max"), 3),
-            _fmt(row.get("rc_mean"), 3),
-            _fmt(row.get("rc_peak"), 3),
-            _fmt(row.get("fit_residual_mm"), 2),
-        )
+def print_summary_table(analysis: Analysis) -> None:
+    """The terminal summary of an analysis (its kind's table), then its warnings."""
+    st = analysis.summary_table()
+    t = Table(title=st.title, caption=CAUTION, caption_justify="left")
+    for i, c in enumerate(st.columns):
+        t.add_column(c, no_wrap=True, justify="left" if i == 0 or c in ("fill", "metric") else "right", min_width=11 if i == 0 else None)
+    for row in st.rows:
+        t.add_row(*(escape(c) for c in row))
     console.print(t)
-    for r in analysis.rows:
-        if r.roi in ("background",) or r.metric == "lung_residual_pct":
-            console.print(f"  {r.roi:<12} {r.metric:<20} {_fmt(r.value, 3)} {r.unit}")
+    for line in st.lines:
+        console.print(line, markup=False)
     for w in analysis.warnings:
         console.print("[bold]WARNING[/bold]: " + escape(w))
 
@@ -129,7 +110,7 @@ def measure_cmd(
         seg=seg,
         bands=list(bands or []),
     )
-    print_sphere_table(analysis)
+    print_summary_table(analysis)
     _print_resolution_and_verdicts(analysis, bool(bands))
     console.print(f"wrote {out}/measurements.csv, measurements.json, overlay.png", markup=False)
     if (Path(out) / "recovery_curve.png").exists():
@@ -149,16 +130,17 @@ def measure_cmd(
             raise typer.Exit(3)
 
 
-def _print_resolution_and_verdicts(analysis, banded: bool) -> None:
+def _print_resolution_and_verdicts(analysis: Analysis, banded: bool) -> None:
     """The effective FWHM line and, with bands, a verdict table (one row per banded value)."""
     for r in analysis.rows:
         if r.roi == "phantom" and r.metric == "effective_fwhm_mm":
-            fit = getattr(analysis, "resolution", None)
-            ci = f" (95 % interval {fit.ci95_mm[0]:.2f}-{fit.ci95_mm[1]:.2f} mm)" if fit is not None else ""
+            fit = analysis.json_extras().get("effective_resolution") or {}
+            ci95 = fit.get("ci95_mm")
+            ci = f" (95 % interval {ci95[0]:.2f}-{ci95[1]:.2f} mm)" if ci95 else ""
             console.print(f"  effective FWHM {_fmt(r.value, 2)} +- {_fmt(r.uncertainty, 2)} mm{ci}", markup=False)
     if not banded:
         return
-    sets = list(getattr(analysis, "band_sets", []))
+    sets = list(analysis.band_sets)
     caption = "Limits inclusive; u = standard uncertainty (noise only)."
     if len(sets) > 1:
         caption += " verdict: the worst over the bands; each band's limits are in measurements.csv (note)."
@@ -272,7 +254,7 @@ def demo_cmd(
     spec = SynthSpec(voxel_mm=(2.0, 2.0, 2.0), psf_fwhm_mm=6.0, noise_cv=noise, shift_mm=(6.0, -4.0, 3.0), rotation_deg=(1.5, -1.0, 17.0), seed=7)
     paths = write_synthetic(synthesize(spec), base / "scan", "dicom")
     analysis = measure([str(paths["image"])], template="iec-body", fill=paths["fill"], out=base / "results")
-    print_sphere_table(analysis)
+    print_summary_table(analysis)
     console.print(f"results in {base / 'results'} (measurements.csv, measurements.json, overlay.png)", markup=False)
 
 
@@ -292,7 +274,7 @@ def templates_list(templates_dir: Optional[List[Path]] = typer.Option(None, "--t
 @templates_app.command("show")
 def templates_show(name: str, templates_dir: Optional[List[Path]] = typer.Option(None, "--templates")) -> None:
     """Print a template as validated (JSON)."""
-    from ..templates import load_template
+    from ..phantoms import load_template
 
     console.print_json(json.dumps(load_template(name, [str(d) for d in templates_dir or []]).summary()))
 
@@ -301,7 +283,8 @@ def templates_show(name: str, templates_dir: Optional[List[Path]] = typer.Option
 def templates_check(path: Path) -> None:
     """Validate a template file: schema and geometry (inserts inside, no overlaps, ROI clearances)."""
     from ..errors import TemplateError
-    from ..templates import check_template, load_template_file
+    from ..phantoms import check_template
+    from ..templates import load_template_file
 
     tpl = load_template_file(path)
     problems = check_template(tpl)

@@ -15,6 +15,8 @@ sphere : background activity concentration ratio.
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 
@@ -77,3 +79,24 @@ def lung_residual(lung_means: np.ndarray, background_mean: float) -> tuple[float
     """
     per = np.asarray(lung_means, float) / background_mean * 100.0
     return float(per.mean()), per
+
+
+# =========================================================================== standard uncertainties
+# First-order propagation of the ROI-mean uncertainties (JCGM 100:2008, the GUM, law of
+# propagation of uncertainty); the sphere ROI and the background ROIs are independent (at
+# least 15 mm apart, beyond the noise correlation).
+def u_percent_contrast_hot(c_h: float, u_h: float, c_b: float, u_b: float, ratio: float) -> float:
+    """``u(Q_H)`` in % for ``Q_H = (C_H / C_B - 1) / (ratio - 1) x 100`` (first order, GUM)."""
+    return 100.0 / (ratio - 1.0) * math.hypot(u_h / c_b, c_h * u_b / c_b**2)
+
+
+def u_percent_contrast_cold(c_c: float, u_c: float, c_b: float, u_b: float) -> float:
+    """``u(Q_C)`` in % for ``Q_C = (1 - C_C / C_B) x 100`` (first order, GUM)."""
+    return 100.0 * math.hypot(u_c / c_b, c_c * u_b / c_b**2)
+
+
+def u_background_variability(n_pct: float, k: int, c_b: float, u_b: float) -> float:
+    """``u(N)`` in % for ``N = SD / C_B x 100`` with ``u(SD) = SD / sqrt(2 (K - 1))``."""
+    if not math.isfinite(n_pct) or k < 2:
+        return float("nan")
+    return abs(n_pct) * math.sqrt(1.0 / (2.0 * (k - 1)) + (u_b / c_b) ** 2)

@@ -64,7 +64,7 @@ from ..errors import PhantomNotFound
 from ..volume import Volume
 
 if TYPE_CHECKING:  # pragma: no cover
-    from ..uncertainty import NoiseModel
+    from ..noise import NoiseModel
 
 #: FWHM / sigma of a Gaussian, 2 sqrt(2 ln 2).
 FWHM_PER_SIGMA = 2.0 * math.sqrt(2.0 * math.log(2.0))
@@ -86,9 +86,6 @@ __all__ = [
     "model_rc_peak",
     "fit_sphere_profiles",
     "fit_effective_fwhm",
-    "fit_body",
-    "body_spheres",
-    "insert_exclusions",
 ]
 
 
@@ -811,63 +808,3 @@ def fit_effective_fwhm(
     """
     fit = fit_sphere_profiles(volume, spheres, background_bq_ml, **kwargs)
     return fit.fwhm_mm, fit.ci95_mm[0], fit.ci95_mm[1]
-
-
-# =========================================================================== the body phantom
-#: Distance (mm) kept from inserts that are not fitted (the low-density cylinder).
-EXCLUSION_MARGIN_MM = 15.0
-
-
-def body_spheres(analysis) -> list[SphereObservation]:
-    """The spheres of a body image-quality analysis as fit inputs (hot: true concentration; cold: 0)."""
-    out = []
-    for s in analysis.template.spheres:
-        true = 0.0 if analysis.fill.is_cold(s.name) else float(analysis.true_insert_bq_ml[s.name])
-        out.append(SphereObservation(s.name, analysis.placement.insert_centre(s.name), float(s.diameter_mm), float(s.wall_mm), true))
-    return out
-
-
-def insert_exclusions(analysis, margin_mm: float = EXCLUSION_MARGIN_MM) -> list[Callable[[np.ndarray], np.ndarray]]:
-    """Exclusion tests (world points -> bool) for every insert that is not a fitted sphere."""
-    pl = analysis.placement
-    fns = []
-    for ins in analysis.template.inserts:
-        if ins.role == "sphere" and ins.shape == "sphere":
-            continue
-        c = pl.insert_centre(ins.name)
-        r_out = 0.5 * ins.outer_diameter_mm + margin_mm
-        if ins.shape == "sphere":
-            def fn(p, c=c, r_out=r_out):
-                rel = p - c
-                return np.einsum("...i,...i->...", rel, rel) < r_out * r_out
-        else:
-            a = pl.direction_to_world(ins.axis_unit)
-            half = 0.5 * float(ins.length_mm) + margin_mm
-
-            def fn(p, c=c, a=a, r_out=r_out, half=half):
-                rel = p - c
-                ax = rel @ a
-                rho2 = np.einsum("...i,...i->...", rel, rel) - ax * ax
-                return (rho2 < r_out * r_out) & (np.abs(ax) < half)
-        fns.append(fn)
-    return fns
-
-
-def fit_body(analysis, noise: "NoiseModel | None" = None, **kwargs) -> ResolutionFit:
-    """:func:`fit_sphere_profiles` on the spheres of a body image-quality analysis.
-
-    Sphere centres start at the placement's; the low-density insert (and any other
-    non-sphere insert) is kept out with a 15 mm margin; the background starts at the measured
-    C_B of the reference background ROIs.
-    """
-    ref = analysis.template.analysis.reference_background_diameter_mm
-    c_b = float(np.mean(analysis.background_roi_means[ref]))
-    return fit_sphere_profiles(
-        analysis.volume,
-        body_spheres(analysis),
-        c_b,
-        exclusions=insert_exclusions(analysis),
-        noise=noise,
-        where=analysis.volume.source,
-        **kwargs,
-    )

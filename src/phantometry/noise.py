@@ -64,10 +64,11 @@ from typing import TYPE_CHECKING, Any, Sequence
 
 import numpy as np
 from scipy import fft as sfft
-from scipy import ndimage, sparse
+from scipy import ndimage
 
 from .errors import PhantomNotFound
-from .threads import fft_workers, threads
+from .rois import box_world
+from .threads import fft_workers
 from .volume import Volume
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -83,14 +84,8 @@ __all__ = [
     "plane_voxel_weights",
     "level_map",
     "sd_standard_error",
-    "u_percent_contrast_hot",
-    "u_percent_contrast_cold",
     "u_ratio",
-    "u_background_variability",
     "simulate_noise",
-    "bootstrap_search_sd",
-    "SearchSimulation",
-    "body_uncertainties",
     "discs_variance",
     "weights_variance",
 ]
@@ -98,8 +93,6 @@ __all__ = [
 #: SD (voxels) of a Gaussian smoothing the image into the level map of the level law (0: none;
 #: smoothing mixes hot edges into cold ROIs and lowers hot peaks, and a noisy level is unbiased).
 LEVEL_SMOOTH_VOXELS = 0.0
-#: Noise draws of the RC max / mean / peak simulation (its SD known to about 1/sqrt(2 n), 7 %).
-BOOTSTRAP_DRAWS = 100
 #: Largest lag (mm) of the autocovariance kept.
 MAX_LAG_MM = 30.0
 #: Correlation below which the autocovariance is taken to have ended (along an axis): the
@@ -555,23 +548,6 @@ def u_ratio(a: float, u_a: float, b: float, u_b: float) -> float:
     return abs(a / b) * math.sqrt((u_a / a) ** 2 + (u_b / b) ** 2) if a != 0 else abs(u_a / b)
 
 
-def u_percent_contrast_hot(c_h: float, u_h: float, c_b: float, u_b: float, ratio: float) -> float:
-    """``u(Q_H)`` in % for ``Q_H = (C_H / C_B - 1) / (ratio - 1) x 100`` (first order, GUM)."""
-    return 100.0 / (ratio - 1.0) * math.hypot(u_h / c_b, c_h * u_b / c_b**2)
-
-
-def u_percent_contrast_cold(c_c: float, u_c: float, c_b: float, u_b: float) -> float:
-    """``u(Q_C)`` in % for ``Q_C = (1 - C_C / C_B) x 100`` (first order, GUM)."""
-    return 100.0 * math.hypot(u_c / c_b, c_c * u_b / c_b**2)
-
-
-def u_background_variability(n_pct: float, k: int, c_b: float, u_b: float) -> float:
-    """``u(N)`` in % for ``N = SD / C_B x 100`` with ``u(SD) = SD / sqrt(2 (K - 1))``."""
-    if not math.isfinite(n_pct) or k < 2:
-        return float("nan")
-    return abs(n_pct) * math.sqrt(1.0 / (2.0 * (k - 1)) + (u_b / c_b) ** 2)
-
-
 # =========================================================================== simulation
 #: Spectral components of the simulated noise left out: the weakest ones, together carrying
 #: at most this fraction of the noise power (the variance is exact to this fraction).
@@ -588,7 +564,7 @@ class _SpectralFilter:
     coef: np.ndarray  # float32 SD of the real and of the imaginary part of each kept component
 
 
-def _noise_filter(noise: NoiseModel, shape: tuple[int, int, int]) -> _SpectralFilter:
+def spectral_filter(noise: NoiseModel, shape: tuple[int, int, int]) -> _SpectralFilter:
     """The spectral filter of :func:`simulate_noise` for a box ``shape`` (kept per model and shape)."""
     cache = noise.__dict__.setdefault("_filters", {})
     if shape in cache:
@@ -633,12 +609,12 @@ def simulate_noise(noise: NoiseModel, shape: tuple[int, int, int], n_draws: int,
     at most :data:`SPECTRAL_TAIL` of the power, are not drawn. Background-level noise
     (variance ``C(0)``), single precision; scale by :meth:`NoiseModel.scale_at`.
     """
-    return np.moveaxis(_noise_fields(noise, shape, n_draws, rng), -1, 0)
+    return np.moveaxis(noise_fields(noise, shape, n_draws, rng), -1, 0)
 
 
-def _noise_fields(noise: NoiseModel, shape: tuple[int, int, int], n_draws: int, rng: np.random.Generator) -> np.ndarray:
+def noise_fields(noise: NoiseModel, shape: tuple[int, int, int], n_draws: int, rng: np.random.Generator) -> np.ndarray:
     """:func:`simulate_noise` with the draws on the last axis: shape ``(*shape, n_draws)``, a view."""
-    filt = _noise_filter(noise, tuple(shape))
+    filt = spectral_filter(noise, tuple(shape))
     n_half = int(np.prod(filt.half_shape))
     draws = rng.standard_normal((filt.kept.size, n_draws, 2), dtype=np.float32)
     draws *= filt.coef[:, None, None]
@@ -650,33 +626,6 @@ def _noise_fields(noise: NoiseModel, shape: tuple[int, int, int], n_draws: int, 
 
 
 # =========================================================================== ROI helpers
-def _centres_within(volume: Volume, centre_mm: np.ndarray, radius_mm: float) -> tuple[tuple[slice, slice, slice], np.ndarray]:
-    """Box and mask of the voxels whose centres lie within ``radius_mm`` of ``centre_mm``.
-
-    The same voxel set as the searches of :mod:`phantometry.rois` (``max_in_sphere``, the
-    isocontour VOI); when no centre lies within, the voxel holding ``centre_mm`` alone.
-    """
-    c = np.asarray(centre_mm, float)
-    c_idx = volume.world_to_index(c)
-    g = np.linalg.inv(volume.affine[:3, :3])[::-1]
-    half = radius_mm * np.linalg.norm(g, axis=1)
-    shape = np.array(volume.shape)
-    lo = np.maximum(np.ceil(c_idx - half - 0.5).astype(int), 0)
-    hi = np.minimum(np.floor(c_idx + half + 0.5).astype(int), shape - 1)
-    if np.all(hi >= lo):
-        box = tuple(slice(int(a), int(b) + 1) for a, b in zip(lo, hi))
-        kk, jj, ii = np.meshgrid(*[np.arange(a, b + 1, dtype=float) for a, b in zip(lo, hi)], indexing="ij")
-        rel = volume.index_to_world(np.stack([kk, jj, ii], axis=-1)) - c
-        mask = np.einsum("...i,...i->...", rel, rel) <= radius_mm * radius_mm
-        if mask.any():
-            return box, mask  # type: ignore[return-value]
-    nearest = np.clip(np.rint(c_idx).astype(int), 0, shape - 1)
-    return tuple(slice(int(n), int(n) + 1) for n in nearest), np.ones((1, 1, 1), bool)  # type: ignore[return-value]
-
-
-def _box_world(volume: Volume, box: tuple[slice, slice, slice]) -> np.ndarray:
-    kk, jj, ii = np.meshgrid(*[np.arange(s.start, s.stop, dtype=float) for s in box], indexing="ij")
-    return volume.index_to_world(np.stack([kk, jj, ii], axis=-1))
 
 
 def weights_variance(
@@ -712,7 +661,7 @@ def _scaled_quadratic_form(noise: NoiseModel, volume: Volume, box, a: np.ndarray
     if not heteroscedastic:  # (large boxes: the background ROI sets) in single precision
         return max(noise.quadratic_form(a, single_precision=True), 0.0)
     if level_fn is not None:  # a noise-free level is known: the exact form with s_x s_y
-        return max(noise.quadratic_form(a * noise.scale_at(level_fn(_box_world(volume, box)))), 0.0)
+        return max(noise.quadratic_form(a * noise.scale_at(level_fn(box_world(volume, box)))), 0.0)
     from .fftconv import fft_convolve
 
     field = fft_convolve(a, noise.autocov_bq2_ml2, mode="same")
@@ -771,427 +720,6 @@ def discs_variance(
     return _scaled_quadratic_form(noise, volume, box, a, heteroscedastic, level_fn)
 
 
-class _Target:
-    """One sphere of a search simulation: its box, masks, noise-free model and peak matrix."""
-
-    def __init__(self, noise: NoiseModel, volume: Volume, centre_mm: np.ndarray, diameter_mm: float, model_fn, peak_diameter_mm: float):
-        from .rois import sphere_weights
-
-        r = 0.5 * float(diameter_mm)
-        r_peak = 0.5 * float(peak_diameter_mm)
-        step = float(np.max(volume.spacing_mm))
-        c = np.asarray(centre_mm, float)
-        box, _ = _centres_within(volume, c, r + r_peak + 2.0 * step)
-        world = _box_world(volume, box)
-        rel = world - c
-        dist2 = np.einsum("...i,...i->...", rel, rel)
-        search = dist2 <= r * r
-        grown = dist2 <= (r + step) ** 2
-        if not search.any():  # no voxel centre within the sphere: the nearest voxel (as rois does)
-            nearest = np.unravel_index(int(np.argmin(dist2)), dist2.shape)
-            search = np.zeros(dist2.shape, bool)
-            search[nearest] = True
-            grown = grown | search
-        model = level_map(volume, box) if model_fn is None else np.asarray(model_fn(world), float)
-        self.scale = noise.scale_at(model).astype(np.float32)
-        self.model = model.astype(np.float32)
-        self.shape = shape = np.array(search.shape)
-        # the peak: partial-volume weights of the peak sphere about a voxel centre, as a sparse
-        # (candidates x box voxels) matrix of the 1 mL means, so only the candidates are computed
-        mid = np.array(volume.shape) // 2
-        kw = sphere_weights(volume, volume.index_to_world(mid.astype(float)), peak_diameter_mm)
-        kern = kw.weights.astype(np.float64)
-        lo_k = mid - np.array([sl.start for sl in kw.box])  # the kernel's centre voxel in its box
-        hi_k = np.array(kern.shape) - 1 - lo_k
-        valid = np.zeros(search.shape, bool)
-        valid[tuple(slice(int(l), int(n - h)) for l, h, n in zip(lo_k, hi_k, shape))] = True
-        peak_cand = search & valid  # the whole peak sphere inside the box
-        if not peak_cand.any():
-            peak_cand = search  # (weights beyond the box count as zero)
-        offsets = np.argwhere(kern > 0) - lo_k  # in C order, so each row's columns ascend
-        kvals = (kern[kern > 0] / float(kern.sum())).astype(np.float32)
-        cand = np.argwhere(peak_cand).astype(np.int32)
-        strides = (int(shape[1] * shape[2]), int(shape[2]), 1)
-        if peak_cand is search and not (search & valid).any():
-            # some peak spheres reach beyond the box: keep only their entries inside it
-            inside = np.ones((len(cand), len(offsets)), bool)
-            for axis in range(3):  # three axes, not voxels
-                q = cand[:, None, axis] + offsets[None, :, axis]
-                inside &= (q >= 0) & (q < shape[axis])
-            counts = inside.sum(axis=1)
-        else:
-            inside = None
-            counts = np.full(len(cand), len(offsets))
-        # built directly in compressed-row form with 32-bit indices: no coordinate-list copy
-        cols = (cand @ np.array(strides, np.int32))[:, None] + (offsets @ np.array(strides))[None, :].astype(np.int32)
-        indptr = np.zeros(len(cand) + 1, np.int32)
-        np.cumsum(counts, out=indptr[1:])
-        if inside is None:
-            data = np.broadcast_to(kvals, cols.shape).ravel()
-            indices = cols.ravel()
-        else:
-            data = np.broadcast_to(kvals, cols.shape)[inside]
-            indices = cols[inside]
-        del cols
-        self.peak_matrix = sparse.csr_matrix((data, indices, indptr), shape=(len(cand), search.size))
-        # the max and the isocontour VOI look only within the grown sphere: its bounding box
-        nz = np.argwhere(grown)
-        self.crop = tuple(slice(int(l), int(h) + 1) for l, h in zip(nz.min(axis=0), nz.max(axis=0)))
-        self.grown_c = grown[self.crop]
-        self.search_idx = np.flatnonzero(search[self.crop])
-
-    def statistics(self, field: np.ndarray, background: float, fraction: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """Max, isocontour mean and peak (Bq/mL) of every draw; ``field`` (*box, n) noise at background level."""
-        n = field.shape[-1]
-        structure = np.zeros((3, 3, 3, 3), bool)
-        structure[..., 1] = True  # the 26-neighbourhood of a voxel, within its own draw (last axis)
-        s0, s1, s2 = (int(v) for v in self.shape)
-        sims = field[:s0, :s1, :s2] * self.scale[..., None]  # contiguous; draws on the last axis
-        sims += self.model[..., None]
-        peaks = np.asarray(self.peak_matrix @ sims.reshape(-1, n)).max(axis=0)
-        sub = np.ascontiguousarray(sims[self.crop])
-        del sims
-        sub_flat = sub.reshape(-1, n)
-        draw = np.arange(n)
-        arg = self.search_idx[np.argmax(sub_flat[self.search_idx], axis=0)]
-        vmax = sub_flat[arg, draw]
-        thr = (background + fraction * (vmax - background)).astype(np.float32)
-        # every draw labelled at once: 26-connected within a draw, never across
-        labels, _ = ndimage.label(self.grown_c[..., None] & (sub >= thr), structure=structure)
-        labels = labels.reshape(-1, n)
-        voi = labels == labels[arg, draw][None]
-        del labels
-        sums = np.where(voi, sub_flat, np.float32(0)).sum(axis=0, dtype=np.float64)
-        return vmax.astype(np.float64), sums / voi.sum(axis=0), peaks.astype(np.float64)
-
-
-class SearchSimulation:
-    """The RC max / mean / peak simulation of several spheres (see :func:`bootstrap_search_sd`).
-
-    All spheres share one stack of noise draws on a box large enough for the largest (a
-    sub-box of a stationary field has the same law), so the synthesis is paid once. The draws
-    come in chunks, each with its own seed derived from ``seed`` and the chunk number:
-    :meth:`run_chunk` may run in any thread and order, and the results do not depend on it.
-    """
-
-    def __init__(
-        self,
-        noise: NoiseModel,
-        volume: Volume,
-        spheres: Sequence[tuple[np.ndarray, float]],
-        background_bq_ml: float,
-        model_fn=None,
-        *,
-        fraction: float = 0.5,
-        peak_diameter_mm: float = 12.41,
-        n_draws: int = 200,
-        seed: int = 0,
-        chunks_at_least: int = 4,
-    ):
-        if not spheres:
-            raise ValueError("SearchSimulation: no spheres")
-        self.noise = noise
-        self.background = float(background_bq_ml)
-        self.fraction = float(fraction)
-        self.seed = int(seed)
-        self.targets = [_Target(noise, volume, c, d, model_fn, peak_diameter_mm) for c, d in spheres]
-        self.shape = tuple(int(v) for v in np.max([t.shape for t in self.targets], axis=0))
-        # draws per chunk: at most 2 million voxels of the synthesis grid, and an eighth of the
-        # image, so the simulation's working memory stays below the volume's (the spectra and
-        # the per-sphere arrays are smaller than the grid; measured by
-        # benchmarks/bench_compare.py); at least ``chunks_at_least`` chunks, so threads can
-        # share the work
-        budget = min(2_000_000, max(volume.data.size // 8, 50_000))
-        size = int(np.prod(_noise_filter(noise, self.shape).size))
-        per_chunk = max(1, min(int(budget // size), -(-int(n_draws) // max(1, int(chunks_at_least)))))
-        self.chunks = [(i, min(per_chunk, n_draws - start)) for i, start in enumerate(range(0, int(n_draws), per_chunk))]
-
-    def run_chunk(self, index: int, n: int) -> list[tuple[np.ndarray, np.ndarray, np.ndarray]]:
-        """(max, mean, peak) per sphere for the ``n`` draws of chunk ``index``."""
-        rng = np.random.default_rng([self.seed, int(index)])
-        field = _noise_fields(self.noise, self.shape, n, rng)
-        return [t.statistics(field, self.background, self.fraction) for t in self.targets]
-
-    def standard_deviations(self, results: Sequence[list[tuple[np.ndarray, np.ndarray, np.ndarray]]]) -> list[dict[str, float]]:
-        """SD over all draws of the chunks' results (in chunk order), per sphere."""
-        out = []
-        for k in range(len(self.targets)):
-            cols = [np.concatenate([chunk[k][j] for chunk in results]) for j in range(3)]
-            out.append({key: float(np.std(col, ddof=1)) for key, col in zip(("max", "mean", "peak"), cols)})
-        return out
-
-
-def bootstrap_search_sd(
-    noise: NoiseModel,
-    volume: Volume,
-    centre_mm: np.ndarray,
-    diameter_mm: float,
-    background_bq_ml: float,
-    model_fn=None,
-    *,
-    fraction: float = 0.5,
-    peak_diameter_mm: float = 12.41,
-    n_draws: int = 200,
-    seed: int = 0,
-) -> dict[str, float]:
-    """SDs (Bq/mL) of the hottest voxel, the isocontour VOI mean and the peak, by simulation.
-
-    The propagation of distributions by Monte Carlo (JCGM 101:2008, GUM Supplement 1) for
-    the three statistics that *search* the image (extreme values, for which linear
-    propagation fails): ``n_draws`` noise fields with the model's autocovariance
-    (:func:`simulate_noise`), scaled by the level law, are added to the noise-free image
-    ``model_fn(points_mm) -> Bq/mL`` (the fitted blurred-sphere model; None: the image
-    itself, :func:`level_map`), and on each draw the searches of
-    :mod:`phantometry.rois` are repeated on the same voxels: the hottest voxel centred within
-    the sphere (``max_in_sphere``), the 26-connected VOI ``>= B + fraction (max - B)`` within
-    the sphere grown by one voxel that holds it (``isocontour_mean``), and the highest mean
-    of a ``peak_diameter_mm`` sphere centred on a voxel within the sphere (``peak_search``,
-    here a sparse matrix of the candidates' 1 mL means).
-    ``B`` is held at ``background_bq_ml``. The draws use ``seed``, so results are
-    reproducible. Several spheres at once: :class:`SearchSimulation`.
-
-    Returns
-    -------
-    dict with keys ``max``, ``mean``, ``peak``: SD over the draws, Bq/mL.
-    """
-    sim = SearchSimulation(noise, volume, [(np.asarray(centre_mm, float), float(diameter_mm))], background_bq_ml, model_fn,
-                           fraction=fraction, peak_diameter_mm=peak_diameter_mm, n_draws=n_draws, seed=seed)
-    return sim.standard_deviations([sim.run_chunk(i, n) for i, n in sim.chunks])[0]
-
-
 # =========================================================================== the body phantom
-def body_uncertainties(
-    analysis: Any,
-    noise: NoiseModel,
-    *,
-    resolution_fit: Any = None,
-    overrides: dict[str, np.ndarray] | None = None,
-    n_draws: int | None = None,
-) -> dict[tuple[str, str], float]:
-    """Standard uncertainty of every ROI-mean based metric of a body image-quality analysis.
-
-    Parameters
-    ----------
-    analysis : :class:`phantometry.measure.BodyAnalysis` (rows, planes, placement, template,
-        fill, volume); the ROIs are rebuilt exactly as :func:`phantometry.measure.measure_volume`
-        placed them.
-    noise : the image's noise model (:func:`estimate_noise`).
-    resolution_fit : the blurred-sphere fit (:func:`phantometry.metrics.resolution.fit_body`);
-        its model image is the noise-free image of the RC max bootstrap (else the image
-        smoothed by one voxel).
-    overrides : the manual insert centres the analysis used (the low-density insert's ROI
-        follows its override as in the measurement).
-    n_draws : noise draws of the RC max / mean / peak simulation (default
-        :data:`BOOTSTRAP_DRAWS`).
-
-    Returns
-    -------
-    dict (roi, metric) -> standard uncertainty in the metric's unit (see the module notes).
-    """
-    n_draws = BOOTSTRAP_DRAWS if n_draws is None else int(n_draws)
-    vol = analysis.volume
-    tpl = analysis.template
-    fill = analysis.fill
-    pl = analysis.placement
-    a = tpl.analysis
-    out: dict[tuple[str, str], float] = {}
-    ref = a.reference_background_diameter_mm
-    c_b = {d: float(np.mean(means)) for d, means in analysis.background_roi_means.items()}
-    cb_ref = c_b[ref]
-    model_fn = resolution_fit.model_at if resolution_fit is not None else None
-    # ---- the RC searches by simulation, started first: its chunks of draws in threads (numpy
-    # and the FFTs release the interpreter lock) while this thread propagates the ROI means
-    # below; each chunk has its own seed, so results do not depend on the threads
-    searches: list[tuple[str, np.ndarray, float, float]] = []
-    noise_free = noise.sd_bq_ml <= 1e-6 * max(noise.background_bq_ml, 1e-12)
-    for s in tpl.spheres:
-        true = 0.0 if fill.is_cold(s.name) else float(analysis.true_insert_bq_ml[s.name])
-        if true <= 0:
-            continue
-        if noise_free:
-            # no measurable noise (a noise-free image: float32 rounding only): nothing to simulate
-            out[(s.name, "rc_max")] = out[(s.name, "rc_mean")] = out[(s.name, "rc_peak")] = 0.0
-        else:
-            searches.append((s.name, pl.insert_centre(s.name), float(s.diameter_mm), true))
-    def make_simulation() -> SearchSimulation:
-        return SearchSimulation(noise, vol, [(c, d) for _, c, d, _ in searches], cb_ref, model_fn, fraction=a.isocontour_fraction,
-                                peak_diameter_mm=a.peak_diameter_mm, n_draws=n_draws, seed=_seed("rc searches"))
-
-    sim = None
-    chunks: list = []
-    if searches and fft_workers() > 1:
-        from concurrent.futures import ThreadPoolExecutor
-
-        sim = make_simulation()
-
-        def run(chunk: tuple[int, int]):
-            with threads(1):
-                return sim.run_chunk(*chunk)  # type: ignore[union-attr]
-
-        with ThreadPoolExecutor(min(fft_workers(), len(sim.chunks))) as pool:
-            futures = [pool.submit(run, chunk) for chunk in sim.chunks]
-            try:
-                _roi_mean_uncertainties(analysis, noise, out, c_b, resolution_fit, overrides)
-                chunks = [f.result() for f in futures]
-            finally:
-                for f in futures:
-                    f.cancel()
-    else:
-        # one thread: one step after the other, so their working memories never add up
-        _roi_mean_uncertainties(analysis, noise, out, c_b, resolution_fit, overrides)
-        if searches:
-            sim = make_simulation()
-            chunks = [sim.run_chunk(*chunk) for chunk in sim.chunks]
-    sds_all = sim.standard_deviations(chunks) if sim is not None else []
-    results = [(name, true, sds) for (name, _, _, true), sds in zip(searches, sds_all)]
-    for name, true, sds in results:
-        out[(name, "rc_max")] = sds["max"] / true
-        out[(name, "rc_mean")] = sds["mean"] / true
-        out[(name, "rc_peak")] = sds["peak"] / true
-    return out
 
 
-def _roi_mean_uncertainties(
-    analysis: Any,
-    noise: NoiseModel,
-    out: dict[tuple[str, str], float],
-    c_b: dict[float, float],
-    resolution_fit: Any,
-    overrides: dict[str, np.ndarray] | None,
-) -> None:
-    """The ROI-mean based uncertainties of :func:`body_uncertainties` (first-order propagation), into ``out``.
-
-    ``c_b``: background ROI set mean per diameter, Bq/mL.
-    """
-    part, u_cb = _disc_uncertainties(analysis, noise)
-    out.update(part)
-    _lung_uncertainty(analysis, noise, out, c_b, u_cb, resolution_fit, overrides)
-
-
-def _disc_uncertainties(analysis: Any, noise: NoiseModel) -> tuple[dict[tuple[str, str], float], dict[float, float]]:
-    """The uncertainties that need the noise model only: background ROI sets and spheres.
-
-    Returns the (roi, metric) -> uncertainty entries and the standard uncertainty (Bq/mL) of
-    each background ROI set mean, by diameter. Independent of the resolution fit.
-    """
-    from .rois import disc_means, sample_plane
-
-    out: dict[tuple[str, str], float] = {}
-    c_b = {d: float(np.mean(means)) for d, means in analysis.background_roi_means.items()}
-    vol = analysis.volume
-    tpl = analysis.template
-    fill = analysis.fill
-    pl = analysis.placement
-    a = tpl.analysis
-    bg = tpl.background
-    u_dir, v_dir = pl.rotation[:, 0], pl.rotation[:, 1]
-    values = {(r.roi, r.metric): r.value for r in analysis.rows}
-    # ---- background ROI sets: the mean of K ROI means per size (level = background)
-    centres_xy = np.asarray(bg.centres_xy_mm, float)
-    discs_by_offset = []
-    for off in bg.slice_offsets_mm:
-        plane = analysis.planes[off]
-        uv = plane.world_to_uv(pl.to_world(np.c_[centres_xy, np.full(len(centres_xy), off)]))
-        discs_by_offset.extend((plane, c) for c in uv)
-    u_cb: dict[float, float] = {}
-    for d in analysis.background_roi_means:
-        u_cb[d] = math.sqrt(discs_variance(noise, vol, discs_by_offset, d, heteroscedastic=False))
-    ref = a.reference_background_diameter_mm
-    cb_ref, ucb_ref = c_b[ref], u_cb[ref]
-    # ---- spheres
-    spacing_max = float(np.max(vol.spacing_mm))
-    for s in tpl.spheres:
-        name = s.name
-        centre = pl.insert_centre(name)
-        sp = sample_plane(vol, centre, u_dir, v_dir, s.diameter_mm / 2 + 4 * spacing_max)
-        uv = sp.world_to_uv(centre[None])
-        c_sphere = float(disc_means(sp, uv, s.diameter_mm)[0])
-        u_sphere = math.sqrt(discs_variance(noise, vol, [(sp, uv[0])], s.diameter_mm, heteroscedastic=True))
-        cb = c_b.get(s.diameter_mm, cb_ref)
-        ucb = u_cb.get(s.diameter_mm, ucb_ref)
-        hot = not fill.is_cold(name)
-        if hot:
-            ratio = float(fill.activity_ratio(name))
-            out[(name, "percent_contrast")] = u_percent_contrast_hot(c_sphere, u_sphere, cb, ucb, ratio)
-        else:
-            out[(name, "percent_contrast")] = u_percent_contrast_cold(c_sphere, u_sphere, cb, ucb)
-        n_pct = values.get((name, "background_variability_pct"), math.nan)
-        if s.diameter_mm in analysis.background_roi_means:
-            k = len(analysis.background_roi_means[s.diameter_mm])
-            out[(name, "background_variability_pct")] = u_background_variability(n_pct, k, cb, ucb)
-    return out, u_cb
-
-
-def _lung_uncertainty(
-    analysis: Any,
-    noise: NoiseModel,
-    out: dict[tuple[str, str], float],
-    c_b: dict[float, float],
-    u_cb: dict[float, float],
-    resolution_fit: Any,
-    overrides: dict[str, np.ndarray] | None,
-) -> None:
-    """Low-density insert residual and background level uncertainties, into ``out``."""
-    from .rois import disc_means, sample_plane
-
-    vol = analysis.volume
-    tpl = analysis.template
-    pl = analysis.placement
-    a = tpl.analysis
-    bg = tpl.background
-    u_dir, v_dir, axis = pl.rotation[:, 0], pl.rotation[:, 1], pl.rotation[:, 2]
-    values = {(r.roi, r.metric): r.value for r in analysis.rows}
-    ref = a.reference_background_diameter_mm
-    cb_ref, ucb_ref = c_b[ref], u_cb[ref]
-    # ---- low-density insert
-    if a.lung_insert is not None and (a.lung_insert, "lung_residual_pct") in values:
-        lung = tpl.insert(a.lung_insert)
-        offsets = a.lung_slice_offsets_mm or bg.slice_offsets_mm
-        half_width = tpl.body.half_extent_xy_mm + 10
-        discs = []
-        lung_vals = []
-        for off in offsets:
-            plane = analysis.planes.get(off)
-            if plane is None:
-                plane = sample_plane(vol, pl.to_world([0.0, 0.0, off]), u_dir, v_dir, half_width)
-            lc = pl.to_world([lung.centre_mm[0], lung.centre_mm[1], off])
-            if a.lung_insert in (overrides or {}):
-                lc = pl.insert_centre(lung.name) + (off - float(pl.to_template(pl.insert_centre(lung.name))[2])) * axis
-            uv = plane.world_to_uv(lc[None])
-            lung_vals.append(float(disc_means(plane, uv, a.lung_roi_diameter_mm)[0]))
-            discs.append((plane, uv[0]))
-        c_lung = float(np.mean(lung_vals))
-        level_fn = None
-        if resolution_fit is not None and lung.shape == "cylinder":
-            level_fn = _cylinder_level(resolution_fit, pl.insert_centre(lung.name), pl.direction_to_world(lung.axis_unit), 0.5 * lung.outer_diameter_mm)
-        u_lung = math.sqrt(discs_variance(noise, vol, discs, a.lung_roi_diameter_mm, heteroscedastic=True, level_fn=level_fn))
-        out[(a.lung_insert, "lung_residual_pct")] = 100.0 * u_ratio(c_lung, u_lung, cb_ref, ucb_ref)
-    # ---- background level and calibration check
-    out[("background", "mean_bq_ml")] = ucb_ref
-    if analysis.true_background_bq_ml > 0:
-        out[("background", "activity_recovery")] = ucb_ref / analysis.true_background_bq_ml
-
-
-def _cylinder_level(fit: Any, centre: np.ndarray, axis: np.ndarray, radius_mm: float):
-    """Noise-free level inside a long cold cylinder: background minus the blurred cylinder.
-
-    ``b (1 - g(rho))`` with ``g`` the blurred disc profile at the fitted effective SD
-    (:func:`phantometry.metrics.resolution.blurred_disc_profile`); the spill-in a cold insert
-    receives from the background around it.
-    """
-    from .metrics.resolution import blurred_disc_profile
-
-    a = np.asarray(axis, float) / np.linalg.norm(axis)
-
-    def level(points: np.ndarray) -> np.ndarray:
-        rel = np.asarray(points, float) - centre
-        ax = rel @ a
-        rho = np.sqrt(np.maximum(np.einsum("...i,...i->...", rel, rel) - ax * ax, 0.0))
-        return fit.background_bq_ml * (1.0 - blurred_disc_profile(rho, radius_mm, fit.sigma_eff_mm))
-
-    return level
-
-
-def _seed(name: str) -> int:
-    """A fixed seed per ROI name (reproducible bootstrap draws)."""
-    return int.from_bytes(name.encode("utf-8")[:8].ljust(8, b"\0"), "little") % (2**32)

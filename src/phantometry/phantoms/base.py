@@ -1,0 +1,445 @@
+"""One shape for every phantom analysis.
+
+A *phantom kind* (one module in :mod:`phantometry.phantoms`, named by a template's
+``analysis.kind``) knows three things: the options its templates carry, how to analyse a
+volume (locate -> ROIs -> metrics -> :class:`~phantometry.results.Measurement` rows), and how
+its result describes itself to the outputs. The outputs (terminal table, JSON, pictures,
+report, DICOM SEG, ledger, comparison) only ever talk to the types of this module, so a new
+kind is one new module plus a template.
+
+Types
+-----
+:class:`Analysis`
+    Everything measured on one scan: the volume, template, fill record, placement, rows,
+    warnings, band sets applied, and the output hooks (:meth:`Analysis.summary_table`,
+    :meth:`Analysis.overlay`, :meth:`Analysis.pictures`, :meth:`Analysis.json_extras`,
+    :meth:`Analysis.roi_masks`).
+:class:`PhantomKind`
+    The plug-in: ``name``, ``Options`` (a pydantic model of the template's ``analysis:``
+    block), :meth:`PhantomKind.check_template`, :meth:`PhantomKind.known_metrics`,
+    :meth:`PhantomKind.analyse`, :meth:`PhantomKind.comparison_charts`.
+:class:`Overlay`, :class:`View`, :class:`Shape`
+    What an overlay picture shows, in plane coordinates (mm), drawn by
+    :func:`phantometry.figures.overlay_picture` the same way for every kind.
+"""
+
+from __future__ import annotations
+
+import math
+from abc import ABC, abstractmethod
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import TYPE_CHECKING, Any, Callable, ClassVar, Literal, Sequence
+
+import numpy as np
+from pydantic import BaseModel, ConfigDict, ValidationError
+
+from ..errors import FillRecordError, InputError, TemplateError
+from ..fill import FillRecord
+from ..locate import Placement
+from ..results import Measurement
+from ..rois import PlaneImage
+from ..templates import Template
+from ..volume import Volume
+
+if TYPE_CHECKING:  # pragma: no cover
+    from ..bands import BandSet
+    from ..noise import NoiseModel
+
+#: Relative deviation of the measured background (or reference region) from the fill record
+#: that raises a warning: a calibration check (common practice: +-10 %).
+CALIBRATION_WARNING_FRACTION = 0.10
+
+
+class KindOptions(BaseModel):
+    """Base of every kind's ``analysis:`` options (strict: unknown keys are refused)."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    kind: str
+
+
+# ===================================================================================== outputs
+ShapeRole = Literal["hot", "cold", "background", "insert", "voi", "peak", "search", "guide"]
+
+
+@dataclass
+class Shape:
+    """One thing drawn on a view, in the view's plane coordinates (mm).
+
+    Attributes
+    ----------
+    kind : ``circle`` (``centre_uv``, ``size_mm`` = diameter), ``rect`` (``centre_uv``,
+        ``size_mm`` = (width, height)), ``marker`` (``centre_uv``), ``hline`` (a line across
+        the view at ``centre_uv[1]``), ``contour`` (``points_uv`` (n, 2), a closed outline).
+    role : what it is; the picture's colour and line style follow from it.
+    label : text drawn beside it, if any.
+    """
+
+    kind: Literal["circle", "rect", "marker", "hline", "contour"]
+    role: ShapeRole
+    centre_uv: np.ndarray | None = None
+    size_mm: float | tuple[float, float] | None = None
+    points_uv: np.ndarray | None = None
+    label: str | None = None
+    label_below: bool = False
+
+
+@dataclass
+class View:
+    """A plane of the image with shapes drawn on it."""
+
+    plane: PlaneImage
+    title: str
+    shapes: list[Shape] = field(default_factory=list)
+    #: display range upper limit (Bq/mL); None: a high percentile of the plane
+    vmax: float | None = None
+
+
+@dataclass
+class Overlay:
+    """An overlay picture: one or more views with a title line."""
+
+    views: list[View]
+    title: str
+    width_ratios: list[float] | None = None
+
+
+@dataclass
+class SummaryTable:
+    """A table of the key results (terminal and report): strings, already formatted."""
+
+    title: str
+    columns: list[str]
+    rows: list[list[str]]
+    #: lines printed after the table (e.g. background level, insert residual)
+    lines: list[str] = field(default_factory=list)
+
+
+@dataclass
+class ResultGrid:
+    """A table of results for the report: one row per ROI, one column per metric; every cell
+    shows the value with its standard uncertainty and its verdict.
+
+    Attributes
+    ----------
+    table_id : HTML id of the table.
+    caption : what the table shows.
+    rois : (roi, descriptive cells) per row, e.g. ``("sphere_10mm", ["10", "hot"])``.
+    descriptor_titles : titles of the descriptive cells.
+    metrics : (metric, column title) per column.
+    """
+
+    table_id: str
+    caption: str
+    rois: list[tuple[str, list[str]]]
+    descriptor_titles: list[str]
+    metrics: list[tuple[str, str]]
+
+
+@dataclass
+class RoiKindMask:
+    """One segment of a DICOM SEG export: a binary mask (z, y, x) of every ROI of one kind.
+
+    Attributes
+    ----------
+    kind : short identifier (``hot_spheres``), the segment's tracking ID.
+    label : the segment label (``hot spheres``).
+    mask : bool (z, y, x) on the volume grid.
+    roi_names : the ROIs it holds.
+    segment_type : the segmented property type, a DCM code meaning of DICOM PS3.16 that
+        highdicom's ``codes.DCM`` knows (``Sphere``, ``Background``, ``Phantom``).
+    """
+
+    kind: str
+    label: str
+    mask: np.ndarray
+    roi_names: list[str]
+    segment_type: str = "Phantom"
+
+    @property
+    def voxel_count(self) -> int:
+        return int(np.count_nonzero(self.mask))
+
+
+@dataclass
+class AnalysisSettings:
+    """Options of the analysis step that are not in the template.
+
+    Attributes
+    ----------
+    uncertainties : estimate the image noise and give every metric it can its standard
+        uncertainty.
+    resolution : fit the effective resolution (kinds that have a model for it).
+    variance_power : ``p`` of the noise level law ``var ~ level^p`` (1: Poisson-like).
+    """
+
+    uncertainties: bool = True
+    resolution: bool = True
+    variance_power: float = 1.0
+
+
+@dataclass
+class Analysis(ABC):
+    """Everything measured on one scan, and how it shows itself (base of every kind's result).
+
+    Attributes
+    ----------
+    volume, template, fill, placement : the inputs and where the phantom was found.
+    rows : the measurements (the one currency of every output).
+    true_background_bq_ml : the background (or uniform solution) at the image reference time.
+    true_insert_bq_ml : insert name -> true concentration at the reference time.
+    warnings : everything the user must know about these numbers.
+    band_sets : acceptance band sets applied to the rows (:func:`phantometry.measure.judge`).
+    noise : the image-noise model behind the uncertainties, when estimated.
+    """
+
+    kind: ClassVar[str] = ""
+
+    volume: Volume
+    template: Template
+    fill: FillRecord
+    placement: Placement
+    rows: list[Measurement]
+    true_background_bq_ml: float
+    true_insert_bq_ml: dict[str, float] = field(default_factory=dict)
+    warnings: list[str] = field(default_factory=list)
+    band_sets: list["BandSet"] = field(default_factory=list)
+    noise: "NoiseModel | None" = None
+
+    # ---------------------------------------------------------------- queries
+    def value(self, roi: str, metric: str) -> float | None:
+        """The value of one row, or None when the analysis has no such row."""
+        for r in self.rows:
+            if r.roi == roi and r.metric == metric:
+                return r.value
+        return None
+
+    def values(self) -> dict[tuple[str, str], float]:
+        return {(r.roi, r.metric): r.value for r in self.rows}
+
+    # ---------------------------------------------------------------- output hooks
+    def summary_table(self) -> SummaryTable:
+        """The key results as a table; the default lists every row that is not a position."""
+        rows = [[r.roi, r.metric, fmt_number(r.value, r.unit)] for r in self.rows if not r.metric.startswith("centre_")]
+        return SummaryTable(self.template.title, ["ROI", "metric", "value"], rows)
+
+    def result_grids(self) -> list[ResultGrid]:
+        """Tables of the report; the default: one row per ROI, one column per metric (positions left out)."""
+        rois: list[str] = []
+        metrics: list[str] = []
+        for r in self.rows:
+            if r.metric.startswith("centre_"):
+                continue
+            if r.roi not in rois:
+                rois.append(r.roi)
+            if r.metric not in metrics:
+                metrics.append(r.metric)
+        return [ResultGrid("results", "Results by ROI; values &plusmn; standard uncertainty.", [(r, []) for r in rois], [],
+                           [(m, m) for m in metrics])]
+
+    @abstractmethod
+    def overlay(self) -> Overlay:
+        """What the overlay picture shows (every kind draws its ROIs on its own planes)."""
+
+    def pictures(self) -> dict[str, Callable[[Path], Path]]:
+        """Extra pictures of the result folder: file name -> function drawing it to a path."""
+        return {}
+
+    def json_extras(self) -> dict[str, Any]:
+        """Kind-specific sections of ``measurements.json`` (added after the common ones)."""
+        return {"noise": self.noise.as_dict() if self.noise is not None else None}
+
+    def roi_masks(self) -> list[RoiKindMask]:
+        """Masks of every ROI kind for a DICOM SEG export (kinds with ``supports_seg``)."""
+        raise InputError(f"template {self.template.name}: ROI export as DICOM SEG is not available for analysis kind {self.kind}")
+
+    def key_metrics(self) -> list[tuple[str, str]]:
+        """(roi, metric) pairs that characterise a setting when comparing without bands."""
+        return [(r.roi, r.metric) for r in self.rows if not r.metric.startswith("centre_")]
+
+
+@dataclass
+class Chart:
+    """A chart of a comparison: ``function(*args, path, **kwargs)`` draws it (a module-level
+    function, so a worker process can draw it)."""
+
+    file_name: str
+    caption: str
+    function: Callable[..., Path]
+    args: tuple = ()
+    kwargs: dict[str, Any] = field(default_factory=dict)
+
+    def draw(self, folder: Path) -> Path:
+        return self.function(*self.args, folder / self.file_name, **self.kwargs)
+
+
+@dataclass
+class ComparedSetting:
+    """One measured setting of a comparison, as the kind's comparison charts see it."""
+
+    number: int
+    label: str
+    rows: Sequence[Measurement]
+
+
+class PhantomKind(ABC):
+    """A phantom analysis kind (subclass per module; one instance, ``KIND``, registered).
+
+    Subclasses set :attr:`name` (the templates' ``analysis.kind``), :attr:`Options` and
+    :attr:`summary`, and implement :meth:`analyse`.
+    """
+
+    name: ClassVar[str] = ""
+    summary: ClassVar[str] = ""
+    Options: ClassVar[type[KindOptions]] = KindOptions
+    #: the ROIs can be exported as DICOM SEG (:meth:`Analysis.roi_masks`)
+    supports_seg: ClassVar[bool] = False
+
+    # ---------------------------------------------------------------- template
+    def options(self, template: Template) -> Any:
+        """The template's ``analysis:`` block validated as this kind's :attr:`Options`.
+
+        Raises
+        ------
+        TemplateError
+            Naming the template file, each key at fault and what is allowed.
+        """
+        cached = template.kind_options
+        if isinstance(cached, self.Options):
+            return cached
+        try:
+            opts = self.Options.model_validate(template.analysis.raw())
+        except ValidationError as err:
+            from ..templates import format_validation_error
+
+            raise TemplateError(format_validation_error(template.source_path or template.name, err, prefix="analysis")) from None
+        for key in self.insert_references(opts):
+            ref = getattr(opts, key, None)
+            if ref is not None and ref not in {i.name for i in template.inserts}:
+                raise TemplateError(
+                    f"{template.source_path or template.name}: invalid template: analysis.{key} names unknown insert {ref!r}; "
+                    f"inserts: {', '.join(i.name for i in template.inserts)}"
+                )
+        template.set_kind_options(opts)
+        return opts
+
+    def insert_references(self, options: Any) -> tuple[str, ...]:
+        """Names of option keys that name an insert (checked against the template)."""
+        return ()
+
+    def check_template(self, template: Template) -> list[str]:
+        """Kind-specific checks of a template (required inserts, VOIs inside their regions).
+
+        Returns problems; empty when sound. Structural errors raise ``TemplateError``.
+        """
+        return []
+
+    @abstractmethod
+    def known_metrics(self, template: Template) -> dict[str, tuple[str, ...]]:
+        """ROI name -> metrics an analysis of this template produces (band sets are checked
+        against it)."""
+
+    # ---------------------------------------------------------------- analysis
+    @abstractmethod
+    def analyse(
+        self,
+        volume: Volume,
+        template: Template,
+        fill: FillRecord,
+        *,
+        overrides: dict[str, np.ndarray] | None = None,
+        where: str,
+        settings: AnalysisSettings,
+    ) -> Analysis:
+        """Locate the phantom and compute every metric of this kind."""
+
+    # ---------------------------------------------------------------- comparison
+    def comparison_charts(self, template: Template, fill: FillRecord, settings: Sequence[ComparedSetting]) -> list[Chart]:
+        """Charts of a comparison of settings (none by default)."""
+        return []
+
+
+# ===================================================================================== helpers
+def check_scan_time(volume: Volume, fill: FillRecord, where: str) -> None:
+    """The common preamble of every analysis: a reference time, and the fill record's nuclide.
+
+    Raises
+    ------
+    InputError
+        No acquisition time, or a nuclide that differs from the fill record's.
+    """
+    if volume.acquired_at is None:
+        raise InputError(f"{where}: the image has no acquisition time; give it (NIfTI: --acquired-at) so the fill record can be decay-corrected")
+    if volume.nuclide and volume.nuclide != fill.nuclide.name:
+        raise InputError(f"{where}: image nuclide {volume.nuclide} differs from the fill record's {fill.nuclide.name}")
+
+
+class RowBuilder:
+    """Appends :class:`Measurement` rows that share the series, time and template."""
+
+    def __init__(self, volume: Volume, template: Template) -> None:
+        self.rows: list[Measurement] = []
+        self._common = dict(
+            series_uid=volume.series_uid,
+            acquired_at=volume.acquired_at.isoformat() if volume.acquired_at else None,
+            template=template.name,
+        )
+
+    def add(self, roi: str, metric: str, value: float, unit: str, note: str | None = None, uncertainty: float | None = None) -> Measurement:
+        row = Measurement(roi=roi, metric=metric, value=float(value), unit=unit, note=note, uncertainty=uncertainty, **self._common)
+        self.rows.append(row)
+        return row
+
+
+def calibration_warning(measured_bq_ml: float, true_bq_ml: float, what: str) -> str | None:
+    """The warning of a measured level more than :data:`CALIBRATION_WARNING_FRACTION` off the
+    fill record, or None."""
+    if not (true_bq_ml > 0) or abs(measured_bq_ml / true_bq_ml - 1.0) <= CALIBRATION_WARNING_FRACTION:
+        return None
+    return (
+        f"WARNING: measured {what} {measured_bq_ml:.0f} Bq/mL is {100 * (measured_bq_ml / true_bq_ml - 1):+.0f} % from the fill record's "
+        f"{true_bq_ml:.0f} Bq/mL; check the fill record (activity, times, volume), units and calibration"
+    )
+
+
+def fill_error_hint(volume: Volume, template: Template, where: str) -> None:
+    """Called when the fill record does not fit the template: a scan of another phantom is
+    the likelier cause, and then that is the error to show."""
+    from ..locate import check_body_size
+
+    check_body_size(volume, template, where)
+
+
+def fmt_number(value: float | None, unit: str | None = None, digits: int | None = None) -> str:
+    """A value for tables: ``-`` when missing or not a number, digits by unit."""
+    if value is None or not math.isfinite(value):
+        return "-"
+    if digits is None:
+        digits = {"%": 2, "mm": 2, "Bq/mL": 0, "1": 3}.get(unit or "", 3)
+    text = f"{value:.{digits}f}"
+    if float(text) == 0.0:
+        text = text.lstrip("-")
+    return text
+
+
+__all__ = [
+    "Analysis",
+    "AnalysisSettings",
+    "Chart",
+    "ComparedSetting",
+    "KindOptions",
+    "Overlay",
+    "PhantomKind",
+    "ResultGrid",
+    "RoiKindMask",
+    "RowBuilder",
+    "Shape",
+    "SummaryTable",
+    "View",
+    "calibration_warning",
+    "check_scan_time",
+    "fill_error_hint",
+    "fmt_number",
+    "FillRecordError",
+]

@@ -1,0 +1,806 @@
+"""Body phantom image quality (analysis kind ``body_image_quality``): the NEMA NU 2 / IEC
+body phantom with six spheres, background ROIs and a low-density insert.
+
+Metrics
+-------
+* NEMA NU 2 image quality (:mod:`phantometry.metrics.nu2`): percent contrast of hot and cold
+  spheres, background variability over the 60 background ROIs of each size, and the
+  low-density insert's residual.
+* Recovery coefficients (:mod:`phantometry.metrics.recovery`): RC max, RC mean (A50) and
+  RC peak of every hot sphere.
+* Calibration check: the background level against the fill record.
+* Effective resolution: the blurred-sphere fit (:mod:`phantometry.metrics.resolution`).
+
+Uncertainties (standard, image noise only; README "Uncertainties")
+------------------------------------------------------------------
+The noise model is estimated from the image (:func:`phantometry.noise.estimate_noise`). Disc
+ROI means get their variance from the autocovariance (:func:`phantometry.noise.discs_variance`):
+the K background ROIs of one size are combined into one weight field, so their overlaps and
+correlations, within a plane and across the 10 mm slices, are included. In the cold
+low-density insert the level changes by orders of magnitude within a few voxels, so there the
+noise-free spill-in of the blurred cold cylinder at the fitted effective resolution,
+``b (1 - g(rho))`` (:func:`_cylinder_level`), is the level. Percent contrast, insert residual
+and activity recovery follow by first-order propagation (:mod:`phantometry.metrics.nu2`);
+background variability by the standard error of a sample SD; RC max / mean / peak by Monte
+Carlo (:class:`phantometry.metrics.recovery.SearchSimulation`).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable, Sequence
+
+import numpy as np
+from pydantic import Field
+
+from ..errors import FillRecordError, InputError, PhantomNotFound, PhantometryError
+from ..fill import FillRecord
+from ..locate import locate
+from ..metrics.nu2 import (
+    background_variability,
+    lung_residual,
+    percent_contrast_cold,
+    percent_contrast_hot,
+    u_background_variability,
+    u_percent_contrast_cold,
+    u_percent_contrast_hot,
+)
+from ..metrics.recovery import BOOTSTRAP_DRAWS, SearchSimulation, recovery_coefficients
+from ..metrics.resolution import ResolutionFit, SphereObservation, blurred_disc_profile, fit_sphere_profiles
+from ..noise import NoiseModel, discs_variance, estimate_noise, u_ratio
+from ..results import Measurement
+from ..rois import PlaneImage, cylinder_weights, disc_means, sample_plane, sphere_weights
+from ..templates import Template
+from ..threads import fft_workers, threads
+from ..volume import Volume
+from .base import (
+    Analysis,
+    AnalysisSettings,
+    Chart,
+    ComparedSetting,
+    KindOptions,
+    Overlay,
+    PhantomKind,
+    ResultGrid,
+    RoiKindMask,
+    RowBuilder,
+    Shape,
+    SummaryTable,
+    View,
+    calibration_warning,
+    check_scan_time,
+    fill_error_hint,
+    fmt_number,
+)
+
+
+class Options(KindOptions):
+    """Analysis options of a body image-quality template (the ``analysis:`` block)."""
+
+    axis_insert: str
+    lung_insert: str | None = None
+    lung_roi_diameter_mm: float = Field(default=30.0, gt=0)
+    lung_slice_offsets_mm: list[float] | None = None
+    reference_background_diameter_mm: float = Field(default=37.0, gt=0)
+    peak_diameter_mm: float = Field(default=12.41, gt=0)
+    isocontour_fraction: float = Field(default=0.5, gt=0, lt=1)
+
+
+#: Metrics of every sphere, of the low-density insert, the background and the phantom.
+SPHERE_METRICS = (
+    "percent_contrast",
+    "background_variability_pct",
+    "rc_max",
+    "rc_mean",
+    "rc_peak",
+    "centre_x_mm",
+    "centre_y_mm",
+    "centre_z_mm",
+)
+LUNG_METRICS = ("lung_residual_pct",)
+BACKGROUND_METRICS = ("mean_bq_ml", "activity_recovery")
+PHANTOM_METRICS = ("effective_fwhm_mm",)
+
+
+# ============================================================================== the result
+@dataclass
+class BodyAnalysis(Analysis):
+    """Everything measured on one body-phantom scan."""
+
+    kind = "body_image_quality"
+
+    #: background ROI planes by offset from the sphere plane (mm)
+    planes: dict[float, PlaneImage] = field(default_factory=dict)
+    #: background ROI means by diameter (mm): (K,) Bq/mL
+    background_roi_means: dict[float, np.ndarray] = field(default_factory=dict)
+    #: blurred-sphere fit behind effective_fwhm_mm, if made
+    resolution: ResolutionFit | None = None
+
+    @property
+    def options(self) -> Options:
+        return KIND.options(self.template)
+
+    def sphere_rows(self) -> list[dict[str, Any]]:
+        """One dict per sphere (metric -> value, plus ``roi``, ``diameter_mm``, ``hot``, ``fit_residual_mm``)."""
+        out = []
+        for s in self.template.spheres:
+            d: dict[str, Any] = {"roi": s.name, "diameter_mm": s.diameter_mm, "hot": not self.fill.is_cold(s.name)}
+            for r in self.rows:
+                if r.roi == s.name:
+                    d[r.metric] = r.value
+            fit = self.placement.fits.get(s.name)
+            d["fit_residual_mm"] = fit.residual_mm if fit else None
+            out.append(d)
+        return out
+
+    # ---------------------------------------------------------------- outputs
+    def summary_table(self) -> SummaryTable:
+        cols = ["ROI", "fill", "contrast %", "BV %", "RC max", "RC mean", "RC peak", "resid mm"]
+        body = []
+        for row in self.sphere_rows():
+            body.append([
+                row["roi"],
+                "hot" if row["hot"] else "cold",
+                fmt_number(row.get("percent_contrast"), digits=1),
+                fmt_number(row.get("background_variability_pct"), digits=2),
+                fmt_number(row.get("rc_max"), digits=3),
+                fmt_number(row.get("rc_mean"), digits=3),
+                fmt_number(row.get("rc_peak"), digits=3),
+                fmt_number(row.get("fit_residual_mm"), digits=2),
+            ])
+        lines = [f"  {r.roi:<12} {r.metric:<20} {fmt_number(r.value, digits=3)} {r.unit}" for r in self.rows
+                 if r.roi == "background" or r.metric == "lung_residual_pct"]
+        return SummaryTable(self.template.title, cols, body, lines)
+
+    def result_grids(self) -> list[ResultGrid]:
+        rois = [(s.name, [f"{s.diameter_mm:g}", "cold" if self.fill.is_cold(s.name) else "hot"]) for s in self.template.spheres]
+        metrics = [("percent_contrast", "contrast Q (%)"), ("background_variability_pct", "BV N (%)"), ("rc_max", "RC max"),
+                   ("rc_mean", "RC mean"), ("rc_peak", "RC peak")]
+        grids = [ResultGrid("spheres", "One row per sphere (NEMA NU 2 contrast and background variability; recovery coefficients of hot "
+                            "spheres); values &plusmn; standard uncertainty.", rois, ["diameter (mm)", "fill"], metrics)]
+        return grids
+
+    def overlay(self) -> Overlay:
+        pl, tpl, vol = self.placement, self.template, self.volume
+        opts = self.options
+        plane = self.planes[0.0] if 0.0 in self.planes else next(iter(self.planes.values()))
+        vmax = float(np.nanpercentile(plane.values, 99.5)) or 1.0
+        shapes: list[Shape] = []
+        for s in tpl.spheres:
+            uv = plane.world_to_uv(pl.insert_centre(s.name))
+            shapes.append(Shape("circle", "cold" if self.fill.is_cold(s.name) else "hot", uv, s.diameter_mm, label=s.name.replace("sphere_", "")))
+        bg = tpl.background
+        if bg is not None:
+            d = max(bg.diameters_mm)
+            for i, (x, y) in enumerate(bg.centres_xy_mm):
+                shapes.append(Shape("circle", "background", plane.world_to_uv(pl.to_world([x, y, 0.0])), d, label=str(i + 1)))
+        if opts.lung_insert:
+            lung = tpl.insert(opts.lung_insert)
+            uv = plane.world_to_uv(pl.to_world([lung.centre_mm[0], lung.centre_mm[1], 0.0]))
+            shapes.append(Shape("circle", "insert", uv, opts.lung_roi_diameter_mm, label="insert", label_below=True))
+        views = [View(plane, "Sphere plane: spheres (solid), 37 mm background ROIs (dashed), insert ROI (dotted)", shapes, vmax)]
+        # longitudinal view through the phantom axis and the template x direction
+        u = pl.rotation[:, 0]
+        half = max(tpl.body_length_mm, 2 * tpl.body.half_extent_xy_mm) / 2 + 10
+        lon = sample_plane(vol, pl.to_world([0.0, 0.0, 0.0]), u, pl.axis_world, half)
+        lshapes: list[Shape] = []
+        for s in tpl.spheres:
+            c = pl.insert_centre(s.name)
+            dist = abs(float(lon.distance_to_plane(c)))
+            r = s.diameter_mm / 2
+            if dist < r:
+                lshapes.append(Shape("circle", "hot", lon.world_to_uv(c), 2 * math.sqrt(r * r - dist * dist)))
+        if bg is not None:
+            for off in bg.slice_offsets_mm:
+                lshapes.append(Shape("hline", "background", lon.world_to_uv(pl.to_world([0.0, 0.0, off]))))
+        views.append(View(lon, "Longitudinal view along the phantom axis: background slices (dashed)", lshapes, vmax))
+        tilt = pl.as_dict()["axis_tilt_deg"]
+        title = (f"{tpl.title} | series {vol.series_description or vol.series_uid or ''} | axis tilt {tilt:.1f} deg | "
+                 f"ring match {pl.ring_score or 0:.2f}")
+        return Overlay(views, title, width_ratios=[1.25, 1.0])
+
+    def pictures(self) -> dict[str, Callable[[Path], Path]]:
+        from ..figures import recovery_curve_picture
+
+        opts = self.options
+        hot = [(s.name, float(s.diameter_mm), float(s.wall_mm), float(self.true_insert_bq_ml[s.name]))
+               for s in self.template.spheres if not self.fill.is_cold(s.name)]
+        diameters = [float(s.diameter_mm) for s in self.template.spheres]
+
+        def draw(path: Path) -> Path:
+            return recovery_curve_picture(self.rows, hot, diameters, self.resolution, self.band_sets, path,
+                                          isocontour_fraction=opts.isocontour_fraction, peak_diameter_mm=opts.peak_diameter_mm)
+
+        return {"recovery_curve.png": draw}
+
+    def json_extras(self) -> dict[str, Any]:
+        return {
+            "noise": self.noise.as_dict() if self.noise is not None else None,
+            "effective_resolution": self.resolution.as_dict() if self.resolution is not None else None,
+        }
+
+    def roi_masks(self) -> list[RoiKindMask]:
+        """Binary masks of every ROI kind placed: hot spheres, cold spheres, background ROIs (the
+        largest circles on every background slice), low-density insert (its ROI circles). A voxel
+        is in a mask when at least half of it lies inside an ROI (weight >= 0.5); a circle is one
+        slice thick. Kinds without any ROI (e.g. no cold spheres) are left out."""
+        volume, tpl, pl = self.volume, self.template, self.placement
+        shape = volume.shape
+        axis = pl.axis_world
+        thickness = _slice_thickness_along(volume, axis)
+        kinds: list[RoiKindMask] = []
+        hot = RoiKindMask("hot_spheres", "hot spheres", np.zeros(shape, bool), [], "Sphere")
+        cold = RoiKindMask("cold_spheres", "cold spheres", np.zeros(shape, bool), [], "Sphere")
+        for s in tpl.spheres:
+            target = cold if self.fill.is_cold(s.name) else hot
+            _add_mask(target.mask, sphere_weights(volume, pl.insert_centre(s.name), s.diameter_mm))
+            target.roi_names.append(s.name)
+        kinds += [k for k in (hot, cold) if k.roi_names]
+        bg = tpl.background
+        if bg is not None:
+            d = max(bg.diameters_mm)
+            kind = RoiKindMask("background_rois", "background ROIs", np.zeros(shape, bool), [], "Background")
+            for off in bg.slice_offsets_mm:
+                pts = pl.to_world(np.c_[np.asarray(bg.centres_xy_mm, float), np.full(len(bg.centres_xy_mm), off)])
+                for n, p in enumerate(pts, start=1):
+                    _add_mask(kind.mask, cylinder_weights(volume, p, axis, d, thickness))
+                    kind.roi_names.append(f"background_{d:g}mm_{off:+g}mm_{n:02d}")
+            kinds.append(kind)
+        opts = self.options
+        if opts.lung_insert:
+            lung = tpl.insert(opts.lung_insert)
+            offsets = opts.lung_slice_offsets_mm or (bg.slice_offsets_mm if bg is not None else [0.0])
+            kind = RoiKindMask("low_density_insert", "low-density insert", np.zeros(shape, bool), [], "Phantom")
+            for off in offsets:
+                p = pl.to_world([lung.centre_mm[0], lung.centre_mm[1], off])
+                _add_mask(kind.mask, cylinder_weights(volume, p, axis, opts.lung_roi_diameter_mm, thickness))
+                kind.roi_names.append(f"{lung.name}_{off:+g}mm")
+            kinds.append(kind)
+        return kinds
+
+    def key_metrics(self) -> list[tuple[str, str]]:
+        out = []
+        for s in self.template.spheres:
+            hot = not self.fill.is_cold(s.name)
+            out += [(s.name, m) for m in (("rc_max", "rc_mean", "rc_peak") if hot else ()) + ("percent_contrast", "background_variability_pct")]
+        opts = self.options
+        if opts.lung_insert:
+            out.append((opts.lung_insert, "lung_residual_pct"))
+        return out + [("background", "activity_recovery"), ("phantom", "effective_fwhm_mm")]
+
+
+#: A voxel belongs to a SEG segment when at least this fraction of it lies inside an ROI.
+MASK_WEIGHT_THRESHOLD = 0.5
+
+
+def _add_mask(mask: np.ndarray, roi) -> None:
+    mask[roi.box] |= roi.weights >= MASK_WEIGHT_THRESHOLD
+
+
+def _slice_thickness_along(volume: Volume, axis_world: np.ndarray) -> float:
+    """Spacing (mm) of the array axis most parallel to ``axis_world``."""
+    cosines = np.abs(volume.axes_world @ np.asarray(axis_world, float))
+    return float(volume.spacing_mm[int(np.argmax(cosines))])
+
+
+def _plane_basis(placement) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    rot = placement.rotation
+    return rot[:, 0].copy(), rot[:, 1].copy(), rot[:, 2].copy()
+
+
+# ============================================================================== the kind
+class BodyKind(PhantomKind):
+    """NEMA NU 2 image quality on the IEC / NEMA body phantom."""
+
+    name = "body_image_quality"
+    summary = "NEMA NU 2 contrast, background variability, insert residual; RC max/mean/peak; effective FWHM"
+    Options = Options
+    supports_seg = True
+
+    def insert_references(self, options: Any) -> tuple[str, ...]:
+        return ("axis_insert", "lung_insert")
+
+    def check_template(self, template: Template) -> list[str]:
+        self.options(template)
+        bg = template.background
+        if bg is None:
+            raise _template_error(template, "analysis kind body_image_quality needs a background ROI set")
+        if not template.spheres:
+            raise _template_error(template, "analysis kind body_image_quality needs inserts with role: sphere")
+        opts = self.options(template)
+        problems = []
+        if opts.reference_background_diameter_mm not in bg.diameters_mm:
+            problems.append(
+                f"analysis.reference_background_diameter_mm: {opts.reference_background_diameter_mm:g} is not one of background.diameters_mm"
+            )
+        for s in template.spheres:
+            if s.diameter_mm not in bg.diameters_mm:
+                problems.append(f"background.diameters_mm: no {s.diameter_mm:g} mm size for {s.name} (NEMA NU 2 needs one per sphere)")
+        return problems
+
+    def known_metrics(self, template: Template) -> dict[str, tuple[str, ...]]:
+        out: dict[str, tuple[str, ...]] = {s.name: SPHERE_METRICS for s in template.spheres}
+        lung = self.options(template).lung_insert
+        if lung:
+            out[lung] = LUNG_METRICS
+        out["background"] = BACKGROUND_METRICS
+        out["phantom"] = PHANTOM_METRICS
+        return out
+
+    def comparison_charts(self, template: Template, fill: FillRecord, settings: Sequence[ComparedSetting]) -> list[Chart]:
+        from ..figures import contrast_noise_chart, recovery_curves_chart
+
+        diameters = {s.name: float(s.diameter_mm) for s in template.spheres}
+        hot = {s.name: not fill.is_cold(s.name) for s in template.spheres}
+        triples = [(s.number, s.label, list(s.rows)) for s in settings]
+        return [
+            Chart("contrast_noise.png", "Percent contrast against background variability per sphere, one numbered point per setting; "
+                  "bars: standard uncertainty.", contrast_noise_chart, (triples, diameters)),
+            Chart("recovery_curves.png", "Recovery coefficients of every setting; grey boxes: acceptance bands; red open markers: "
+                  "outside the band.", recovery_curves_chart, (triples, diameters), {"hot": hot}),
+        ]
+
+    def analyse(
+        self,
+        volume: Volume,
+        template: Template,
+        fill: FillRecord,
+        *,
+        overrides: dict[str, np.ndarray] | None = None,
+        where: str,
+        settings: AnalysisSettings,
+    ) -> BodyAnalysis:
+        """Locate the phantom and compute every NEMA NU 2 and recovery metric, then the noise
+        model, the effective resolution and the standard uncertainties (``settings``)."""
+        check_scan_time(volume, fill, where)
+        opts = self.options(template)
+        at = volume.acquired_at
+        spheres = template.spheres
+        try:
+            true_bg = fill.background_bq_ml(at)
+            true_ins = {s.name: fill.insert_bq_ml(s.name, at) for s in spheres}
+            hot = {s.name: not fill.is_cold(s.name) for s in spheres}
+            ratio = {s.name: (fill.activity_ratio(s.name) if hot[s.name] else 0.0) for s in spheres}
+        except FillRecordError:
+            fill_error_hint(volume, template, where)
+            raise
+        placement = locate(volume, template, axis_insert=opts.axis_insert, hot=hot, activity_ratio=ratio, overrides=overrides, where=where)
+        bg_set = template.background
+        assert bg_set is not None  # check_template refuses a body template without one
+        u, v, axis = _plane_basis(placement)
+        out = RowBuilder(volume, template)
+        add = out.add
+        warnings = list(placement.warnings)
+
+        # ---- background ROIs on every slice offset, every size
+        half_width = template.body.half_extent_xy_mm + 10
+        planes: dict[float, PlaneImage] = {}
+        means: dict[float, list[np.ndarray]] = {d: [] for d in bg_set.diameters_mm}
+        centres_xy = np.asarray(bg_set.centres_xy_mm, float)
+        for off in bg_set.slice_offsets_mm:
+            plane_centre = placement.to_world([0.0, 0.0, off])
+            plane = sample_plane(volume, plane_centre, u, v, half_width)
+            planes[off] = plane
+            world = placement.to_world(np.c_[centres_xy, np.full(len(centres_xy), off)])
+            uv = plane.world_to_uv(world)
+            for d in bg_set.diameters_mm:
+                try:
+                    means[d].append(disc_means(plane, uv, d))
+                except PhantomNotFound:
+                    raise PhantomNotFound(
+                        f"{where}: background ROIs at {off:+g} mm from the sphere plane fall outside the image; "
+                        "is the whole phantom in the field of view?"
+                    ) from None
+        roi_means = {d: np.concatenate(m) for d, m in means.items()}
+        c_b = {}
+        bv = {}
+        for d, m in roi_means.items():
+            bv[d], c_b[d], _ = background_variability(m)
+        c_b_ref = c_b[opts.reference_background_diameter_mm]
+        # ---- spheres
+        for s in spheres:
+            centre = placement.insert_centre(s.name)
+            sp = sample_plane(volume, centre, u, v, s.diameter_mm / 2 + 4 * float(np.max(volume.spacing_mm)))
+            try:
+                c_sphere = float(disc_means(sp, sp.world_to_uv(centre[None]), s.diameter_mm)[0])
+            except PhantomNotFound:
+                raise PhantomNotFound(f"{where}: {s.name} lies outside the image; is the whole phantom in the field of view?") from None
+            cb = c_b.get(s.diameter_mm, c_b_ref)
+            if hot[s.name]:
+                if ratio[s.name] <= 1:
+                    raise InputError(f"fill record: {s.name} is hot but its ratio to background is {ratio[s.name]:g} (must exceed 1)")
+                add(s.name, "percent_contrast", percent_contrast_hot(c_sphere, cb, ratio[s.name]), "%")
+            else:
+                add(s.name, "percent_contrast", percent_contrast_cold(c_sphere, cb), "%")
+            add(s.name, "background_variability_pct", bv.get(s.diameter_mm, math.nan), "%")
+            if hot[s.name]:
+                rc = recovery_coefficients(
+                    volume,
+                    centre,
+                    s.diameter_mm,
+                    true_ins[s.name],
+                    c_b_ref,
+                    peak_diameter_mm=opts.peak_diameter_mm,
+                    isocontour_fraction=opts.isocontour_fraction,
+                )
+                for k in ("rc_max", "rc_mean", "rc_peak"):
+                    add(s.name, k, rc[k], "1")
+            for axis_name, val in zip("xyz", centre):
+                add(s.name, f"centre_{axis_name}_mm", val, "mm")
+        # ---- low-density insert residual
+        if opts.lung_insert is not None:
+            lung = template.insert(opts.lung_insert)
+            lung_vals = []
+            for off in opts.lung_slice_offsets_mm or bg_set.slice_offsets_mm:
+                plane = planes.get(off)
+                if plane is None:
+                    plane = sample_plane(volume, placement.to_world([0.0, 0.0, off]), u, v, half_width)
+                lc = _lung_centre(placement, lung, off, overrides)
+                lung_vals.append(float(disc_means(plane, plane.world_to_uv(lc[None]), opts.lung_roi_diameter_mm)[0]))
+            avg, _ = lung_residual(np.array(lung_vals), c_b_ref)
+            add(lung.name, "lung_residual_pct", avg, "%")
+        # ---- background level and calibration check
+        add("background", "mean_bq_ml", c_b_ref, "Bq/mL")
+        note = calibration_warning(c_b_ref, true_bg, "background")
+        if note:
+            warnings.append(note)
+        add("background", "activity_recovery", c_b_ref / true_bg, "1", note)
+        result = BodyAnalysis(volume, template, fill, placement, out.rows, true_bg, true_ins, warnings,
+                              planes=planes, background_roi_means=roi_means)
+        _noise_resolution_uncertainties(result, overrides=overrides, settings=settings)
+        return result
+
+
+def _template_error(template: Template, problem: str):
+    from ..errors import TemplateError
+
+    return TemplateError(f"{template.source_path or template.name}: invalid template: {problem}")
+
+
+def _lung_centre(placement, lung, off: float, overrides: dict[str, np.ndarray] | None) -> np.ndarray:
+    """World centre of the low-density insert's ROI on the plane ``off`` mm from the sphere
+    plane: on the template's insert axis, or on the line through the manual centre."""
+    if lung.name in (overrides or {}):
+        c = placement.insert_centre(lung.name)
+        return c + (off - float(placement.to_template(c)[2])) * placement.axis_world
+    return placement.to_world([lung.centre_mm[0], lung.centre_mm[1], off])
+
+
+KIND = BodyKind()
+
+
+# ============================================================================== noise, resolution, uncertainties
+def _noise_resolution_uncertainties(analysis: BodyAnalysis, *, overrides, settings: AnalysisSettings) -> None:
+    """Add the noise model, the effective FWHM row and the standard uncertainties (in place).
+
+    A step that cannot be done (too little background, a failed fit) leaves its numbers out
+    and says so in the warnings; it never stops the measurement.
+    """
+    noise = None
+    if settings.uncertainties or settings.resolution:
+        try:
+            noise = estimate_noise(analysis.volume, analysis.placement, analysis.template, variance_power=settings.variance_power)
+        except PhantometryError as exc:
+            analysis.warnings.append(f"no uncertainties: the noise could not be estimated ({exc})")
+    analysis.noise = noise
+    fit = None
+    if settings.resolution:
+        try:
+            fit = fit_body(analysis, noise)
+        except PhantometryError as exc:
+            analysis.warnings.append(f"effective resolution not fitted: {exc}")
+        else:
+            note = fit.note()
+            if fit.rms_weighted_residual is not None and fit.rms_weighted_residual > 2.0:
+                warn = (
+                    f"the blurred-sphere model fits the sphere voxels poorly (RMS residual {fit.rms_weighted_residual:.1f} noise SDs); "
+                    "effective_fwhm_mm may not describe this reconstruction (edge overshoot, non-Gaussian response, wrong fill record)"
+                )
+                analysis.warnings.append(warn)
+                note = f"WARNING: poor model fit; {note}"
+            r0 = analysis.rows[0]
+            analysis.rows.append(Measurement(series_uid=r0.series_uid, acquired_at=r0.acquired_at, template=r0.template, roi="phantom",
+                                             metric="effective_fwhm_mm", value=fit.fwhm_mm, unit="mm", uncertainty=fit.se_mm, note=note))
+    analysis.resolution = fit
+    if settings.uncertainties and noise is not None:
+        try:
+            us = body_uncertainties(analysis, noise, resolution_fit=fit, overrides=overrides)
+        except PhantometryError as exc:
+            analysis.warnings.append(f"no uncertainties: {exc}")
+        else:
+            analysis.rows[:] = [
+                dataclasses.replace(r, uncertainty=float(us[(r.roi, r.metric)])) if (r.roi, r.metric) in us and r.uncertainty is None else r
+                for r in analysis.rows
+            ]
+
+
+def body_uncertainties(
+    analysis: BodyAnalysis,
+    noise: NoiseModel,
+    *,
+    resolution_fit: ResolutionFit | None = None,
+    overrides: dict[str, np.ndarray] | None = None,
+    n_draws: int | None = None,
+) -> dict[tuple[str, str], float]:
+    """Standard uncertainty of every ROI-mean based metric of a body image-quality analysis.
+
+    Parameters
+    ----------
+    analysis : :class:`BodyAnalysis` (rows, planes, placement, template,
+        fill, volume); the ROIs are rebuilt exactly as :meth:`BodyKind.analyse`
+        placed them.
+    noise : the image's noise model (:func:`phantometry.noise.estimate_noise`).
+    resolution_fit : the blurred-sphere fit (:func:`fit_body`);
+        its model image is the noise-free image of the RC max bootstrap (else the image
+        smoothed by one voxel).
+    overrides : the manual insert centres the analysis used (the low-density insert's ROI
+        follows its override as in the measurement).
+    n_draws : noise draws of the RC max / mean / peak simulation (default
+        :data:`BOOTSTRAP_DRAWS`).
+
+    Returns
+    -------
+    dict (roi, metric) -> standard uncertainty in the metric's unit (see the module notes).
+    """
+    n_draws = BOOTSTRAP_DRAWS if n_draws is None else int(n_draws)
+    vol = analysis.volume
+    tpl = analysis.template
+    fill = analysis.fill
+    pl = analysis.placement
+    a = analysis.options
+    out: dict[tuple[str, str], float] = {}
+    ref = a.reference_background_diameter_mm
+    c_b = {d: float(np.mean(means)) for d, means in analysis.background_roi_means.items()}
+    cb_ref = c_b[ref]
+    model_fn = resolution_fit.model_at if resolution_fit is not None else None
+    # ---- the RC searches by simulation, started first: its chunks of draws in threads (numpy
+    # and the FFTs release the interpreter lock) while this thread propagates the ROI means
+    # below; each chunk has its own seed, so results do not depend on the threads
+    searches: list[tuple[str, np.ndarray, float, float]] = []
+    noise_free = noise.sd_bq_ml <= 1e-6 * max(noise.background_bq_ml, 1e-12)
+    for s in tpl.spheres:
+        true = 0.0 if fill.is_cold(s.name) else float(analysis.true_insert_bq_ml[s.name])
+        if true <= 0:
+            continue
+        if noise_free:
+            # no measurable noise (a noise-free image: float32 rounding only): nothing to simulate
+            out[(s.name, "rc_max")] = out[(s.name, "rc_mean")] = out[(s.name, "rc_peak")] = 0.0
+        else:
+            searches.append((s.name, pl.insert_centre(s.name), float(s.diameter_mm), true))
+    def make_simulation() -> SearchSimulation:
+        return SearchSimulation(noise, vol, [(c, d) for _, c, d, _ in searches], cb_ref, model_fn, fraction=a.isocontour_fraction,
+                                peak_diameter_mm=a.peak_diameter_mm, n_draws=n_draws, seed=_seed("rc searches"))
+
+    sim = None
+    chunks: list = []
+    if searches and fft_workers() > 1:
+        from concurrent.futures import ThreadPoolExecutor
+
+        sim = make_simulation()
+
+        def run(chunk: tuple[int, int]):
+            with threads(1):
+                return sim.run_chunk(*chunk)  # type: ignore[union-attr]
+
+        with ThreadPoolExecutor(min(fft_workers(), len(sim.chunks))) as pool:
+            futures = [pool.submit(run, chunk) for chunk in sim.chunks]
+            try:
+                _roi_mean_uncertainties(analysis, noise, out, c_b, resolution_fit, overrides)
+                chunks = [f.result() for f in futures]
+            finally:
+                for f in futures:
+                    f.cancel()
+    else:
+        # one thread: one step after the other, so their working memories never add up
+        _roi_mean_uncertainties(analysis, noise, out, c_b, resolution_fit, overrides)
+        if searches:
+            sim = make_simulation()
+            chunks = [sim.run_chunk(*chunk) for chunk in sim.chunks]
+    sds_all = sim.standard_deviations(chunks) if sim is not None else []
+    results = [(name, true, sds) for (name, _, _, true), sds in zip(searches, sds_all)]
+    for name, true, sds in results:
+        out[(name, "rc_max")] = sds["max"] / true
+        out[(name, "rc_mean")] = sds["mean"] / true
+        out[(name, "rc_peak")] = sds["peak"] / true
+    return out
+
+
+def _roi_mean_uncertainties(
+    analysis: BodyAnalysis,
+    noise: NoiseModel,
+    out: dict[tuple[str, str], float],
+    c_b: dict[float, float],
+    resolution_fit: ResolutionFit | None,
+    overrides: dict[str, np.ndarray] | None,
+) -> None:
+    """The ROI-mean based uncertainties of :func:`body_uncertainties` (first-order propagation), into ``out``.
+
+    ``c_b``: background ROI set mean per diameter, Bq/mL.
+    """
+    part, u_cb = _disc_uncertainties(analysis, noise)
+    out.update(part)
+    _lung_uncertainty(analysis, noise, out, c_b, u_cb, resolution_fit, overrides)
+
+
+def _disc_uncertainties(analysis: BodyAnalysis, noise: NoiseModel) -> tuple[dict[tuple[str, str], float], dict[float, float]]:
+    """The uncertainties that need the noise model only: background ROI sets and spheres.
+
+    Returns the (roi, metric) -> uncertainty entries and the standard uncertainty (Bq/mL) of
+    each background ROI set mean, by diameter. Independent of the resolution fit.
+    """
+    out: dict[tuple[str, str], float] = {}
+    c_b = {d: float(np.mean(means)) for d, means in analysis.background_roi_means.items()}
+    vol = analysis.volume
+    tpl = analysis.template
+    fill = analysis.fill
+    pl = analysis.placement
+    a = analysis.options
+    bg = tpl.background
+    u_dir, v_dir = pl.rotation[:, 0], pl.rotation[:, 1]
+    values = {(r.roi, r.metric): r.value for r in analysis.rows}
+    # ---- background ROI sets: the mean of K ROI means per size (level = background)
+    centres_xy = np.asarray(bg.centres_xy_mm, float)
+    discs_by_offset = []
+    for off in bg.slice_offsets_mm:
+        plane = analysis.planes[off]
+        uv = plane.world_to_uv(pl.to_world(np.c_[centres_xy, np.full(len(centres_xy), off)]))
+        discs_by_offset.extend((plane, c) for c in uv)
+    u_cb: dict[float, float] = {}
+    for d in analysis.background_roi_means:
+        u_cb[d] = math.sqrt(discs_variance(noise, vol, discs_by_offset, d, heteroscedastic=False))
+    ref = a.reference_background_diameter_mm
+    cb_ref, ucb_ref = c_b[ref], u_cb[ref]
+    # ---- spheres
+    spacing_max = float(np.max(vol.spacing_mm))
+    for s in tpl.spheres:
+        name = s.name
+        centre = pl.insert_centre(name)
+        sp = sample_plane(vol, centre, u_dir, v_dir, s.diameter_mm / 2 + 4 * spacing_max)
+        uv = sp.world_to_uv(centre[None])
+        c_sphere = float(disc_means(sp, uv, s.diameter_mm)[0])
+        u_sphere = math.sqrt(discs_variance(noise, vol, [(sp, uv[0])], s.diameter_mm, heteroscedastic=True))
+        cb = c_b.get(s.diameter_mm, cb_ref)
+        ucb = u_cb.get(s.diameter_mm, ucb_ref)
+        hot = not fill.is_cold(name)
+        if hot:
+            ratio = float(fill.activity_ratio(name))
+            out[(name, "percent_contrast")] = u_percent_contrast_hot(c_sphere, u_sphere, cb, ucb, ratio)
+        else:
+            out[(name, "percent_contrast")] = u_percent_contrast_cold(c_sphere, u_sphere, cb, ucb)
+        n_pct = values.get((name, "background_variability_pct"), math.nan)
+        if s.diameter_mm in analysis.background_roi_means:
+            k = len(analysis.background_roi_means[s.diameter_mm])
+            out[(name, "background_variability_pct")] = u_background_variability(n_pct, k, cb, ucb)
+    return out, u_cb
+
+
+def _lung_uncertainty(
+    analysis: BodyAnalysis,
+    noise: NoiseModel,
+    out: dict[tuple[str, str], float],
+    c_b: dict[float, float],
+    u_cb: dict[float, float],
+    resolution_fit: ResolutionFit | None,
+    overrides: dict[str, np.ndarray] | None,
+) -> None:
+    """Low-density insert residual and background level uncertainties, into ``out``."""
+    vol = analysis.volume
+    tpl = analysis.template
+    pl = analysis.placement
+    a = analysis.options
+    bg = tpl.background
+    u_dir, v_dir = pl.rotation[:, 0], pl.rotation[:, 1]
+    values = {(r.roi, r.metric): r.value for r in analysis.rows}
+    ref = a.reference_background_diameter_mm
+    cb_ref, ucb_ref = c_b[ref], u_cb[ref]
+    # ---- low-density insert
+    if a.lung_insert is not None and (a.lung_insert, "lung_residual_pct") in values:
+        lung = tpl.insert(a.lung_insert)
+        offsets = a.lung_slice_offsets_mm or bg.slice_offsets_mm
+        half_width = tpl.body.half_extent_xy_mm + 10
+        discs = []
+        lung_vals = []
+        for off in offsets:
+            plane = analysis.planes.get(off)
+            if plane is None:
+                plane = sample_plane(vol, pl.to_world([0.0, 0.0, off]), u_dir, v_dir, half_width)
+            lc = _lung_centre(pl, lung, off, overrides)
+            uv = plane.world_to_uv(lc[None])
+            lung_vals.append(float(disc_means(plane, uv, a.lung_roi_diameter_mm)[0]))
+            discs.append((plane, uv[0]))
+        c_lung = float(np.mean(lung_vals))
+        level_fn = None
+        if resolution_fit is not None and lung.shape == "cylinder":
+            level_fn = _cylinder_level(resolution_fit, pl.insert_centre(lung.name), pl.direction_to_world(lung.axis_unit), 0.5 * lung.outer_diameter_mm)
+        u_lung = math.sqrt(discs_variance(noise, vol, discs, a.lung_roi_diameter_mm, heteroscedastic=True, level_fn=level_fn))
+        out[(a.lung_insert, "lung_residual_pct")] = 100.0 * u_ratio(c_lung, u_lung, cb_ref, ucb_ref)
+    # ---- background level and calibration check
+    out[("background", "mean_bq_ml")] = ucb_ref
+    if analysis.true_background_bq_ml > 0:
+        out[("background", "activity_recovery")] = ucb_ref / analysis.true_background_bq_ml
+
+
+def _cylinder_level(fit: ResolutionFit, centre: np.ndarray, axis: np.ndarray, radius_mm: float):
+    """Noise-free level inside a long cold cylinder: background minus the blurred cylinder.
+
+    ``b (1 - g(rho))`` with ``g`` the blurred disc profile at the fitted effective SD
+    (:func:`phantometry.metrics.resolution.blurred_disc_profile`); the spill-in a cold insert
+    receives from the background around it.
+    """
+    a = np.asarray(axis, float) / np.linalg.norm(axis)
+
+    def level(points: np.ndarray) -> np.ndarray:
+        rel = np.asarray(points, float) - centre
+        ax = rel @ a
+        rho = np.sqrt(np.maximum(np.einsum("...i,...i->...", rel, rel) - ax * ax, 0.0))
+        return fit.background_bq_ml * (1.0 - blurred_disc_profile(rho, radius_mm, fit.sigma_eff_mm))
+
+    return level
+
+
+def _seed(name: str) -> int:
+    """A fixed seed per ROI name (reproducible bootstrap draws)."""
+    return int.from_bytes(name.encode("utf-8")[:8].ljust(8, b"\0"), "little") % (2**32)
+
+
+# ============================================================================== effective resolution
+#: Distance (mm) kept from inserts that are not fitted (the low-density cylinder).
+EXCLUSION_MARGIN_MM = 15.0
+
+
+def body_spheres(analysis: BodyAnalysis) -> list[SphereObservation]:
+    """The spheres of a body image-quality analysis as fit inputs (hot: true concentration; cold: 0)."""
+    out = []
+    for s in analysis.template.spheres:
+        true = 0.0 if analysis.fill.is_cold(s.name) else float(analysis.true_insert_bq_ml[s.name])
+        out.append(SphereObservation(s.name, analysis.placement.insert_centre(s.name), float(s.diameter_mm), float(s.wall_mm), true))
+    return out
+
+
+def insert_exclusions(analysis: BodyAnalysis, margin_mm: float = EXCLUSION_MARGIN_MM) -> list[Callable[[np.ndarray], np.ndarray]]:
+    """Exclusion tests (world points -> bool) for every insert that is not a fitted sphere."""
+    pl = analysis.placement
+    fns = []
+    for ins in analysis.template.inserts:
+        if ins.role == "sphere" and ins.shape == "sphere":
+            continue
+        c = pl.insert_centre(ins.name)
+        r_out = 0.5 * ins.outer_diameter_mm + margin_mm
+        if ins.shape == "sphere":
+            def fn(p, c=c, r_out=r_out):
+                rel = p - c
+                return np.einsum("...i,...i->...", rel, rel) < r_out * r_out
+        else:
+            a = pl.direction_to_world(ins.axis_unit)
+            half = 0.5 * float(ins.length_mm) + margin_mm
+
+            def fn(p, c=c, a=a, r_out=r_out, half=half):
+                rel = p - c
+                ax = rel @ a
+                rho2 = np.einsum("...i,...i->...", rel, rel) - ax * ax
+                return (rho2 < r_out * r_out) & (np.abs(ax) < half)
+        fns.append(fn)
+    return fns
+
+
+def fit_body(analysis: BodyAnalysis, noise: NoiseModel | None = None, **kwargs: Any) -> ResolutionFit:
+    """:func:`fit_sphere_profiles` on the spheres of a body image-quality analysis.
+
+    Sphere centres start at the placement's; the low-density insert (and any other
+    non-sphere insert) is kept out with a 15 mm margin; the background starts at the measured
+    C_B of the reference background ROIs.
+    """
+    ref = analysis.options.reference_background_diameter_mm
+    c_b = float(np.mean(analysis.background_roi_means[ref]))
+    return fit_sphere_profiles(
+        analysis.volume,
+        body_spheres(analysis),
+        c_b,
+        exclusions=insert_exclusions(analysis),
+        noise=noise,
+        where=analysis.volume.source,
+        **kwargs,
+    )
