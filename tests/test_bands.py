@@ -256,3 +256,22 @@ def test_measure_strict_exit_codes_and_columns(capsys, demo_scan, tmp_path):
     assert "--strict needs" in capsys.readouterr().err
     assert main(base + ["--out", str(tmp_path / "u"), "--bands", "nope"]) == 2
     assert not (tmp_path / "u").exists()
+
+
+def test_unconfirmed_roi_set_withholds_verdicts(demo_scan):
+    # a verdict on an ROI the image does not confirm would be a silent wrong answer: n/a instead
+    import dataclasses
+
+    from phantometry.measure import judge, measure_volume
+    from phantometry.phantoms.base import RoiSetCheck
+
+    res = demo_scan["result"]
+    a = measure_volume(res.volume, TPL, FillRecord.from_dict(res.fill_record), uncertainties=False, resolution=False)
+    wide = dataclasses.replace(load_band_set("eanm-fdg-2015"), name="wide")
+    a.placement_checks = [RoiSetCheck("spheres", 6, 6, 0.7, -2.0, confirmed=False, note="ROI crosses the body edge",
+                                      rows=[("sphere_37mm", "rc_max")])]
+    judge(a, [wide])
+    r = next(r for r in a.rows if (r.roi, r.metric) == ("sphere_37mm", "rc_max"))
+    other = next(r for r in a.rows if (r.roi, r.metric) == ("sphere_28mm", "rc_max"))
+    assert r.verdict == "n/a" and "not confirmed" in r.note
+    assert other.verdict in ("pass", "fail")

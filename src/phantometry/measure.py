@@ -9,6 +9,7 @@ The phantom-specific work lives in the kind modules of :mod:`phantometry.phantom
 
 from __future__ import annotations
 
+import dataclasses
 import os
 from pathlib import Path
 from typing import Any, Sequence
@@ -81,10 +82,20 @@ def judge(analysis: Analysis, band_sets: Sequence[BandSet]) -> Analysis:
     for bs in band_sets:
         check_band_set(bs, analysis.template.name, known)
     rows, warns = apply_bands(analysis.rows, band_sets, fill=analysis.fill)
+    doubtful = {key: c for c in analysis.placement_checks if not c.confirmed for key in c.rows}
+    for i, r in enumerate(rows):
+        check = doubtful.get((r.roi, r.metric))
+        if check is not None and r.verdict in ("pass", "fail"):
+            rows[i] = dataclasses.replace(r, verdict="n/a", note=_join_note(
+                r.note, f"verdict withheld: {check.roi_set} ROIs not confirmed in the image ({check.note or 'see placement_quality'})"))
     analysis.rows[:] = rows
     analysis.warnings.extend(w for w in warns if w not in analysis.warnings)
     analysis.band_sets = list(band_sets)
     return analysis
+
+
+def _join_note(note: str | None, extra: str) -> str:
+    return extra if not note else f"{note}; {extra}"
 
 
 def analysis_json(analysis: Analysis) -> dict[str, Any]:
@@ -99,6 +110,7 @@ def analysis_json(analysis: Analysis) -> dict[str, Any]:
         "fill_record": analysis.fill.to_dict(),
         "true_concentrations_bq_ml": {"background": analysis.true_background_bq_ml, **analysis.true_insert_bq_ml},
         "localisation": analysis.placement.as_dict(),
+        "placement_quality": [c.as_dict() for c in analysis.placement_checks],
         "warnings": analysis.warnings,
         **analysis.json_extras(),
         "bands": [{k: v for k, v in b.summary().items() if k != "entries"} for b in analysis.band_sets],

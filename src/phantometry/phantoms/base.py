@@ -163,6 +163,47 @@ class RoiKindMask:
 
 
 @dataclass
+class RoiSetCheck:
+    """How well the image confirms one set of ROIs (placement quality, in every result).
+
+    Attributes
+    ----------
+    roi_set : name of the set (``background_37mm``, ``spheres``, ``spillover_vois``, ...).
+    planned : ROIs the template plans.
+    used : ROIs actually measured (moved ones count, dropped ones do not).
+    min_inside_fraction : the smallest fraction of a measured ROI inside the region it is meant
+        to sample, as found in this image (1.0: every ROI wholly inside).
+    min_edge_distance_mm : the smallest distance of a measured ROI's edge from the edge of that
+        region (negative: it crosses it); None where not applicable.
+    confirmed : the image confirms the set (every measured ROI wholly inside its region and
+        keeping its clearances).
+    note : what was done or seen (moved, dropped, unconfirmed), in words.
+    rows : (roi, metric) of the measurements that depend on this set; when the set is not
+        confirmed, their band verdicts are ``n/a`` (never a pass or fail on a doubtful ROI).
+    """
+
+    roi_set: str
+    planned: int
+    used: int
+    min_inside_fraction: float
+    min_edge_distance_mm: float | None = None
+    confirmed: bool = True
+    note: str | None = None
+    rows: list[tuple[str, str]] = field(default_factory=list)
+
+    def as_dict(self) -> dict[str, Any]:
+        return {
+            "roi_set": self.roi_set,
+            "planned": self.planned,
+            "used": self.used,
+            "min_inside_fraction": round(float(self.min_inside_fraction), 4),
+            "min_edge_distance_mm": None if self.min_edge_distance_mm is None else round(float(self.min_edge_distance_mm), 2),
+            "confirmed": self.confirmed,
+            "note": self.note,
+        }
+
+
+@dataclass
 class AnalysisSettings:
     """Options of the analysis step that are not in the template.
 
@@ -206,6 +247,8 @@ class Analysis(ABC):
     warnings: list[str] = field(default_factory=list)
     band_sets: list["BandSet"] = field(default_factory=list)
     noise: "NoiseModel | None" = None
+    #: placement quality of each ROI set, as the image confirms it
+    placement_checks: list[RoiSetCheck] = field(default_factory=list)
 
     # ---------------------------------------------------------------- queries
     def value(self, roi: str, metric: str) -> float | None:
@@ -433,6 +476,7 @@ __all__ = [
     "PhantomKind",
     "ResultGrid",
     "RoiKindMask",
+    "RoiSetCheck",
     "RowBuilder",
     "Shape",
     "SummaryTable",
