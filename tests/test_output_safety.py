@@ -244,12 +244,16 @@ def test_earlier_results_with_a_users_file_added_are_refused(work, first_results
     assert tree(work) == before
 
 
-def test_empty_folder_is_filled(work):
+def test_empty_folder_is_filled_and_kept(work):
     empty = work / "empty"
     empty.mkdir()
+    os.chmod(empty, 0o2770)  # a shared folder: set-group-id, no access for others
+    inode = empty.stat().st_ino
     r = run(*measure_args(work / "scan", empty))
     assert r.returncode == 0, r.stderr
     assert (empty / "measurements.csv").exists() and (empty / MARKER_NAME).exists()
+    assert empty.stat().st_ino == inode and stat.S_IMODE(empty.stat().st_mode) == 0o2770  # the user's folder itself
+    assert sorted(p.name for p in work.iterdir()) == ["empty", "notes.txt", "scan"]
 
 
 # ============================================================================== temp folders

@@ -5,8 +5,8 @@ Rules (the README's "Output folders" section says the same to users):
 * A folder phantometry writes carries a marker file, :data:`MARKER_NAME`, naming the tool,
   the kind of folder (:data:`KINDS`), the marker schema and every entry the run wrote.
 * An existing output path is replaced only when it is a folder holding that marker, holding
-  nothing but what the marker lists, **and** ``overwrite`` is given. An empty folder may be
-  filled (nothing can be lost). Anything else (a file, a link, a folder of the user's, the
+  nothing but what the marker lists, **and** ``overwrite`` is given. An empty folder is
+  filled and kept (nothing can be lost; its owner, mode and access lists stay). Anything else (a file, a link, a folder of the user's, the
   current folder) is refused, with or without ``overwrite``.
 * The output may not be, lie inside, or contain any input path (symbolic links resolved).
 * :func:`check_output_folder` makes all these checks before any work; :func:`output_folder`
@@ -485,6 +485,28 @@ def _move_into_place(tmp: Path, target: Path) -> None:
     os.rename(tmp, target)
 
 
+def _fill_empty(tmp: Path, target: Path) -> None:
+    """Move the entries of ``tmp`` into the empty folder ``target``, the marker last, then remove ``tmp``.
+
+    The user's folder itself (its owner, mode, set-group-id bit, access lists) is kept. No
+    entry replaces one that appeared meanwhile; on an error the entries moved so far are
+    taken out again.
+    """
+    moved: list[Path] = []
+    try:
+        for name in sorted(os.listdir(tmp), key=lambda n: (n == MARKER_NAME, n)):
+            _move_into_place(tmp / name, target / name)
+            moved.append(target / name)
+    except BaseException:
+        for m in moved:
+            if m.is_dir() and not m.is_symlink():
+                shutil.rmtree(m, ignore_errors=True)
+            else:
+                m.unlink(missing_ok=True)
+        raise
+    os.rmdir(tmp)
+
+
 def _swap(tmp: Path, target: Path) -> Path:
     """Put ``tmp`` at ``target``; returns where the old folder now is (to be removed)."""
     if _renameat2(tmp, target, _RENAME_EXCHANGE):
@@ -527,9 +549,8 @@ def _output_error(exc: OSError, target: Path, tmp: Path | None) -> OutputError:
         p = _abs(name)
         if tmp is not None and _within(p, tmp) and p != tmp:
             where = f" ({p.relative_to(tmp).as_posix()})"
-        elif tmp is None or p != tmp:
-            if p != target:
-                where = f" ({p})"
+        elif p != target and p != tmp and not p.name.startswith(f".{target.name}.phantometry-"):
+            where = f" ({p})"  # e.g. a parent folder that could not be made
     return OutputError(f"{target}: cannot write the results{where}: {reason}")
 
 
@@ -595,7 +616,7 @@ def _put_in_place(tmp: Path, plan: OutputPlan, marker: dict[str, Any]) -> Writte
         _move_into_place(tmp, t)
         return WrittenFolder(t, plan.kind)
     if now.state == "empty":
-        os.rename(tmp, t)  # replaces an empty folder only (ENOTEMPTY otherwise)
+        _fill_empty(tmp, t)
         return WrittenFolder(t, plan.kind)
     previous = now.previous or {}
     old = _swap(tmp, t)

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import os
 import shutil
 import tempfile
 from datetime import datetime
@@ -288,6 +289,10 @@ def demo_cmd(
     from ..synth import SynthSpec, synthesize, write_synthetic
 
     base = Path(out) if out else Path(tempfile.mkdtemp(prefix="phantometry-demo-"))
+    if out is None:  # mkdtemp makes it 0700: give it the user's umask like any other folder
+        mask = os.umask(0)
+        os.umask(mask)
+        os.chmod(base, 0o777 & ~mask)
     try:
         with output_folder(base, KIND_DEMO, overwrite=overwrite) as staging:
             console.print("[bold]phantometry demo[/bold]: synthetic IEC body phantom (invented site and scanner) in " + escape(str(base)))
