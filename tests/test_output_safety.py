@@ -156,6 +156,32 @@ def test_out_through_a_symlink_to_the_inputs(work):
     assert tree(work) == before
 
 
+def test_out_is_a_symlink_elsewhere(work):
+    (work / "target").mkdir()
+    (work / "link").symlink_to(work / "target")
+    before = tree(work)
+    r = run(*measure_args(work / "scan", work / "link", "--overwrite"))
+    assert_error(r, str(work / "link"), "symbolic link")
+    assert tree(work) == before
+
+
+def test_out_inside_the_inputs_seen_through_a_bind_mount(work):
+    """Another path to the same folder (no symbolic link to resolve): caught by file identity."""
+    view = work / "view"
+    view.mkdir()
+    if os.geteuid() != 0 or subprocess.run(["mount", "--bind", str(work / "scan"), str(view)], capture_output=True).returncode != 0:
+        pytest.skip("needs mount --bind (root, mount permitted)")
+    try:
+        before = tree(work / "scan")
+        r = run(*measure_args(work / "scan", view / "dicom" / "res"))
+        assert_error(r, str(view / "dicom" / "res"), "inside the input folder")
+        r = run(*measure_args(work / "scan", view / "dicom"))
+        assert_error(r, str(view / "dicom"), "this is the input")
+        assert tree(work / "scan") == before
+    finally:
+        subprocess.run(["umount", str(view)], check=True)
+
+
 def test_out_is_an_existing_file(work):
     before = tree(work)
     for extra in ((), ("--overwrite",)):
