@@ -21,7 +21,7 @@ from .fill import FillRecord, load_fill_record
 from .locate import Placement, locate
 from .metrics.nu2 import background_variability, lung_residual, percent_contrast_cold, percent_contrast_hot
 from .metrics.recovery import recovery_coefficients
-from .results import CAUTION, Measurement, atomic_output_dir, measurements_csv, to_json
+from .results import CAUTION, Measurement, measurements_csv, to_json
 from .rois import PlaneImage, disc_means, sample_plane
 from .templates import Template, load_template
 from .volume import Volume
@@ -383,6 +383,7 @@ def measure(
     report: bool = False,
     seg: bool = False,
     bands: Sequence[Any] | None = None,
+    overwrite: bool = False,
 ) -> BodyAnalysis:
     """Measure a phantom scan from files and write ``out/`` (CSV, JSON, overlay picture).
 
@@ -395,8 +396,26 @@ def measure(
     phantoms also get ``recovery_curve.png`` (measured RC, fitted model curves, bands).
 
     The folder appears only when everything succeeded; if localisation fails, a diagnostic
-    picture is written to ``out.failed.png`` beside it and :class:`PhantomNotFound` is raised.
+    picture is written to ``out.failed.png`` beside it (unless a file phantometry did not
+    write is there) and :class:`PhantomNotFound` is raised.
+
+    ``out`` follows the rules of :mod:`phantometry.outputs`, checked before anything is
+    loaded: it must not exist, be an empty folder, or (with ``overwrite=True``) be a folder of
+    earlier phantometry results; it may not be, lie inside or contain an input. The returned
+    analysis carries ``written`` (:class:`phantometry.outputs.WrittenFolder`: whether an
+    earlier folder was replaced, and what it held that this run did not write).
+
+    Raises
+    ------
+    OutputRefused
+        ``out`` may not be written (nothing is loaded or written).
+    OutputError
+        A system error while writing (the reason in the message; nothing is left behind).
     """
+    from .outputs import KIND_MEASURE, check_output_folder, existing_inputs, output_folder
+
+    input_paths = existing_inputs(inputs, fill, template, list(bands or []), list(templates_dirs or []))
+    check_output_folder(out, KIND_MEASURE, inputs=input_paths, overwrite=overwrite)
     tpl = load_template(template, list(templates_dirs or []))
     fill_record = load_fill_record(fill)
     overrides = parse_centre_overrides(centres, tpl)
@@ -419,12 +438,15 @@ def measure(
     except PhantomNotFound:
         try:
             from .figures import diagnostic_picture
+            from .outputs import write_picture_beside
 
-            diagnostic_picture(volume, out.with_name(out.name + ".failed.png"))
+            write_picture_beside(out.with_name(out.name + ".failed.png"), lambda p: diagnostic_picture(volume, p),
+                                 "failed localisation", inputs=input_paths)
         except Exception:  # the picture is a courtesy; the original error matters
             pass
         raise
-    with atomic_output_dir(out) as tmp:
+    with output_folder(out, KIND_MEASURE, inputs=input_paths, overwrite=overwrite) as staging:
+        tmp = staging.path
         (tmp / "measurements.csv").write_text(measurements_csv(analysis.rows), encoding="utf-8")
         (tmp / "measurements.json").write_text(to_json(analysis_json(analysis)), encoding="utf-8")
         if overlay:
@@ -451,6 +473,7 @@ def measure(
             from .report import write_measure_report
 
             write_measure_report(analysis, tmp / "report.html", folder=tmp)
+    analysis.written = staging.written
     return analysis
 
 
