@@ -56,8 +56,8 @@ from pathlib import Path
 from typing import Any, Callable, Sequence
 
 from . import __version__
-from .errors import InputError, NoPETSeries, PhantometryError
-from .results import CAUTION, CSV_COLUMNS, Measurement, _fmt, atomic_output_dir, to_json
+from .errors import InputError, NoPETSeries, OutputError, PhantometryError
+from .results import CAUTION, CSV_COLUMNS, Measurement, _fmt, to_json
 from .threads import current_threads, set_threads
 from .volume import Reconstruction
 
@@ -207,6 +207,8 @@ class ComparisonResult:
     template: Any = None
     #: (file name, caption) of the charts written
     charts: list[tuple[str, str]] = field(default_factory=list)
+    #: what writing the folder did (:class:`phantometry.outputs.WrittenFolder`: replaced an earlier one?)
+    written: Any = None
 
     @property
     def succeeded(self) -> list[SeriesOutcome]:
@@ -598,8 +600,13 @@ def _measure_into(
     outcome.localisation = analysis.placement.as_dict()
     if out_dir is not None:
         folder = Path(out_dir)
-        folder.mkdir(parents=True, exist_ok=True)
-        write_results(analysis, folder, overlay=overlay, pictures=False)
+        try:
+            folder.mkdir(parents=True, exist_ok=True)
+            write_results(analysis, folder, overlay=overlay, pictures=False)
+        except OSError as exc:  # no space, file-size limit ...: the whole comparison stops (see compare)
+            if exc.errno is None:
+                raise
+            raise OutputError(f"series/{folder.name}: {exc.strerror or os.strerror(exc.errno)}") from None
 
 
 # ============================================================================== ranking
@@ -784,6 +791,7 @@ def compare(
     trace_memory: bool = False,
     overlays: bool = True,
     measure_options: dict[str, Any] | None = None,
+    overwrite: bool = False,
 ) -> ComparisonResult:
     """Measure every PET series in ``inputs`` with one fill record and rank the settings.
 
@@ -819,6 +827,8 @@ def compare(
     measure_options : dict, optional
         Keyword arguments passed to :func:`phantometry.measure.measure_volume` for every
         series (e.g. ``{"resolution": False}``).
+    overwrite : bool
+        Replace ``out`` when it holds earlier phantometry results (``--overwrite``).
 
     Returns
     -------
@@ -829,12 +839,21 @@ def compare(
     ------
     InputError, NoPETSeries, TemplateError, FillRecordError, BandError
         Problems with the inputs common to all series (nothing is written).
+    OutputRefused
+        ``out`` may not be written (:mod:`phantometry.outputs`; checked before anything is
+        loaded): an existing file, a folder phantometry did not write, earlier results
+        without ``overwrite``, or a folder that is, lies inside or contains an input.
+    OutputError
+        A system error while writing (nothing is left behind).
     """
     from .fill import load_fill_record
+    from .outputs import KIND_COMPARE, check_output_folder, existing_inputs, output_folder
     from .phantoms import load_template
 
     t_start = time.perf_counter()
     dirs = [str(d) for d in (templates_dirs or [])]
+    input_paths = existing_inputs(inputs, fill, template, list(bands), labels, dirs)
+    check_output_folder(out, KIND_COMPARE, inputs=input_paths, overwrite=overwrite)
     tpl = load_template(template, dirs)
     fill_record = load_fill_record(fill)
     band_sets = _load_bands(list(bands), tpl)  # refuse bad band sets before any work
@@ -878,7 +897,8 @@ def compare(
         if progress:
             progress(0, total, None)
         out = Path(out)
-        with atomic_output_dir(out) as tmp:
+        with output_folder(out, KIND_COMPARE, inputs=input_paths, overwrite=overwrite) as staging:
+            tmp = staging.path
             run = _Run(jobs, (str(template), str(Path(fill)), dirs), tmp / "series", trace_memory, overlays, progress,
                        tuple(str(b) for b in bands), measure_options)
             if executor is None or total == 1:
@@ -890,10 +910,14 @@ def compare(
                     current["run"] = run
                 outcomes = run.with_pool(executor, started)
             ordered = [outcomes[j.number] for j in jobs]
+            for o in ordered:
+                if o.error_type == "OutputError":  # the folder would be incomplete: nothing is kept
+                    raise OutputError(f"{out}: cannot write the results ({o.error})")
             result = _finish(ordered, tpl, fill_record, band_sets, list(bands), mapping, notes, tmp, n_used)
             result.out = out
             _write_outputs(result, tmp, report, executor if run.pool_usable and total > 1 else None)
             result.seconds = time.perf_counter() - t_start
+        result.written = staging.written
     finally:
         if starter is not None:
             starter.join()

@@ -54,3 +54,11 @@ class BandError(InputError):
 
 class LedgerError(PhantometryError):
     """The trend ledger refused an operation (duplicate record, bad query, schema)."""
+
+
+class OutputError(PhantometryError):
+    """An output cannot be written (no space, file-size limit, permission, a file in the way)."""
+
+
+class OutputRefused(OutputError):
+    """An output path is refused before any work: it would replace or touch what the user owns."""

@@ -22,7 +22,7 @@ from .errors import InputError, PhantomNotFound, PhantometryError
 from .fill import FillRecord, load_fill_record
 from .phantoms import kind_of, load_template
 from .phantoms.base import Analysis, AnalysisSettings
-from .results import CAUTION, atomic_output_dir, measurements_csv, to_json
+from .results import CAUTION, measurements_csv, to_json
 from .templates import Template
 from .volume import Volume
 
@@ -229,6 +229,7 @@ def measure(
     report: bool = False,
     seg: bool = False,
     bands: Sequence[BandSet | str | os.PathLike] | None = None,
+    overwrite: bool = False,
 ) -> Analysis:
     """Measure a phantom scan from files and write ``out/`` (CSV, JSON, pictures).
 
@@ -240,8 +241,26 @@ def measure(
     rows' verdicts; they are loaded and checked against the template before measuring.
 
     The folder appears only when everything succeeded; if localisation fails, a diagnostic
-    picture is written to ``out.failed.png`` beside it and :class:`PhantomNotFound` is raised.
+    picture is written to ``out.failed.png`` beside it (unless a file phantometry did not
+    write is there) and :class:`PhantomNotFound` is raised.
+
+    ``out`` follows the rules of :mod:`phantometry.outputs`, checked before anything is
+    loaded: it must not exist, be an empty folder, or (with ``overwrite=True``) be a folder of
+    earlier phantometry results; it may not be, lie inside or contain an input. The returned
+    analysis carries ``written`` (:class:`phantometry.outputs.WrittenFolder`: whether an
+    earlier folder was replaced, and what it held that this run did not write).
+
+    Raises
+    ------
+    OutputRefused
+        ``out`` may not be written (nothing is loaded or written).
+    OutputError
+        A system error while writing (the reason in the message; nothing is left behind).
     """
+    from .outputs import KIND_MEASURE, check_output_folder, existing_inputs, output_folder
+
+    input_paths = existing_inputs(inputs, fill, template, list(bands or []), list(templates_dirs or []))
+    check_output_folder(out, KIND_MEASURE, inputs=input_paths, overwrite=overwrite)
     tpl = load_template(template, list(templates_dirs or []))
     kind = kind_of(tpl)
     fill_record = load_fill_record(fill)
@@ -264,16 +283,19 @@ def measure(
     except PhantomNotFound:
         try:
             from .figures import diagnostic_picture
+            from .outputs import write_picture_beside
 
-            diagnostic_picture(volume, out.with_name(out.name + ".failed.png"))
+            write_picture_beside(out.with_name(out.name + ".failed.png"), lambda p: diagnostic_picture(volume, p),
+                                 "failed localisation", inputs=input_paths)
         except Exception:  # the picture is a courtesy; the original error matters
             pass
         raise
     if band_sets:
         judge(analysis, band_sets)
-    with atomic_output_dir(out) as tmp:
-        write_results(analysis, tmp, overlay=overlay, pictures=overlay, report=report, seg=seg,
+    with output_folder(out, KIND_MEASURE, inputs=input_paths, overwrite=overwrite) as staging:
+        write_results(analysis, staging.path, overlay=overlay, pictures=overlay, report=report, seg=seg,
                       source_paths=[inputs] if isinstance(inputs, (str, os.PathLike)) else list(inputs))
+    analysis.written = staging.written
     return analysis
 
 

@@ -11,12 +11,8 @@ import io
 import json
 import math
 import os
-import shutil
-import tempfile
-from contextlib import contextmanager
 from dataclasses import asdict, dataclass, fields
-from pathlib import Path
-from typing import Any, Iterator
+from typing import Any
 
 #: Columns of measurements.csv, in order. A stable contract: new columns are only appended.
 CSV_COLUMNS = [
@@ -134,28 +130,3 @@ def _json_default(o: Any) -> Any:
 
 def to_json(obj: Any) -> str:
     return json.dumps(obj, indent=2, default=_json_default, allow_nan=False)
-
-
-@contextmanager
-def atomic_output_dir(target: str | os.PathLike) -> Iterator[Path]:
-    """Write into a temporary sibling folder and move it into place only on success.
-
-    A failed run leaves ``target`` as it was (absent, or the previous results).
-    """
-    target = Path(target)
-    target.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{target.name}.tmp-", dir=target.parent))
-    try:
-        yield tmp
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
-    old = None
-    if target.exists():
-        old = target.parent / f".{target.name}.old-{os.getpid()}"
-        if old.exists():
-            shutil.rmtree(old)
-        target.rename(old)
-    tmp.rename(target)
-    if old is not None:
-        shutil.rmtree(old, ignore_errors=True)

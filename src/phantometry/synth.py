@@ -34,7 +34,7 @@ import os
 from dataclasses import asdict, dataclass, field
 from datetime import datetime, timedelta
 from pathlib import Path
-from typing import Any
+from typing import Any, Sequence
 
 import numpy as np
 from scipy import ndimage
@@ -398,40 +398,52 @@ def fill_record_for(spec: SynthSpec, template: Template, measured_before_s: floa
     return record
 
 
-def write_synthetic(result: SynthResult, out_dir: str | os.PathLike, fmt: str = "dicom") -> dict[str, Path]:
+def write_synthetic(
+    result: SynthResult,
+    out_dir: str | os.PathLike,
+    fmt: str = "dicom",
+    *,
+    overwrite: bool = False,
+    inputs: Sequence[str | os.PathLike] = (),
+) -> dict[str, Any]:
     """Write a synthetic scan: image (DICOM series or NIfTI + sidecar), ``fill.yaml``, ``truth.json``.
 
-    Returns the paths written, keyed ``image``, ``fill``, ``truth``.
+    The folder is written by :func:`phantometry.outputs.output_folder` (kind ``synthetic-scan``):
+    it must not exist, be empty, or (with ``overwrite=True``) hold an earlier phantometry
+    folder; ``inputs`` (e.g. a user template file) may not lie in it.
+
+    Returns the paths written, keyed ``image``, ``fill``, ``truth``, and ``written`` (the
+    :class:`phantometry.outputs.WrittenFolder`, which says whether an earlier folder was replaced).
     """
     import yaml
 
-    out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
-    if fmt == "dicom":
-        from .io.dicom_write import write_dicom_series
+    from .outputs import KIND_SCAN, output_folder
 
-        image_dir = out / "dicom"
-        write_dicom_series(
-            result.volume,
-            image_dir,
-            patient_name="PHANTOM^QC",
-            patient_weight_kg=10.0,
-            injected_dose_bq=_nominal_dose_bq(result),
-            injection_time=result.volume.acquired_at - timedelta(minutes=60),
-            series_description=result.volume.series_description,
-        )
-        image: Path = image_dir
-    elif fmt == "nifti":
-        from .io.nifti import write_nifti
-
-        image = write_nifti(result.volume, out / "phantom.nii.gz")
-    else:
+    if fmt not in ("dicom", "nifti"):
         raise InputError(f"unknown image format {fmt!r}; use dicom or nifti")
-    fill_path = out / "fill.yaml"
-    fill_path.write_text(yaml.safe_dump(result.fill_record, sort_keys=False), encoding="utf-8")
-    truth_path = out / "truth.json"
-    truth_path.write_text(json.dumps(result.truth, indent=2), encoding="utf-8")
-    return {"image": image, "fill": fill_path, "truth": truth_path}
+    out = Path(out_dir)
+    with output_folder(out, KIND_SCAN, inputs=inputs, overwrite=overwrite) as staging:
+        tmp = staging.path
+        if fmt == "dicom":
+            from .io.dicom_write import write_dicom_series
+
+            write_dicom_series(
+                result.volume,
+                tmp / "dicom",
+                patient_name="PHANTOM^QC",
+                patient_weight_kg=10.0,
+                injected_dose_bq=_nominal_dose_bq(result),
+                injection_time=result.volume.acquired_at - timedelta(minutes=60),
+                series_description=result.volume.series_description,
+            )
+            image = out / "dicom"
+        else:
+            from .io.nifti import write_nifti
+
+            image = out / write_nifti(result.volume, tmp / "phantom.nii.gz").name
+        (tmp / "fill.yaml").write_text(yaml.safe_dump(result.fill_record, sort_keys=False), encoding="utf-8")
+        (tmp / "truth.json").write_text(json.dumps(result.truth, indent=2), encoding="utf-8")
+    return {"image": image, "fill": out / "fill.yaml", "truth": out / "truth.json", "written": staging.written}
 
 
 def _nominal_dose_bq(result: SynthResult) -> float:

@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import json
+import os
+import shutil
 import tempfile
 from datetime import datetime
 from pathlib import Path
@@ -64,7 +66,8 @@ def measure_cmd(
     inputs: List[Path] = typer.Argument(..., help="DICOM folder(s)/file(s) of one series, or a NIfTI file."),
     template: str = typer.Option("iec-body", "--template", "-t", help="Template name or YAML file."),
     fill: Path = typer.Option(..., "--fill", "-f", help="Fill record YAML (phantom preparation)."),
-    out: Path = typer.Option(..., "--out", "-o", help="Result folder (written atomically)."),
+    out: Path = typer.Option(..., "--out", "-o", help="Result folder: a new one, or earlier results with --overwrite (written atomically)."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace --out when it holds earlier phantometry results (never any other folder)."),
     series: Optional[str] = typer.Option(None, "--series", help="Series UID, UID prefix or series number."),
     centre: Optional[List[str]] = typer.Option(None, "--centre", help="Manual insert centre NAME=x,y,z (world mm); repeatable."),
     units: Optional[str] = typer.Option(None, "--units", help="NIfTI: pixel units (Bq/mL, kBq/mL)."),
@@ -109,9 +112,11 @@ def measure_cmd(
         report=report,
         seg=seg,
         bands=list(bands or []),
+        overwrite=overwrite,
     )
     print_summary_table(analysis)
     _print_resolution_and_verdicts(analysis, bool(bands))
+    print_written(analysis.written)
     console.print(f"wrote {out}/measurements.csv, measurements.json, overlay.png", markup=False)
     if (Path(out) / "recovery_curve.png").exists():
         console.print(f"wrote {out}/recovery_curve.png", markup=False)
@@ -175,9 +180,17 @@ def _print_resolution_and_verdicts(analysis: Analysis, banded: bool) -> None:
     console.print(t)
 
 
+def print_written(written) -> None:
+    """Say so when an earlier results folder was replaced (and what it held that is now gone)."""
+    text = written.message() if written is not None else None
+    if text:
+        console.print(f"[bold]NOTE[/bold]: {escape(text)}", soft_wrap=True)
+
+
 @app.command("synth")
 def synth_cmd(
-    out: Path = typer.Argument(..., help="Output folder."),
+    out: Path = typer.Argument(..., help="Output folder: a new one, or an earlier synthetic scan with --overwrite."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace OUT when it holds an earlier phantometry folder (never any other folder)."),
     phantom: str = typer.Option("iec-body", "--phantom", help="Template name: iec-body, small-animal, or a user template."),
     fmt: str = typer.Option("dicom", "--format", help="dicom or nifti."),
     voxel: Optional[float] = typer.Option(None, "--voxel", help="Isotropic voxel size, mm (default 2; 0.5 for small-animal)."),
@@ -193,8 +206,13 @@ def synth_cmd(
     seed: int = typer.Option(0, "--seed", help="Noise seed."),
 ) -> None:
     """Synthesise a phantom scan with known truth (image, fill.yaml, truth.json)."""
+    from ..outputs import KIND_SCAN, check_output_folder, existing_inputs
     from ..synth import SynthSpec, default_scan_settings, synthesize, write_synthetic
 
+    if fmt not in ("dicom", "nifti"):
+        raise InputError(f"--format {fmt!r}: use dicom or nifti")
+    inputs = existing_inputs(phantom)
+    check_output_folder(out, KIND_SCAN, inputs=inputs, overwrite=overwrite)  # before synthesising
     defaults = default_scan_settings(phantom)
     voxel = defaults["voxel_mm"] if voxel is None else voxel
     fwhm = defaults["psf_fwhm_mm"] if fwhm is None else fwhm
@@ -223,7 +241,8 @@ def synth_cmd(
         flip=flip,
         seed=seed,
     )
-    paths = write_synthetic(synthesize(spec), out, fmt)
+    paths = write_synthetic(synthesize(spec), out, fmt, overwrite=overwrite, inputs=inputs)
+    print_written(paths["written"])
     console.print(f"wrote {paths['image']}, {paths['fill']}, {paths['truth']}", markup=False)
 
 
@@ -242,19 +261,32 @@ def info_cmd(
 
 @app.command("demo")
 def demo_cmd(
-    out: Optional[Path] = typer.Option(None, "--out", "-o", help="Folder for the demo scan and results (default: a temporary folder)."),
+    out: Optional[Path] = typer.Option(None, "--out", "-o", help="Folder for the demo scan and results: a new one, or an earlier demo with --overwrite (default: a temporary folder)."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace --out when it holds an earlier phantometry folder (never any other folder)."),
     noise: float = typer.Option(0.1, "--noise", help="Background voxel coefficient of variation."),
 ) -> None:
     """Synthesise an IEC body phantom scan (invented scenario) and measure it end to end."""
     from ..measure import measure
+    from ..outputs import KIND_DEMO, output_folder
     from ..synth import SynthSpec, synthesize, write_synthetic
 
     base = Path(out) if out else Path(tempfile.mkdtemp(prefix="phantometry-demo-"))
-    console.print("[bold]phantometry demo[/bold]: synthetic IEC body phantom (invented site and scanner) in " + escape(str(base)))
-    spec = SynthSpec(voxel_mm=(2.0, 2.0, 2.0), psf_fwhm_mm=6.0, noise_cv=noise, shift_mm=(6.0, -4.0, 3.0), rotation_deg=(1.5, -1.0, 17.0), seed=7)
-    paths = write_synthetic(synthesize(spec), base / "scan", "dicom")
-    analysis = measure([str(paths["image"])], template="iec-body", fill=paths["fill"], out=base / "results")
+    if out is None:  # mkdtemp makes it 0700: give it the user's umask like any other folder
+        mask = os.umask(0)
+        os.umask(mask)
+        os.chmod(base, 0o777 & ~mask)
+    try:
+        with output_folder(base, KIND_DEMO, overwrite=overwrite) as staging:
+            console.print("[bold]phantometry demo[/bold]: synthetic IEC body phantom (invented site and scanner) in " + escape(str(base)))
+            spec = SynthSpec(voxel_mm=(2.0, 2.0, 2.0), psf_fwhm_mm=6.0, noise_cv=noise, shift_mm=(6.0, -4.0, 3.0), rotation_deg=(1.5, -1.0, 17.0), seed=7)
+            paths = write_synthetic(synthesize(spec), staging.path / "scan", "dicom")
+            analysis = measure([str(paths["image"])], template="iec-body", fill=paths["fill"], out=staging.path / "results")
+    except BaseException:
+        if out is None:  # the empty temporary folder made above
+            shutil.rmtree(base, ignore_errors=True)
+        raise
     print_summary_table(analysis)
+    print_written(staging.written)
     console.print(f"results in {base / 'results'} (measurements.csv, measurements.json, overlay.png)", markup=False)
 
 

@@ -13,6 +13,7 @@ from rich.table import Table
 
 from ..results import CAUTION
 from . import app
+from .commands import print_written
 
 console = Console(highlight=False)
 err_console = Console(stderr=True, highlight=False)
@@ -60,7 +61,8 @@ def compare_cmd(
     template: str = typer.Option("iec-body", "--template", "-t", help="Template name or YAML file."),
     fill: Path = typer.Option(..., "--fill", "-f", help="Fill record YAML, the same for every series."),
     bands: Optional[List[str]] = typer.Option(None, "--bands", "-b", help="Acceptance band set; repeatable."),
-    out: Path = typer.Option(..., "--out", "-o", help="Result folder (written atomically)."),
+    out: Path = typer.Option(..., "--out", "-o", help="Result folder: a new one, or earlier results with --overwrite (written atomically)."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace --out when it holds earlier phantometry results (never any other folder)."),
     labels: Optional[Path] = typer.Option(None, "--labels", help="YAML or CSV file: series UID or number -> label."),
     workers: Optional[int] = typer.Option(None, "--workers", "-j", help="Worker processes (default: one per CPU)."),
     report: bool = typer.Option(False, "--report", help="Also write report.html (self-contained)."),
@@ -101,8 +103,10 @@ def compare_cmd(
             report=report,
             templates_dirs=[str(d) for d in templates_dir or []],
             progress=progress,
+            overwrite=overwrite,
         )
     print_ranking(result, report)
+    print_written(result.written)
     files = "comparison.csv, ranking.csv, summary.json, contrast_noise.png, recovery_curves.png" + (", report.html" if report else "")
     console.print(f"wrote {out}/ ({files}); {len(result.succeeded)} of {len(result.outcomes)} series measured", markup=False)
     if result.exit_code:

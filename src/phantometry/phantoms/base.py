@@ -249,6 +249,8 @@ class Analysis(ABC):
     noise: "NoiseModel | None" = None
     #: placement quality of each ROI set, as the image confirms it
     placement_checks: list[RoiSetCheck] = field(default_factory=list)
+    #: the result folder written (phantometry.outputs.WrittenFolder), once ``measure`` wrote one
+    written: Any = None
 
     # ---------------------------------------------------------------- queries
     def value(self, roi: str, metric: str) -> float | None:
