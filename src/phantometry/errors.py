@@ -54,3 +54,7 @@ class BandError(InputError):
 
 class LedgerError(PhantometryError):
     """The trend ledger refused an operation (duplicate record, bad query, schema)."""
+
+
+class ImageTooLarge(InputError):
+    """An image header claims more voxels than the limit ($PHANTOMETRY_MAX_VOXELS) or than its file holds."""

@@ -11,20 +11,23 @@ import math
 import os
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Sequence
+from typing import TYPE_CHECKING, Any, Sequence
 
 import numpy as np
 
 from . import __version__
 from .errors import FillRecordError, InputError, PhantomNotFound, PhantometryError
 from .fill import FillRecord, load_fill_record
-from .locate import Placement, locate
-from .metrics.nu2 import background_variability, lung_residual, percent_contrast_cold, percent_contrast_hot
-from .metrics.recovery import recovery_coefficients
 from .results import CAUTION, Measurement, atomic_output_dir, measurements_csv, to_json
-from .rois import PlaneImage, disc_means, sample_plane
 from .templates import Template, load_template
 from .volume import Volume
+
+if TYPE_CHECKING:  # pragma: no cover
+    from .locate import Placement
+    from .rois import PlaneImage
+
+# The analysis modules (locate, rois, metrics: scipy.ndimage) are imported where they are used,
+# so that a command refusing its inputs answers without loading them.
 
 #: Relative deviation of the measured background from the fill record that raises a warning.
 BACKGROUND_WARNING_FRACTION = 0.10
@@ -65,7 +68,7 @@ class BodyAnalysis:
         return out
 
 
-def _plane_basis(placement: Placement) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _plane_basis(placement: "Placement") -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     rot = placement.rotation
     return rot[:, 0].copy(), rot[:, 1].copy(), rot[:, 2].copy()
 
@@ -104,14 +107,17 @@ def measure_volume(
     BodyAnalysis with :class:`~phantometry.results.Measurement` rows.
     """
     where = where or volume.source or "image"
+    fill.check_inserts(template.fillable_names, template.name)
     if template.analysis.kind == "small_animal_image_quality":
         from .small_animal import measure_small_animal
 
-        return _with_bands(measure_small_animal(volume, template, fill, overrides=overrides, where=where), bands, template)  # type: ignore[return-value]
+        analysis = measure_small_animal(volume, template, fill, overrides=overrides, where=where)
+        return _with_bands(_with_volume_warnings(analysis, volume), bands, template)  # type: ignore[return-value]
     if template.analysis.kind == "inserts":
         from .generic import measure_inserts
 
-        return _with_bands(measure_inserts(volume, template, fill, overrides=overrides, where=where), bands, template)  # type: ignore[return-value]
+        analysis = measure_inserts(volume, template, fill, overrides=overrides, where=where)
+        return _with_bands(_with_volume_warnings(analysis, volume), bands, template)  # type: ignore[return-value]
     if template.analysis.kind != "body_image_quality":
         raise InputError(f"template {template.name}: analysis kind {template.analysis.kind} is not measurable yet")
     if volume.acquired_at is None:
@@ -131,6 +137,11 @@ def measure_volume(
 
         check_body_size(volume, template, where)
         raise
+    from .locate import locate
+    from .metrics.nu2 import background_variability, lung_residual, percent_contrast_cold, percent_contrast_hot
+    from .metrics.recovery import recovery_coefficients
+    from .rois import disc_means, sample_plane
+
     placement = locate(volume, template, hot=hot, activity_ratio=ratio, overrides=overrides, where=where)
     analysis = template.analysis
     bg_set = template.background
@@ -227,7 +238,13 @@ def measure_volume(
     add("background", "activity_recovery", recovery, "1", note)
     result = BodyAnalysis(volume, template, fill, placement, rows, planes, roi_means, true_bg, true_ins, warnings)
     _judge_body(result, overrides=overrides, uncertainties=uncertainties, resolution=resolution, variance_power=variance_power)
-    return _with_bands(result, bands, template)
+    return _with_bands(_with_volume_warnings(result, volume), bands, template)
+
+
+def _with_volume_warnings(analysis: Any, volume: Volume) -> Any:
+    """Put the loader's warnings about the image (``Volume.warnings``) first in the analysis's."""
+    analysis.warnings[:0] = [w for w in volume.warnings if w not in analysis.warnings]
+    return analysis
 
 
 def _judge_body(analysis: BodyAnalysis, *, overrides, uncertainties: bool, resolution: bool, variance_power: float) -> None:
@@ -399,6 +416,7 @@ def measure(
     """
     tpl = load_template(template, list(templates_dirs or []))
     fill_record = load_fill_record(fill)
+    fill_record.check_inserts(tpl.fillable_names, tpl.name)
     overrides = parse_centre_overrides(centres, tpl)
     band_sets = None
     if bands:
