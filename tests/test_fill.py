@@ -395,11 +395,24 @@ def test_insert_entry_far_from_the_scan_names_the_insert(tmp_path):
 
 # ---------------------------------------------------------------------------- insert names
 def test_insert_names_checked_against_the_template():
-    rec = FillRecord.from_dict(_base() | {"cold": ["sphere_99mm", "sphere_37mm"], "inserts": {"sphere_1mm": {"ratio_to_background": 8}}},
-                               source="f.yaml")
+    from phantometry.templates import load_template
+
+    iec = load_template("iec-body")
+    rec = FillRecord.from_dict(
+        _base() | {"cold": ["sphere_99mm", "sphere_37mm", "lung_insert"], "inserts": {"sphere_1mm": {"ratio_to_background": 8}}},
+        source="f.yaml",
+    )
     with pytest.raises(FillRecordError) as info:
-        rec.check_inserts(["sphere_10mm", "sphere_37mm"], "iec-body")
+        rec.check_inserts(iec)
     msg = str(info.value)
-    assert msg.startswith("f.yaml: cold: sphere_99mm; inserts: sphere_1mm: not an insert of template iec-body")
-    assert "fillable inserts: sphere_10mm, sphere_37mm" in msg
-    FillRecord.from_dict(_base() | {"cold": ["sphere_37mm"]}).check_inserts(["sphere_10mm", "sphere_37mm"], "iec-body")
+    assert msg.startswith("f.yaml: cold: sphere_99mm is not an insert of template iec-body; inserts: sphere_1mm is not an insert")
+    assert "lung_insert" not in msg  # cold in the template too: consistent, accepted
+    assert "the fill record fills sphere_" in msg
+    # an insert the template fills itself cannot be given a concentration
+    with pytest.raises(FillRecordError, match="inserts: lung_insert is filled by template iec-body itself"):
+        FillRecord.from_dict(_base() | {"inserts": {"lung_insert": {"ratio_to_background": 2}}}).check_inserts(iec)
+    small_animal = load_template("small-animal")
+    with pytest.raises(FillRecordError, match=r"cold: rod_1mm is filled by template small-animal itself \(fill: background\)"):
+        FillRecord.from_dict(_base() | {"cold": ["rod_1mm"]}).check_inserts(small_animal)
+    FillRecord.from_dict(_base() | {"cold": ["cold_water", "cold_air"]}).check_inserts(small_animal)
+    FillRecord.from_dict(_base() | {"cold": ["sphere_37mm"]}).check_inserts(iec)

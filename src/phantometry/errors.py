@@ -57,4 +57,4 @@ class LedgerError(PhantometryError):
 
 
 class ImageTooLarge(InputError):
-    """An image header claims more voxels than the limit ($PHANTOMETRY_MAX_VOXELS) or than its file holds."""
+    """An image is larger than the voxel limit ($PHANTOMETRY_MAX_VOXELS) or the memory available."""

@@ -282,27 +282,36 @@ class FillRecord(_Strict):
             raise ValueError("; ".join(problems))
         return self
 
-    def check_inserts(self, names: typing.Iterable[str], template: str) -> None:
-        """Refuse insert names in ``cold`` and ``inserts`` that are not in ``names``.
+    def check_inserts(self, template: Any) -> None:
+        """Refuse insert names in ``cold`` and ``inserts`` that the template contradicts.
+
+        A name in ``inserts`` must be an insert the template lets the fill record fill
+        (``fill: fill_record``); a name in ``cold`` may also be one the template already holds
+        cold (``fill: cold``). Any other name (misspelt, of another phantom, or an insert the
+        template fills with the background solution or makes of plastic) would be ignored.
 
         Parameters
         ----------
-        names : the names of the template's inserts that a fill record may fill.
-        template : the template's name, for the message.
+        template : :class:`phantometry.templates.Template`
 
         Raises
         ------
         FillRecordError
-            Naming each unknown insert and listing ``names``, so a misspelt or wrong-phantom
-            name is never ignored.
+            Naming each such insert and listing the template's fillable inserts.
         """
-        known = list(names)
-        unknown = [f"cold: {n}" for n in self.cold if n not in known]
-        unknown += [f"inserts: {n}" for n in (self.inserts or {}) if n not in known]
-        if unknown:
+        fills = {i.name: i.fill for i in template.inserts}
+        fillable = [name for name, how in fills.items() if how == "fill_record"]
+        problems = []
+        for key, names, allowed in (("cold", self.cold, ("fill_record", "cold")), ("inserts", list(self.inserts or {}), ("fill_record",))):
+            for name in names:
+                if name not in fills:
+                    problems.append(f"{key}: {name} is not an insert of template {template.name}")
+                elif fills[name] not in allowed:
+                    problems.append(f"{key}: {name} is filled by template {template.name} itself (fill: {fills[name]})")
+        if problems:
             raise FillRecordError(
-                f"{self._source}: {'; '.join(unknown)}: not an insert of template {template} "
-                f"(its fillable inserts: {', '.join(known) or 'none'}); fix the name or use the right template"
+                f"{self._source}: {'; '.join(problems)}; the fill record fills {', '.join(fillable) or 'no insert'} "
+                "of this template: fix the name or use the right template"
             )
 
     # ------------------------------------------------------------------ construction

@@ -107,7 +107,7 @@ def measure_volume(
     BodyAnalysis with :class:`~phantometry.results.Measurement` rows.
     """
     where = where or volume.source or "image"
-    fill.check_inserts(template.fillable_names, template.name)
+    fill.check_inserts(template)
     if template.analysis.kind == "small_animal_image_quality":
         from .small_animal import measure_small_animal
 
@@ -416,7 +416,7 @@ def measure(
     """
     tpl = load_template(template, list(templates_dirs or []))
     fill_record = load_fill_record(fill)
-    fill_record.check_inserts(tpl.fillable_names, tpl.name)
+    fill_record.check_inserts(tpl)
     overrides = parse_centre_overrides(centres, tpl)
     band_sets = None
     if bands:

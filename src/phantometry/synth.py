@@ -192,7 +192,7 @@ def _body_corners(template: Template) -> np.ndarray:
 def insert_concentrations_bq_ml(template: Template, spec: SynthSpec) -> dict[str, float]:
     """True concentration (Bq/mL, at the scan time) of every insert's fill."""
     bg = spec.background_kbq_ml * 1000.0
-    unknown = sorted(set(spec.cold) - set(template.fillable_names))
+    unknown = sorted(set(spec.cold) - {i.name for i in template.inserts if i.fill in ("fill_record", "cold")})
     if unknown:
         raise InputError(
             f"--cold names inserts the fill record does not fill: {', '.join(unknown)}; fillable inserts: "

@@ -84,7 +84,6 @@ from pydicom.uid import (
 from ..errors import (
     AmbiguousSeries,
     GeometryError,
-    ImageTooLarge,
     InputError,
     NoPETSeries,
     UnitsError,
@@ -985,7 +984,7 @@ def _check_pixel_claims(entries: list[_Entry], geometry: "_Geometry") -> None:
         needed = (geometry.rows * geometry.columns * samples * bits + 7) // 8
         present = _pixel_bytes_present(entry)
         if present is not None and present < needed:
-            raise ImageTooLarge(
+            raise InputError(
                 f"{entry.path}: Rows x Columns {geometry.rows} x {geometry.columns} at {bits} bits claim {needed:,} bytes "
                 f"of pixel data but the file holds {present:,}; the file is truncated or its header damaged, copy it again"
             )

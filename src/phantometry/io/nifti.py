@@ -322,9 +322,9 @@ def _check_data_present(img: Any, p: Path) -> None:
         present = p.stat().st_size
     packed = "decompressed " if p.name.lower().endswith(".gz") else ""
     if offset > present:
-        raise ImageTooLarge(f"{p}: vox_offset {offset:,} lies beyond the end of the {packed}file ({present:,} bytes); the header is damaged")
+        raise InputError(f"{p}: vox_offset {offset:,} lies beyond the end of the {packed}file ({present:,} bytes); the header is damaged")
     if present < needed:
-        raise ImageTooLarge(
+        raise InputError(
             f"{p}: the header claims {'x'.join(map(str, img.shape))} voxels of {itemsize} bytes from offset {offset:,} "
             f"({needed:,} bytes) but the {packed}file holds "
             f"{present:,}; the file is truncated or its header damaged, copy it again"
