@@ -42,12 +42,24 @@ What the loader does, in order:
      here, since the loader only inverts an SUV the scanner already computed.)
    * Anything else is refused by name.
 
+   ``BQML`` and ``GML`` series must state Decay Correction (``NONE``, ``START`` or ``ADMIN``);
+   without it the time the values refer to is unknown. A Radionuclide Half Life that is not a
+   positive number is refused; one more than 1 % from the table value of the nuclide its code
+   names (:mod:`phantometry.nuclides`) is replaced by the table value, with a warning on
+   ``Volume.warnings``. A decay over more than 40 half-lives (a wrong date) is refused.
+
 5. **Times.** All DA/TM/DT values are read in the zone of Timezone Offset From UTC
    (0008,0201) (a DT with its own ``+HHMM`` suffix keeps it). Without that attribute the
    loader assumes UTC and warns with :class:`TimeZoneAssumedWarning`
    (``SeriesInfo.time_zone_assumed`` says so too); it never uses the machine's local zone.
    ``Volume.acquired_at`` is the reference time of the values: the scan time above for
    ``START`` and ``NONE`` (acquisition start), the injection time for ``ADMIN``.
+
+6. **Claims.** Before the voxel array is allocated, Rows x Columns x slices is checked against
+   ``$PHANTOMETRY_MAX_VOXELS`` (:mod:`phantometry.io.limits`) and every uncompressed slice's
+   Pixel Data length against Rows x Columns x Bits Allocated. Non-finite positions,
+   orientations, spacings and rescale values, and transfer syntaxes that are not standard, are
+   refused by file. pydicom's own warnings are silenced; damaged elements are refused by name.
 
 Patient name, ID and birth date are never copied onto the Volume.
 """
@@ -905,7 +917,7 @@ def _suv_to_bqml(
     try:
         check_decay_gap(nuclide, float(elapsed[worst]), isotope.injection, times[worst])
     except DecayGapError as exc:
-        raise UnitsError(f"{first.path}: injection to scan time: {exc}; fix the radiopharmaceutical start time") from None
+        raise UnitsError(f"{first.path}: injection to scan time: {exc}") from None
     decayed_dose = dose * np.power(2.0, -elapsed / float(half_life))
     return decayed_dose / weight_g
 

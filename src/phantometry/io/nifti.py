@@ -7,6 +7,11 @@ Loading (:func:`load_nifti`):
   ``(i, j, k)``; it is transposed to the project's array order ``(k, j, i)`` = (z, y, x) and
   kept as float32. A 4-D image with one frame is used as 3-D; more frames are refused with
   :class:`~phantometry.errors.UnsupportedSeries`.
+* **Checks before reading voxels.** Every dimension at least 1, finite pixdim and affine, at
+  most ``$PHANTOMETRY_MAX_VOXELS`` voxels (:mod:`phantometry.io.limits`), and at least
+  vox_offset + voxels x bytes per voxel present in the file (a ``.nii.gz`` is decompressed as a
+  stream to count them, nothing of the claimed size allocated). Voxels that are NaN or infinite
+  are refused after reading. nibabel's log lines about header fixes are kept off the terminal.
 * **Geometry.** The affine is nibabel's (sform when its code is set, else qform), which maps
   ``(i, j, k, 1)`` to NIfTI scanner/world mm, so the volume's frame is ``"RAS"``.
 * **Sidecar.** The JSON beside the image (``.nii``/``.nii.gz`` replaced by ``.json``) or the
