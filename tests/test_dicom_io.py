@@ -26,6 +26,7 @@ from scipy.spatial.transform import Rotation
 from phantometry.errors import (
     AmbiguousSeries,
     GeometryError,
+    ImageTooLarge,
     InputError,
     NoPETSeries,
     UnitsError,
@@ -576,3 +577,112 @@ def test_loader_warns_nothing_for_complete_series(base_series):
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         load_dicom(base_series[0])
+
+
+# ----------------------------------------------------------------------------- header claims and decay
+def _set_half_life(value: str):
+    def change(ds, k):
+        ds.RadiopharmaceuticalInformationSequence[0].RadionuclideHalfLife = value
+
+    return change
+
+
+def test_half_life_differing_from_the_table_uses_the_table_and_warns(series_copy):
+    folder, volume, paths = series_copy
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        _edit(paths, _set_half_life(f"{F18_HALF_LIFE_S * 1.02:.1f}"))  # 2 % off the F-18 table value
+    loaded = load_dicom(folder)
+    assert loaded.nuclide == "F-18"
+    assert len(loaded.warnings) == 1
+    assert "differs from the F-18 half-life 6586.2 s" in loaded.warnings[0] and "by 2.0 %" in loaded.warnings[0]
+    # within 1 % nothing is said
+    _edit(paths, _set_half_life(f"{F18_HALF_LIFE_S * 1.005:.1f}"))
+    assert load_dicom(folder).warnings == ()
+
+
+@pytest.mark.parametrize("value", ["-6586.2", "0", "nan"])
+def test_non_positive_or_non_finite_half_life_refused(series_copy, value):
+    folder, volume, paths = series_copy
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        _edit(paths, _set_half_life(value))
+    with pytest.raises(InputError, match="RadionuclideHalfLife") as info:
+        load_dicom(folder)
+    assert str(paths[0].parent) in str(info.value)
+
+
+@pytest.mark.parametrize("value", [None, "LATER"])
+def test_bqml_series_must_state_its_decay_correction(series_copy, value):
+    folder, volume, paths = series_copy
+
+    def change(ds, k):
+        if value is None:
+            del ds.DecayCorrection
+        else:
+            ds.DecayCorrection = value
+
+    _edit(paths, change)
+    with pytest.raises(UnitsError) as info:
+        load_dicom(folder)
+    assert "DecayCorrection (0054,1102)" in str(info.value) and "NONE, START, ADMIN" in str(info.value)
+
+
+def test_pixel_data_shorter_than_claimed_refused_before_allocating(series_copy, monkeypatch):
+    """Rows x Columns of 16384 on every slice: refused from the file sizes, nothing large allocated."""
+    import tracemalloc
+
+    folder, volume, paths = series_copy
+    monkeypatch.setenv("PHANTOMETRY_MAX_VOXELS", str(10**11))  # past the cap: the bytes present decide
+
+    def change(ds, k):
+        ds.Rows = ds.Columns = 16384
+
+    _edit(paths, change)
+    tracemalloc.start()
+    try:
+        with pytest.raises(InputError, match="claim 536,870,912 bytes of pixel data but the file holds 2,048"):
+            load_dicom(folder)
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    assert peak < 20 * 2**20  # 20 MB, against 5.4 GB claimed (20 x 16384^2 float32)
+
+
+def test_voxel_limit_from_the_environment(series_copy, monkeypatch):
+    folder, volume, paths = series_copy
+    monkeypatch.setenv("PHANTOMETRY_MAX_VOXELS", "20000")  # the series is 32 x 32 x 20 = 20,480
+    with pytest.raises(ImageTooLarge, match=r"32 x 32 x 20 = 20,480 voxels, more than the limit of 20,000"):
+        load_dicom(folder)
+    monkeypatch.setenv("PHANTOMETRY_MAX_VOXELS", "20480")
+    assert load_dicom(folder).shape == SHAPE
+    monkeypatch.setenv("PHANTOMETRY_MAX_VOXELS", "-1")
+    with pytest.raises(InputError, match=r"\$PHANTOMETRY_MAX_VOXELS is '-1'"):
+        load_dicom(folder)
+
+
+@pytest.mark.parametrize(
+    "keyword, value, needle",
+    [
+        ("ImagePositionPatient", ["nan", "0", "0"], "ImagePositionPatient [nan, 0, 0] holds a number that is not finite"),
+        ("PixelSpacing", ["2.5", "inf"], "PixelSpacing [2.5, inf] holds a number that is not finite"),
+        ("RescaleIntercept", "nan", "RescaleIntercept 'nan' is not a finite number"),
+        ("RescaleSlope", "0", "RescaleSlope (0028,1053) is 0"),
+    ],
+)
+def test_non_finite_geometry_and_scaling_refused(series_copy, keyword, value, needle):
+    folder, volume, paths = series_copy
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        _edit(paths[4:5], lambda ds, k: setattr(ds, keyword, value))
+    with pytest.raises(InputError) as info:
+        load_dicom(folder)
+    assert needle in str(info.value) and str(paths[4]) in str(info.value)
+    assert "np.float64" not in str(info.value)
+
+
+def test_unknown_transfer_syntax_refused(series_copy):
+    folder, volume, paths = series_copy
+    _edit(paths[:1], lambda ds, k: setattr(ds.file_meta, "TransferSyntaxUID", "1.2.3.4.5"))
+    with pytest.raises(UnsupportedSeries, match=r"Transfer Syntax UID '1\.2\.3\.4\.5' is not a standard DICOM transfer syntax"):
+        load_dicom(folder)

@@ -332,3 +332,87 @@ def test_not_yaml_missing_file_and_not_a_mapping(tmp_path):
     assert "is empty" in _error(tmp_path, "")
     with pytest.raises(FillRecordError, match=r"nowhere\.yaml: no such fill record"):
         load_fill_record(tmp_path / "nowhere.yaml")
+
+
+# ---------------------------------------------------------------------------- unusable numbers
+@pytest.mark.parametrize(
+    "replace, needle",
+    [
+        ("concentration_kbq_ml: 1e308", "background: concentration_kbq_ml give inf Bq/mL"),
+        ("concentration_kbq_ml: 1.0e-300", "background: concentration_kbq_ml give 1e-297 Bq/mL"),
+        ("concentration_kbq_ml: .inf", "background.concentration_kbq_ml: Input should be a finite number"),
+    ],
+)
+def test_concentrations_must_be_finite_and_usable(tmp_path, replace, needle):
+    msg = _error(tmp_path, CANONICAL.replace("concentration_kbq_ml: 5.30", replace))
+    assert needle in msg
+
+
+def test_syringe_over_a_vanishing_volume_refused_naming_the_fields(tmp_path):
+    text = """\
+nuclide: F-18
+background: {syringe_mbq: 80.0, syringe_measured_at: 2026-11-03T09:00:00+01:00, residual_mbq: 2.0,
+             residual_measured_at: 2026-11-03T09:20:00+01:00, volume_ml: 1.0e-308}
+"""
+    assert "background: syringe_mbq, residual_mbq and volume_ml give inf Bq/mL" in _error(tmp_path, text)
+
+
+def test_ratio_times_background_beyond_the_range_refused(tmp_path):
+    msg = _error(tmp_path, CANONICAL.replace("ratio_to_background: 4.0", "ratio_to_background: 1.0e+308"))
+    assert "spheres: ratio_to_background times the background give inf Bq/mL" in msg
+
+
+def test_syringe_readings_decades_apart_refused(tmp_path):
+    text = """\
+nuclide: F-18
+background: {syringe_mbq: 80.0, syringe_measured_at: 1900-11-03T09:00:00+01:00, residual_mbq: 2.0,
+             residual_measured_at: 2026-11-03T09:20:00+01:00, volume_ml: 9700}
+"""
+    msg = _error(tmp_path, text)
+    assert "background: syringe_measured_at to residual_measured_at: the decay-correction gap is" in msg and "F-18" in msg
+
+
+@pytest.mark.parametrize("when", ["1900-11-03T09:40:00+01:00", "2030-11-03T09:40:00+01:00", "9999-12-31T23:00:00-05:00"])
+def test_scan_time_far_from_the_fill_refused_naming_file_and_field(tmp_path, when):
+    rec = load_fill_record(_write(tmp_path, CANONICAL.replace("2026-11-03T09:40:00+01:00", when)))
+    with pytest.raises(FillRecordError) as info:
+        rec.background_bq_ml(SCAN)
+    msg = str(info.value)
+    assert msg.startswith(f"{tmp_path / 'fill.yaml'}: background.measured_at to the scan time: the decay-correction gap is")
+    assert "days" in msg and "F-18" in msg and "timedelta" not in msg
+    with pytest.raises(FillRecordError, match="background.measured_at"):
+        rec.insert_bq_ml("sphere_10mm", SCAN)
+
+
+def test_insert_entry_far_from_the_scan_names_the_insert(tmp_path):
+    data = _base() | {"inserts": {"sphere_10mm": {"concentration_kbq_ml": 20.0, "measured_at": "9999-01-01T00:00:00+00:00"}}}
+    rec = FillRecord.from_dict(data, source="f.yaml")
+    with pytest.raises(FillRecordError, match=r"^f\.yaml: inserts\.sphere_10mm\.measured_at to the scan time"):
+        rec.insert_bq_ml("sphere_10mm", SCAN)
+    with pytest.raises(FillRecordError, match=r"background\.measured_at to inserts\.sphere_10mm's time"):
+        rec.activity_ratio("sphere_10mm")
+
+
+# ---------------------------------------------------------------------------- insert names
+def test_insert_names_checked_against_the_template():
+    from phantometry.templates import load_template
+
+    iec = load_template("iec-body")
+    rec = FillRecord.from_dict(
+        _base() | {"cold": ["sphere_99mm", "sphere_37mm", "lung_insert"], "inserts": {"sphere_1mm": {"ratio_to_background": 8}}},
+        source="f.yaml",
+    )
+    with pytest.raises(FillRecordError) as info:
+        rec.check_inserts(iec)
+    msg = str(info.value)
+    assert msg.startswith("f.yaml: cold: sphere_99mm is not an insert of template iec-body; inserts: sphere_1mm is not an insert")
+    assert "lung_insert" not in msg  # cold in the template too: consistent, accepted
+    assert "the fill record fills sphere_" in msg
+    # an insert the template fills itself cannot be given a concentration
+    with pytest.raises(FillRecordError, match="inserts: lung_insert is filled by template iec-body itself"):
+        FillRecord.from_dict(_base() | {"inserts": {"lung_insert": {"ratio_to_background": 2}}}).check_inserts(iec)
+    small_animal = load_template("small-animal")
+    with pytest.raises(FillRecordError, match=r"cold: rod_1mm is filled by template small-animal itself \(fill: background\)"):
+        FillRecord.from_dict(_base() | {"cold": ["rod_1mm"]}).check_inserts(small_animal)
+    FillRecord.from_dict(_base() | {"cold": ["cold_water", "cold_air"]}).check_inserts(small_animal)
+    FillRecord.from_dict(_base() | {"cold": ["sphere_37mm"]}).check_inserts(iec)

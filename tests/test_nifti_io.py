@@ -278,3 +278,73 @@ def test_round_trip_minimal_volume_without_sidecar(tmp_path):
     np.testing.assert_allclose(back.affine, np.diag([-2.0, -2.0, 3.0, 1.0]))
     write_nifti(vol, tmp_path / "with_sidecar.nii.gz")
     assert json.loads(sidecar_path(tmp_path / "with_sidecar.nii.gz").read_text()) == {"Modality": "PT", "Units": "Bq/mL"}
+
+
+# ---------------------------------------------------------------------------- header claims
+# NIfTI-1 header layout (nifti1.h, NIfTI Data Format Working Group): dim[8] int16 at byte 40,
+# pixdim[8] float32 at 76, vox_offset float32 at 108, srow_x float32[4] at 280.
+def _raw_file(tmp_path, change, name="raw.nii.gz"):
+    import gzip
+    import struct
+
+    path = _write_raw(tmp_path, np.ones((7, 6, 5), np.float32), _oblique_affine(), {"Units": "Bq/mL"}, name="src.nii")
+    raw = bytearray(path.read_bytes())
+    change(raw, struct)
+    out = tmp_path / name
+    out.write_bytes(gzip.compress(bytes(raw)) if name.endswith(".gz") else bytes(raw))
+    sidecar_path(out).write_text(json.dumps({"Units": "Bq/mL"}), encoding="utf-8")
+    return out
+
+
+def test_gz_header_claiming_gigabytes_refused_without_allocating(tmp_path, monkeypatch):
+    """A 352-byte header claiming 1000^3 float32 voxels (4 GB): the decompressed stream is
+    counted in small reads, nothing of the claimed size is allocated."""
+    import tracemalloc
+
+
+    monkeypatch.setenv("PHANTOMETRY_MAX_VOXELS", str(2 * 10**9))
+
+    def claim(raw, struct):
+        struct.pack_into("<4h", raw, 40, 3, 1000, 1000, 1000)
+        del raw[352:]
+
+    path = _raw_file(tmp_path, claim)
+    tracemalloc.start()
+    try:
+        with pytest.raises(InputError, match=r"\(4,000,000,352 bytes\) but the decompressed file holds 352"):
+            load_nifti(path)
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    assert peak < 20 * 2**20
+
+
+@pytest.mark.parametrize(
+    "change, needle",
+    [
+        (lambda raw, st: st.pack_into("<h", raw, 42, -5), "header dimension 1 is -5"),
+        (lambda raw, st: st.pack_into("<h", raw, 44, 0), "header dimension 2 is 0"),
+        (lambda raw, st: st.pack_into("<f", raw, 80, float("nan")), "header pixdim holds a voxel size that is not finite"),
+        (lambda raw, st: st.pack_into("<f", raw, 280, float("nan")), "affine (sform/qform) holds a number that is not finite"),
+        (lambda raw, st: st.pack_into("<f", raw, 108, 1e12), "vox_offset 999,999,995,904 lies beyond the end of the decompressed file"),
+        (lambda raw, st: st.pack_into("<4h", raw, 40, 3, 30000, 30000, 30000), "30000 x 30000 x 30000 = 27,000,000,000,000 voxels"),
+        (lambda raw, st: st.pack_into("<f", raw, 352 + 8, float("inf")), "1 voxel(s) hold no finite number"),
+    ],
+)
+def test_damaged_headers_refused_in_one_line(tmp_path, change, needle):
+    path = _raw_file(tmp_path, change)
+    with pytest.raises(InputError) as info:
+        load_nifti(path)
+    msg = str(info.value)
+    assert msg.startswith(f"{path}: ") and needle in msg and "\n" not in msg
+
+
+def test_truncated_and_corrupt_gzip_refused(tmp_path):
+    good = _raw_file(tmp_path, lambda raw, st: None, name="good.nii.gz")
+    data = good.read_bytes()
+    cut = tmp_path / "cut.nii.gz"
+    cut.write_bytes(data[:-6])  # the end of the deflate stream and the gzip trailer lost
+    sidecar_path(cut).write_text(json.dumps({"Units": "Bq/mL"}), encoding="utf-8")
+    with pytest.raises(InputError, match="the gzip stream is damaged"):
+        load_nifti(cut)
+    assert load_nifti(good).shape == (5, 6, 7)

@@ -9,7 +9,7 @@ from zoneinfo import ZoneInfo
 import pytest
 
 from phantometry.errors import InputError
-from phantometry.nuclides import NUCLIDES, decay_correct, decay_factor, get_nuclide
+from phantometry.nuclides import MAX_DECAY_HALF_LIVES, NUCLIDES, DecayGapError, decay_correct, decay_factor, get_nuclide, seconds_between
 
 CET = timezone(timedelta(hours=1))
 T0 = datetime(2026, 11, 3, 9, 40, tzinfo=CET)  # invented demo date
@@ -118,3 +118,39 @@ def test_decay_across_daylight_saving_change():
     assert decay_factor("F-18", before, after) == pytest.approx(expected, rel=1e-12)
     # the same instants written with fixed offsets give the same answer
     assert decay_factor("F-18", before.astimezone(timezone.utc), after.astimezone(CET)) == pytest.approx(expected, rel=1e-12)
+
+
+# ---------------------------------------------------------------------------- decay gaps
+def test_decay_gap_of_more_than_40_half_lives_refused_in_days_with_the_nuclide():
+    # 40 half-lives of F-18 (109.77 min, European Pharmacopoeia / NNDC NuDat) = 3.049 days
+    ok = T0 + timedelta(minutes=39.9 * 109.77)
+    assert decay_factor("F-18", T0, ok) == pytest.approx(2.0 ** -39.9, rel=1e-9)
+    with pytest.raises(DecayGapError) as info:
+        decay_factor("F-18", T0, T0 + timedelta(minutes=40.1 * 109.77))
+    message = str(info.value)
+    assert "3.1 days" in message and "F-18" in message and "109.77 min" in message and "\n" not in message
+    with pytest.raises(DecayGapError, match="46,"):  # 1900 to 2026: about 46,000 days
+        decay_factor("F-18", datetime(1900, 1, 1, tzinfo=CET), T0)
+
+
+@pytest.mark.parametrize(
+    "early, late",
+    [
+        (datetime(1, 1, 1, 0, 10, tzinfo=timezone(timedelta(hours=5))), datetime(2026, 11, 3, tzinfo=timezone.utc)),
+        (datetime(2026, 11, 3, tzinfo=timezone.utc), datetime(9999, 12, 31, 23, 0, tzinfo=timezone(timedelta(hours=-5)))),
+    ],
+)
+def test_times_at_the_ends_of_the_calendar_refused_not_overflowed(early, late):
+    with pytest.raises(DecayGapError, match="days"):
+        decay_factor("F-18", early, late)
+    # the gap itself is computed without leaving the calendar
+    assert seconds_between(early, late) > 0 and seconds_between(late, early) == -seconds_between(early, late)
+
+
+def test_gap_limit_scales_with_the_half_life():
+    # 30 days is under 40 half-lives of Zr-89 (78.41 h) but far over those of F-18
+    later = T0 + timedelta(days=30)
+    assert 0 < decay_factor("Zr-89", T0, later) < 1
+    with pytest.raises(DecayGapError):
+        decay_factor("F-18", T0, later)
+    assert MAX_DECAY_HALF_LIVES == 40

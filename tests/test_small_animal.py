@@ -137,5 +137,5 @@ def test_check_finds_uniform_voi_over_a_chamber():
 
     data = TPL.model_dump(mode="json", exclude={"source_path"})
     data["analysis"]["uniform_voi"]["centre_z_mm"] = 15
-    problems = check_template(template_from_dict(data))
+    problems = check_template(template_from_dict(data, check=False))
     assert any("uniform_voi" in p and "cold_water" in p for p in problems)

@@ -68,21 +68,21 @@ def test_iec_body_background_set(iec):
 def test_check_finds_roi_too_close_to_sphere(iec):
     data = iec.model_dump(mode="json", exclude={"source_path"})
     data["background"]["centres_xy_mm"][0] = [-28.6, 10.0]  # between the 37 mm and the 13 mm sphere
-    problems = check_template(template_from_dict(data))
+    problems = check_template(template_from_dict(data, check=False))
     assert any("centres_xy_mm[0]" in p and "sphere" in p for p in problems)
 
 
 def test_check_finds_insert_outside_body(iec):
     data = iec.model_dump(mode="json", exclude={"source_path"})
     data["inserts"][0]["centre_mm"] = [0, 140, 0]
-    problems = check_template(template_from_dict(data))
+    problems = check_template(template_from_dict(data, check=False))
     assert any("inserts[0]" in p and "outside the body" in p for p in problems)
 
 
 def test_check_finds_overlapping_inserts(iec):
     data = iec.model_dump(mode="json", exclude={"source_path"})
     data["inserts"][1]["centre_mm"] = [-20.0, 49.5, 0]  # 28 mm sphere onto the 37 mm one
-    problems = check_template(template_from_dict(data))
+    problems = check_template(template_from_dict(data, check=False))
     assert any("overlap" in p for p in problems)
 
 
@@ -132,3 +132,42 @@ def test_user_template_folder_found_by_name(tmp_path, monkeypatch, iec):
 
 def test_builtin_templates_are_packaged():
     assert (builtin_template_dir() / "iec-body.yaml").is_file()
+
+
+def test_geometric_checks_run_on_every_load(tmp_path, iec):
+    """The checks of `templates check` also refuse a template given to measure (by file or name)."""
+    data = iec.model_dump(mode="json", exclude={"source_path"})
+    small = next(i for i in data["inserts"] if i["name"] == "sphere_10mm")
+    small["centre_mm"] = next(i for i in data["inserts"] if i["name"] == "sphere_37mm")["centre_mm"]
+    data["name"] = "overlapping"
+    path = tmp_path / "overlapping.yaml"
+    path.write_text(yaml.safe_dump(data))
+    for ref, dirs in ((path, None), ("overlapping", [tmp_path])):
+        with pytest.raises(TemplateError) as ei:
+            load_template(ref, dirs)
+        msg = str(ei.value)
+        assert msg.startswith(f"{path}: ") and "geometric problem(s)" in msg
+        assert "inserts sphere_37mm and sphere_10mm: overlap" in msg or "inserts sphere_10mm and sphere_37mm: overlap" in msg
+    # the checks can still be asked for as a list
+    assert check_template(template_from_dict(data, check=False))
+
+
+@pytest.mark.parametrize(
+    "change, needle",
+    [
+        (lambda d: d["inserts"][0].update(diameter_mm=float("nan")), "inserts.0.diameter_mm: Input should be a finite number"),
+        (lambda d: d["inserts"][0].update(centre_mm=[float("inf"), 0, 0]), "inserts.0.centre_mm.0: Input should be a finite number"),
+        (lambda d: d["inserts"][0].update(diameter_mm=1e300), "inserts.0.diameter_mm: 100000 or more is far beyond any phantom"),
+    ],
+)
+def test_numbers_that_are_not_sizes_refused(iec, change, needle):
+    data = iec.model_dump(mode="json", exclude={"source_path"})
+    change(data)
+    with pytest.raises(TemplateError) as ei:
+        template_from_dict(data, source="t.yaml")
+    assert needle in str(ei.value) and str(ei.value).startswith("t.yaml: ")
+
+
+def test_fillable_names(iec):
+    assert set(iec.fillable_names) == {s.name for s in iec.spheres}  # the lung insert is fill: cold
+    assert "lung_insert" not in iec.fillable_names

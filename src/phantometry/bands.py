@@ -148,7 +148,7 @@ class BandSet:
 
 # =========================================================================== file schema
 class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid")
+    model_config = ConfigDict(extra="forbid", allow_inf_nan=False)
 
 
 class _EntryModel(_Strict):

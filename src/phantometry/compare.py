@@ -312,7 +312,12 @@ def load_labels(path: str | os.PathLike) -> dict[str, str]:
     p = Path(path)
     if not p.is_file():
         raise InputError(f"{p}: labels file not found; give a YAML or CSV file mapping series to labels")
-    text = p.read_text(encoding="utf-8")
+    try:
+        text = p.read_text(encoding="utf-8")
+    except UnicodeDecodeError:
+        raise InputError(f"{p}: the labels file is not UTF-8 text; save it as UTF-8") from None
+    except OSError as exc:
+        raise InputError(f"{p}: cannot read the labels file ({exc.strerror or exc})") from None
     out: dict[str, str] = {}
     if p.suffix.lower() == ".csv":
         rows = list(csv.DictReader(io.StringIO(text)))
@@ -328,12 +333,9 @@ def load_labels(path: str | os.PathLike) -> dict[str, str]:
                 raise InputError(f"{p}: line {n}: empty {keys[0] if not key else 'label'}; give both the series and its label")
             out[key] = label
         return out
-    import yaml
+    from .yamlfile import parse_yaml_text
 
-    try:
-        data = yaml.safe_load(text)
-    except yaml.YAMLError as exc:
-        raise InputError(f"{p}: not valid YAML ({str(exc).splitlines()[0]}); write 'SERIES: label' lines") from None
+    data = parse_yaml_text(text, str(p), InputError)
     if isinstance(data, dict) and set(data) == {"labels"}:
         data = data["labels"]
     if not isinstance(data, dict) or not data:

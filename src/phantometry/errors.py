@@ -62,3 +62,7 @@ class OutputError(PhantometryError):
 
 class OutputRefused(OutputError):
     """An output path is refused before any work: it would replace or touch what the user owns."""
+
+
+class ImageTooLarge(InputError):
+    """An image is larger than the voxel limit ($PHANTOMETRY_MAX_VOXELS) or the memory available."""

@@ -65,7 +65,7 @@ from pydantic import (
 
 from .yamlfile import read_yaml_file
 from .errors import FillRecordError, InputError
-from .nuclides import Nuclide, decay_factor, get_nuclide
+from .nuclides import DecayGapError, Nuclide, decay_factor, get_nuclide
 
 __all__ = [
     "BackgroundFill",
@@ -78,6 +78,16 @@ __all__ = [
 
 _KBQ = 1.0e3  # Bq per kBq
 _MBQ = 1.0e6  # Bq per MBq
+#: Range of concentrations (Bq/mL) accepted from a fill record, at its own times and at the
+#: scan time: far beyond any phantom in both directions, narrow enough that every quantity
+#: derived from one (ratios to measured values, recovery coefficients) is a finite number.
+USABLE_BQ_ML = (1.0e-9, 1.0e15)
+#: the keys that make up each activity form, for messages
+_FORM_FIELDS = {
+    "concentration": "concentration_kbq_ml",
+    "ratio": "ratio_to_background",
+    "syringe": "syringe_mbq, residual_mbq and volume_ml",
+}
 
 
 # ---------------------------------------------------------------------------- field types
@@ -121,7 +131,7 @@ NuclideField = Annotated[InstanceOf[Nuclide], BeforeValidator(_nuclide), PlainSe
 
 # ---------------------------------------------------------------------------- entries
 class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
+    model_config = ConfigDict(extra="forbid", frozen=True, allow_inf_nan=False)
 
 
 class _ActivityEntry(_Strict):
@@ -237,18 +247,72 @@ class FillRecord(_Strict):
             problems.append(f"inserts.{name}: {name} is also listed in cold; remove one")
         for name in sorted({n for n in self.cold if self.cold.count(n) > 1}):
             problems.append(f"cold: {name} listed twice")
-        for key in ("background", "spheres", "rods"):
-            entry = getattr(self, key)
-            ref = entry.reference_bq_ml(self.nuclide) if entry is not None else None
-            if ref is not None and ref[0] <= 0:
+        entries = [(key, getattr(self, key)) for key in ("background", "spheres", "rods")]
+        entries += [(f"inserts.{name}", entry) for name, entry in (self.inserts or {}).items()]
+        references: dict[str, float] = {}
+        for key, entry in entries:
+            if entry is None:
+                continue
+            try:
+                ref = entry.reference_bq_ml(self.nuclide)
+            except DecayGapError as exc:
+                problems.append(f"{key}: syringe_measured_at to residual_measured_at: {exc}")
+                continue
+            if ref is None:
+                continue
+            if entry.form == "syringe" and ref[0] <= 0:
                 problems.append(
                     f"{key}: residual_mbq {entry.residual_mbq:g} MBq is not less than syringe_mbq decayed to "
                     f"residual_measured_at ({entry.residual_mbq + ref[0] * entry.volume_ml / _MBQ:.4g} MBq); "
                     "check the readings and their times"
                 )
+                continue
+            problem = _unusable(key, entry, ref[0])
+            if problem:
+                problems.append(problem)
+            else:
+                references[key] = ref[0]
+        background = references.get("background")
+        for key, entry in entries:
+            if key != "background" and entry is not None and entry.form == "ratio" and background is not None:
+                problem = _unusable(key, entry, entry.ratio_to_background * background)  # type: ignore[attr-defined]
+                if problem:
+                    problems.append(problem)
         if problems:
             raise ValueError("; ".join(problems))
         return self
+
+    def check_inserts(self, template: Any) -> None:
+        """Refuse insert names in ``cold`` and ``inserts`` that the template contradicts.
+
+        A name in ``inserts`` must be an insert the template lets the fill record fill
+        (``fill: fill_record``); a name in ``cold`` may also be one the template already holds
+        cold (``fill: cold``). Any other name (misspelt, of another phantom, or an insert the
+        template fills with the background solution or makes of plastic) would be ignored.
+
+        Parameters
+        ----------
+        template : :class:`phantometry.templates.Template`
+
+        Raises
+        ------
+        FillRecordError
+            Naming each such insert and listing the template's fillable inserts.
+        """
+        fills = {i.name: i.fill for i in template.inserts}
+        fillable = [name for name, how in fills.items() if how == "fill_record"]
+        problems = []
+        for key, names, allowed in (("cold", self.cold, ("fill_record", "cold")), ("inserts", list(self.inserts or {}), ("fill_record",))):
+            for name in names:
+                if name not in fills:
+                    problems.append(f"{key}: {name} is not an insert of template {template.name}")
+                elif fills[name] not in allowed:
+                    problems.append(f"{key}: {name} is filled by template {template.name} itself (fill: {fills[name]})")
+        if problems:
+            raise FillRecordError(
+                f"{self._source}: {'; '.join(problems)}; the fill record fills {', '.join(fillable) or 'no insert'} "
+                "of this template: fix the name or use the right template"
+            )
 
     # ------------------------------------------------------------------ construction
     @classmethod
@@ -300,9 +364,34 @@ class FillRecord(_Strict):
         return name in self.cold
 
     def background_bq_ml(self, at: datetime) -> float:
-        """True background concentration (Bq/mL) at the timezone-aware time ``at``."""
+        """True background concentration (Bq/mL) at the timezone-aware time ``at``.
+
+        Raises
+        ------
+        FillRecordError
+            When ``at`` is too far from the record's time for decay correction
+            (:data:`phantometry.nuclides.MAX_DECAY_HALF_LIVES`), or the result is outside
+            :data:`USABLE_BQ_ML`.
+        """
         conc, ref_time = self.background.reference_bq_ml(self.nuclide)  # type: ignore[misc]
-        return conc * decay_factor(self.nuclide, ref_time, at)
+        return self._at_scan("background", self.background, conc, ref_time, at)
+
+    def _at_scan(
+        self, key: str, entry: "_ActivityEntry", conc: float, ref_time: datetime, at: datetime, target: str = "the scan time"
+    ) -> float:
+        """``conc`` (Bq/mL at ``ref_time``) decayed to ``at``; refusals name the file and field."""
+        time_key = "residual_measured_at" if entry.form == "syringe" else "measured_at"
+        try:
+            value = conc * decay_factor(self.nuclide, ref_time, at)
+        except DecayGapError as exc:
+            raise FillRecordError(f"{self._source}: {key}.{time_key} to {target}: {exc}") from None
+        low, high = USABLE_BQ_ML
+        if not low <= value <= high:
+            raise FillRecordError(
+                f"{self._source}: {key}: {_FORM_FIELDS[entry.form]} give {value:.3g} Bq/mL at {target} "
+                f"{at.isoformat()}, outside {low:g} to {high:g} Bq/mL; check the values and dates"
+            )
+        return value
 
     def _entry(self, name: str) -> _ActivityEntry:
         if self.inserts and name in self.inserts:
@@ -314,6 +403,12 @@ class FillRecord(_Strict):
             )
         return self.hot_fill
 
+    def _entry_key(self, name: str) -> str:
+        """The fill-record key of the entry that fills insert ``name`` (for messages)."""
+        if self.inserts and name in self.inserts:
+            return f"inserts.{name}"
+        return "spheres" if self.spheres is not None else "rods"
+
     def insert_bq_ml(self, name: str, at: datetime) -> float:
         """True concentration (Bq/mL) of insert ``name`` at the timezone-aware time ``at``.
 
@@ -322,10 +417,12 @@ class FillRecord(_Strict):
         """
         if self.is_cold(name):
             return 0.0
-        ref = self._entry(name).reference_bq_ml(self.nuclide)
+        entry = self._entry(name)
+        ref = entry.reference_bq_ml(self.nuclide)
         if ref is None:
-            return self._entry(name).ratio_to_background * self.background_bq_ml(at)  # type: ignore[attr-defined]
-        return ref[0] * decay_factor(self.nuclide, ref[1], at)
+            return entry.ratio_to_background * self.background_bq_ml(at)  # type: ignore[attr-defined]
+        key = self._entry_key(name)
+        return self._at_scan(key, entry, ref[0], ref[1], at)
 
     def activity_ratio(self, name: str) -> float:
         """Insert to background concentration ratio a_H/a_B (NEMA NU 2 image quality test).
@@ -338,10 +435,24 @@ class FillRecord(_Strict):
         ref = entry.reference_bq_ml(self.nuclide)
         if ref is None:
             return float(entry.ratio_to_background)  # type: ignore[attr-defined]
-        return ref[0] / self.background_bq_ml(ref[1])
+        key = self._entry_key(name)
+        bg, bg_time = self.background.reference_bq_ml(self.nuclide)  # type: ignore[misc]
+        return ref[0] / self._at_scan("background", self.background, bg, bg_time, ref[1], target=f"{key}'s time")
 
 
 # ---------------------------------------------------------------------------- errors
+def _unusable(key: str, entry: _ActivityEntry, bq_ml: float) -> str | None:
+    """A problem text when ``bq_ml`` derived from ``entry`` is not in :data:`USABLE_BQ_ML`."""
+    low, high = USABLE_BQ_ML
+    if low <= bq_ml <= high:  # False for nan
+        return None
+    what = "times the background" if entry.form == "ratio" else ""
+    return (
+        f"{key}: {_FORM_FIELDS[entry.form]} {what + ' ' if what else ''}give {bq_ml:.3g} Bq/mL, outside the usable "
+        f"{low:g} to {high:g} Bq/mL; check the value and its unit"
+    )
+
+
 def _model_at(loc: tuple[Any, ...]) -> type[BaseModel] | None:
     """The model class that holds the key at the end of ``loc`` (for naming allowed keys)."""
     tp: Any = FillRecord

@@ -64,9 +64,12 @@ def measure_volume(
     Analysis (the kind's subclass) with :class:`~phantometry.results.Measurement` rows.
     """
     where = where or volume.source or "image"
+    fill.check_inserts(template)
     kind = kind_of(template)
     settings = AnalysisSettings(uncertainties=uncertainties, resolution=resolution, variance_power=variance_power)
     analysis = kind.analyse(volume, template, fill, overrides=overrides, where=where, settings=settings)
+    # the loader's warnings about the image (Volume.warnings) come first
+    analysis.warnings[:0] = [w for w in volume.warnings if w not in analysis.warnings]
     if bands:
         judge(analysis, [load_band_set(b) for b in bands])
     return analysis
@@ -264,6 +267,7 @@ def measure(
     tpl = load_template(template, list(templates_dirs or []))
     kind = kind_of(tpl)
     fill_record = load_fill_record(fill)
+    fill_record.check_inserts(tpl)
     overrides = parse_centre_overrides(centres, tpl)
     band_sets: list[BandSet] = []
     if bands:

@@ -10,9 +10,18 @@ from __future__ import annotations
 import math
 import re
 from dataclasses import dataclass
-from datetime import datetime, timezone
+from datetime import datetime, timedelta
 
 from .errors import InputError
+
+#: Longest time gap, in half-lives, over which activity is decay-corrected. Past it the factor
+#: (2^-40 ~ 1e-12) says only that the dates are wrong; a phantom is scanned within hours of
+#: filling (common practice).
+MAX_DECAY_HALF_LIVES = 40.0
+
+
+class DecayGapError(InputError):
+    """Two times are too far apart for decay correction to mean anything (wrong date)."""
 
 
 @dataclass(frozen=True)
@@ -117,10 +126,47 @@ def decay_factor(nuclide: Nuclide | str, from_time: datetime, to_time: datetime)
     for t in (from_time, to_time):
         if t.tzinfo is None or t.utcoffset() is None:
             raise InputError(f"time {t.isoformat()} has no time zone; give an offset such as +01:00")
-    # timestamps, not datetime subtraction: with one shared tzinfo (a ZoneInfo zone) Python
-    # subtracts wall-clock times and ignores a daylight-saving change in between
-    dt_s = (to_time.astimezone(timezone.utc) - from_time.astimezone(timezone.utc)).total_seconds()
+    dt_s = seconds_between(from_time, to_time)
+    check_decay_gap(nuc, dt_s, from_time, to_time)
     return math.exp(-nuc.decay_constant_per_s * dt_s)
+
+
+def seconds_between(from_time: datetime, to_time: datetime) -> float:
+    """Seconds from ``from_time`` to ``to_time`` (aware datetimes), negative when earlier.
+
+    Wall-clock difference corrected by the two UTC offsets: with one shared tzinfo (a ZoneInfo
+    zone) plain subtraction of aware datetimes ignores a daylight-saving change in between, and
+    converting to UTC first overflows for times near year 1 or 9999. Only timedeltas are
+    computed here, whose range covers any pair of datetimes.
+    """
+    wall = to_time.replace(tzinfo=None) - from_time.replace(tzinfo=None)
+    offsets = (to_time.utcoffset() or timedelta(0)) - (from_time.utcoffset() or timedelta(0))
+    return (wall - offsets).total_seconds()
+
+
+def _half_life_text(seconds: float) -> str:
+    for unit, size in (("h", 3600.0), ("min", 60.0)):
+        if seconds >= 2 * size:
+            return f"{seconds / size:.5g} {unit}"
+    return f"{seconds:.5g} s"
+
+
+def check_decay_gap(nuclide: Nuclide, seconds: float, from_time: datetime | None = None, to_time: datetime | None = None) -> None:
+    """Refuse a gap longer than :data:`MAX_DECAY_HALF_LIVES` half-lives of ``nuclide``.
+
+    Raises
+    ------
+    DecayGapError
+        Naming the gap in days, the nuclide and its half-life (and the two times, if given).
+    """
+    if abs(seconds) <= MAX_DECAY_HALF_LIVES * nuclide.half_life_s:
+        return
+    times = f" ({from_time.isoformat()} to {to_time.isoformat()})" if from_time is not None and to_time is not None else ""
+    raise DecayGapError(
+        f"the decay-correction gap is {abs(seconds) / 86400.0:,.1f} days{times}, more than {MAX_DECAY_HALF_LIVES:g} "
+        f"half-lives of {nuclide.name} (half-life {_half_life_text(nuclide.half_life_s)}), so the correction is "
+        "meaningless; check the dates"
+    )
 
 
 def decay_correct(

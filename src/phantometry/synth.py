@@ -192,9 +192,12 @@ def _body_corners(template: Template) -> np.ndarray:
 def insert_concentrations_bq_ml(template: Template, spec: SynthSpec) -> dict[str, float]:
     """True concentration (Bq/mL, at the scan time) of every insert's fill."""
     bg = spec.background_kbq_ml * 1000.0
-    unknown = sorted(set(spec.cold) - {i.name for i in template.inserts})
+    unknown = sorted(set(spec.cold) - {i.name for i in template.inserts if i.fill in ("fill_record", "cold")})
     if unknown:
-        raise InputError(f"--cold names unknown inserts {', '.join(unknown)}; inserts: {', '.join(i.name for i in template.inserts)}")
+        raise InputError(
+            f"--cold names inserts the fill record does not fill: {', '.join(unknown)}; fillable inserts: "
+            f"{', '.join(template.fillable_names)}"
+        )
     out = {}
     for ins in template.inserts:
         if ins.fill == "fill_record":

@@ -30,8 +30,26 @@ Vec3 = tuple[float, float, float]
 Vec2 = tuple[float, float]
 
 
+#: Largest magnitude of any number in a template (a size in mm): 100 m.
+MAX_TEMPLATE_NUMBER = 1.0e5
+
+
 class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
+    model_config = ConfigDict(extra="forbid", frozen=True, allow_inf_nan=False)
+
+
+def _first_huge(value: Any, path: str) -> str | None:
+    """Path of the first number of magnitude :data:`MAX_TEMPLATE_NUMBER` or more, else None."""
+    if isinstance(value, bool):
+        return None
+    if isinstance(value, (int, float)):
+        return path or "(top level)" if abs(value) >= MAX_TEMPLATE_NUMBER else None
+    items = value.items() if isinstance(value, dict) else enumerate(value) if isinstance(value, (list, tuple)) else ()
+    for key, item in items:
+        found = _first_huge(item, f"{path}.{key}" if path else str(key))
+        if found is not None:
+            return found
+    return None
 
 
 # ---------------------------------------------------------------------------------------- body
@@ -251,6 +269,13 @@ class Template(_Strict):
     _kind_options: Any = PrivateAttr(default=None)
 
     @model_validator(mode="after")
+    def _sizes(self) -> "Template":
+        where = _first_huge(self.model_dump(exclude={"source_path"}), "")
+        if where is not None:
+            raise ValueError(f"{where}: {MAX_TEMPLATE_NUMBER:g} or more is far beyond any phantom (mm); check the value")
+        return self
+
+    @model_validator(mode="after")
     def _references(self) -> "Template":
         names = [i.name for i in self.inserts]
         dupes = sorted({n for n in names if names.count(n) > 1})
@@ -269,6 +294,11 @@ class Template(_Strict):
         raise TemplateError(
             f"template {self.name}: no insert named {name!r}; inserts: {', '.join(i.name for i in self.inserts)}"
         )
+
+    @property
+    def fillable_names(self) -> list[str]:
+        """Names of the inserts whose activity the fill record states (``fill: fill_record``)."""
+        return [i.name for i in self.inserts if i.fill == "fill_record"]
 
     @property
     def spheres(self) -> list[Insert]:
@@ -364,13 +394,21 @@ def format_validation_error(path: str, err: ValidationError, prefix: str | None 
     return f"{path}: invalid template: " + "; ".join(problems)
 
 
-def template_from_dict(data: Any, source: str = "<template>") -> Template:
+def template_from_dict(data: Any, source: str = "<template>", *, check: bool = True) -> Template:
     """Validate a parsed YAML mapping as a :class:`Template`.
+
+    Parameters
+    ----------
+    data : the parsed YAML mapping.
+    source : where it came from, named in messages.
+    check : also run the geometric checks of :func:`check_template` (every load does; only
+        a caller that wants the list of problems itself, such as a test of the checks, turns
+        them off).
 
     Raises
     ------
     TemplateError
-        Naming ``source``, each key at fault and what is allowed.
+        Naming ``source``, each key at fault and what is allowed, or every geometric problem.
     """
     if not isinstance(data, dict):
         raise TemplateError(f"{source}: a template must be a YAML mapping, got {type(data).__name__}")
@@ -378,6 +416,12 @@ def template_from_dict(data: Any, source: str = "<template>") -> Template:
         tpl = Template.model_validate({**data, "source_path": source})
     except ValidationError as err:
         raise TemplateError(format_validation_error(source, err)) from None
+    except (ValueError, ArithmeticError) as err:  # numpy/math on absurd numbers in a validator
+        raise TemplateError(f"{source}: invalid template: a number cannot be used ({err}); check the values") from None
+    if check:
+        problems = check_template(tpl)
+        if problems:
+            raise TemplateError(f"{source}: {len(problems)} geometric problem(s): " + "; ".join(problems))
     return tpl
 
 

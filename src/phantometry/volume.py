@@ -119,6 +119,9 @@ class Volume:
     sop_instance_uids: tuple[str, ...] = ()
     frame_of_reference_uid: str | None = None
     study_uid: str | None = None
+    #: what the loader noticed about the image and worked around (e.g. a header half-life
+    #: replaced by the table value); measure puts these in measurements.json ``warnings``
+    warnings: tuple[str, ...] = ()
 
     def __post_init__(self) -> None:
         data = np.asarray(self.data)
@@ -130,6 +133,8 @@ class Volume:
         affine = np.asarray(self.affine, dtype=float)
         if affine.shape != (4, 4):
             raise GeometryError(f"affine must be 4x4, got {affine.shape}")
+        if not np.all(np.isfinite(affine)):
+            raise GeometryError(f"{self.source or 'volume'}: the voxel-to-world affine holds a number that is not finite")
         if abs(np.linalg.det(affine[:3, :3])) < 1e-9:
             raise GeometryError("affine is singular: voxel axes are degenerate")
         self.affine = affine

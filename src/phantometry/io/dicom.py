@@ -42,12 +42,24 @@ What the loader does, in order:
      here, since the loader only inverts an SUV the scanner already computed.)
    * Anything else is refused by name.
 
+   ``BQML`` and ``GML`` series must state Decay Correction (``NONE``, ``START`` or ``ADMIN``);
+   without it the time the values refer to is unknown. A Radionuclide Half Life that is not a
+   positive number is refused; one more than 1 % from the table value of the nuclide its code
+   names (:mod:`phantometry.nuclides`) is replaced by the table value, with a warning on
+   ``Volume.warnings``. A decay over more than 40 half-lives (a wrong date) is refused.
+
 5. **Times.** All DA/TM/DT values are read in the zone of Timezone Offset From UTC
    (0008,0201) (a DT with its own ``+HHMM`` suffix keeps it). Without that attribute the
    loader assumes UTC and warns with :class:`TimeZoneAssumedWarning`
    (``SeriesInfo.time_zone_assumed`` says so too); it never uses the machine's local zone.
    ``Volume.acquired_at`` is the reference time of the values: the scan time above for
    ``START`` and ``NONE`` (acquisition start), the injection time for ``ADMIN``.
+
+6. **Claims.** Before the voxel array is allocated, Rows x Columns x slices is checked against
+   ``$PHANTOMETRY_MAX_VOXELS`` (:mod:`phantometry.io.limits`) and every uncompressed slice's
+   Pixel Data length against Rows x Columns x Bits Allocated. Non-finite positions,
+   orientations, spacings and rescale values, and transfer syntaxes that are not standard, are
+   refused by file. pydicom's own warnings are silenced; damaged elements are refused by name.
 
 Patient name, ID and birth date are never copied onto the Volume.
 """
@@ -61,7 +73,7 @@ import warnings
 from collections import Counter
 from collections.abc import Iterable, Sequence
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
 from typing import Any
@@ -89,9 +101,10 @@ from ..errors import (
     UnitsError,
     UnsupportedSeries,
 )
-from ..nuclides import NUCLIDES, Nuclide, get_nuclide
+from ..nuclides import NUCLIDES, DecayGapError, Nuclide, check_decay_gap, get_nuclide
 from ..volume import Reconstruction, Scanner, Volume
 from .dicom_listing import ListingHeader, first_int, read_listing_header
+from .limits import check_voxel_count
 
 __all__ = [
     "SeriesInfo",
@@ -105,6 +118,12 @@ _PIXEL_DATA = 0x7FE00010
 _DEFER_BYTES = 4096
 #: relative tolerance on slice spacing (the 1 % of the loader contract)
 _SPACING_TOLERANCE = 0.01
+#: largest voxel size and distance from the origin believed (mm); beyond, the header is damaged
+_MAX_SPACING_MM = 1000.0
+_MAX_POSITION_MM = 1.0e6
+#: relative difference between RadionuclideHalfLife and the nuclide table that is reported
+_HALF_LIFE_TOLERANCE = 0.01
+_DECAY_CORRECTIONS = ("NONE", "START", "ADMIN")
 _ENHANCED_PET = {EnhancedPETImageStorage, LegacyConvertedEnhancedPETImageStorage}
 _CONVERTIBLE_UNITS = "BQML, CNTS (with a calibration factor) or GML (body-weight SUV)"
 
@@ -173,6 +192,48 @@ def _tag(keyword: str) -> int:
     return tag
 
 
+class _Damaged(InputError):
+    """An attribute of a sequence item cannot be read (the caller adds the file)."""
+
+    def __init__(self, keyword: str, reason: str) -> None:
+        super().__init__(f"{keyword} cannot be read ({reason})")
+        self.keyword = keyword
+        self.reason = reason
+
+
+def _reason(exc: BaseException) -> str:
+    """The first line of an exception's message (its class name if it has none)."""
+    lines = str(exc).strip().splitlines()
+    return lines[0] if lines else type(exc).__name__
+
+
+def _value(ds: Any, keyword: str) -> Any:
+    """``ds.get(keyword)``: the value converted by pydicom, None when absent.
+
+    pydicom converts elements when first used; a damaged element raises whatever its
+    converter raises, which becomes an :class:`InputError` naming the file and the attribute.
+    """
+    try:
+        return ds.get(keyword)
+    except Exception as exc:  # pydicom's converters raise many types on damaged values
+        where = getattr(ds, "filename", None)
+        if not where:  # an item of a sequence: the caller names the file
+            raise _Damaged(keyword, _reason(exc)) from None
+        raise InputError(f"{where}: {keyword} cannot be read ({_reason(exc)}); the file is damaged, copy it again") from None
+
+
+def _meta_value(ds: Any, keyword: str) -> Any:
+    """A file meta attribute of ``ds`` (None without file meta), like :func:`_value`."""
+    meta = getattr(ds, "file_meta", None)
+    if meta is None:
+        return None
+    try:
+        return _value(meta, keyword)
+    except _Damaged as exc:
+        where = getattr(ds, "filename", None) or "a DICOM file"
+        raise InputError(f"{where}: file meta {exc}; the file is damaged, copy it again") from None
+
+
 def _ascii(ds: Any, keyword: str) -> str | None:
     """An ASCII-valued attribute (numbers, codes, UIDs, dates) as stripped text, None if absent/empty.
 
@@ -184,7 +245,7 @@ def _ascii(ds: Any, keyword: str) -> str | None:
     if isinstance(elem, RawDataElement) and isinstance(elem.value, bytes) and elem.VR != "SQ":
         text = elem.value.decode("latin-1")
     else:
-        value = ds[keyword].value
+        value = _value(ds, keyword)
         if value is None:
             return None
         text = "\\".join(str(v) for v in value) if isinstance(value, (list, tuple, MultiValue)) else str(value)
@@ -202,8 +263,13 @@ def _ushort(ds: Any, keyword: str) -> int | None:
             return int.from_bytes(elem.value, "little" if elem.is_little_endian else "big")
         if not elem.value:
             return None
-    value = ds[keyword].value
-    return None if value is None or value == "" else int(value)
+    value = _value(ds, keyword)
+    if value is None or value == "":
+        return None
+    try:
+        return int(value)
+    except (TypeError, ValueError):
+        raise InputError(f"{getattr(ds, 'filename', None) or 'a DICOM file'}: {keyword} is not a number; the file is damaged") from None
 
 
 def _numbers(ds: Any, keyword: str) -> list[float] | None:
@@ -215,7 +281,7 @@ def _numbers(ds: Any, keyword: str) -> list[float] | None:
 
 def _text(ds: Any, keyword: str) -> str | None:
     """A free-text attribute (decoded by pydicom with the character set), stripped, or None."""
-    value = ds.get(keyword)
+    value = _value(ds, keyword)
     if value is None:
         return None
     if isinstance(value, (list, tuple, MultiValue)):
@@ -240,11 +306,36 @@ def _float(ds: Any, keyword: str) -> float | None:
     return number if math.isfinite(number) else None
 
 
+def _strict_float(entry: _Entry | Any, keyword: str, path: Path, item: Any = None) -> float | None:
+    """A DS/IS attribute's first value: None when absent, else a finite number or an InputError.
+
+    ``item`` is the dataset to read (a sequence item); by default the entry's own dataset.
+    """
+    ds = item if item is not None else entry.ds
+    text = _ascii(ds, keyword)
+    if text is None:
+        return None
+    try:
+        number = float(text.split("\\")[0])
+    except ValueError:
+        number = math.nan
+    if not math.isfinite(number):
+        raise InputError(f"{path}: {keyword} {text[:40]!r} is not a finite number; fix the header")
+    return number
+
+
+def _fmt_numbers(values: Iterable[float]) -> str:
+    """Numbers as ``[1, 0, 0]`` (shortest form) for messages."""
+    return "[" + ", ".join(f"{float(v):g}" for v in values) + "]"
+
+
 def _parse_offset(text: str) -> timezone:
     m = re.fullmatch(r"([+-])(\d{2})(\d{2})", text.strip())
     if not m:
         raise ValueError(f"{text!r} is not +HHMM/-HHMM")
     minutes = int(m.group(2)) * 60 + int(m.group(3))
+    if minutes >= 24 * 60 or int(m.group(3)) >= 60:
+        raise ValueError(f"{text!r} is not an offset between -2359 and +2359")
     return timezone(timedelta(minutes=minutes if m.group(1) == "+" else -minutes))
 
 
@@ -358,7 +449,7 @@ def _dcmread(path: Path, **options: Any) -> tuple[str, Any]:
     except InvalidDicomError:
         return "skip", None
     except Exception as exc:  # pydicom raises many types on damaged files
-        return "broken", f"{type(exc).__name__}: {exc}"
+        return "broken", _reason(exc)
 
 
 def _read_header(path: Path) -> tuple[str, Any]:
@@ -370,7 +461,10 @@ def _read_header(path: Path) -> tuple[str, Any]:
     status, ds = _dcmread(path, defer_size=_DEFER_BYTES)
     if status != "ok":
         return status, ds
-    sop_class = ds.file_meta.get("MediaStorageSOPClassUID") if hasattr(ds, "file_meta") else None
+    try:
+        sop_class = _meta_value(ds, "MediaStorageSOPClassUID")
+    except InputError as exc:
+        return "broken", str(exc).removeprefix(f"{path}: ")
     problem = _series_problem(sop_class, "SeriesInstanceUID" in ds)
     return problem if problem is not None else ("ok", ds)
 
@@ -384,20 +478,22 @@ def _listing_header(path: Path) -> tuple[str, Any]:
     try:
         header = read_listing_header(path)
     except OSError as exc:
-        return "broken", f"{type(exc).__name__}: {exc}"
+        return "broken", exc.strerror or _reason(exc)
     if header is None:
         status, ds = _dcmread(path, stop_before_pixels=True, specific_tags=_LISTING_TAGS)
         if status != "ok":
             return status, ds
-        header = listing_header_of(ds)
+        try:
+            header = listing_header_of(ds)
+        except InputError as exc:
+            return "broken", str(exc).removeprefix(f"{path}: ")
     problem = _series_problem(header.sop_class_uid, header.series_uid is not None)
     return problem if problem is not None else ("ok", header)
 
 
 def listing_header_of(ds: Any) -> ListingHeader:
     """The :class:`ListingHeader` of a dataset read by pydicom."""
-    meta = getattr(ds, "file_meta", None)
-    sop_class = meta.get("MediaStorageSOPClassUID") if meta is not None else None
+    sop_class = _meta_value(ds, "MediaStorageSOPClassUID")
     return ListingHeader(
         sop_class_uid=(str(sop_class).strip(" \x00") or None) if sop_class is not None else None,
         series_uid=_ascii(ds, "SeriesInstanceUID") if "SeriesInstanceUID" in ds else None,
@@ -532,6 +628,8 @@ def _vectors(entries: list[_Entry], keyword: str, size: int) -> np.ndarray:
             raise GeometryError(f"{entry.path}: has no {keyword}; the file may be truncated or is not an image slice")
         if len(numbers) != size:
             raise GeometryError(f"{entry.path}: {keyword} needs {size} numbers, got {len(numbers)}")
+        if not all(math.isfinite(v) for v in numbers):
+            raise GeometryError(f"{entry.path}: {keyword} {_fmt_numbers(numbers)} holds a number that is not finite; fix the header")
         out[n] = numbers
     return out
 
@@ -558,26 +656,40 @@ def _geometry(entries: list[_Entry], where: str) -> _Geometry:
         bad = np.flatnonzero(np.any(np.abs(values - values[0]) > tol * np.maximum(1.0, np.abs(values[0])), axis=1))
         if bad.size:
             raise GeometryError(
-                f"{where}: {name} differs between {paths[0].name} ({list(values[0])}) and "
-                f"{paths[bad[0]].name} ({list(values[bad[0]])}); one series must share one grid"
+                f"{paths[bad[0]]}: {name} {_fmt_numbers(values[bad[0]])} differs from {_fmt_numbers(values[0])} of "
+                f"{paths[0].name} in the same series; one series must share one grid"
             )
     for values, name in ((rows, "Rows"), (columns, "Columns")):
         bad = np.flatnonzero(values != values[0])
         if bad.size:
-            raise GeometryError(f"{where}: {name} differs between {paths[0].name} and {paths[bad[0]].name}")
+            raise GeometryError(
+                f"{paths[bad[0]]}: {name} {values[bad[0]]} differs from {values[0]} of {paths[0].name} in the same series; "
+                "one series must share one grid"
+            )
 
     row_dir, col_dir = orientation[0, :3], orientation[0, 3:]
     if not (0.99 < np.linalg.norm(row_dir) < 1.01 and 0.99 < np.linalg.norm(col_dir) < 1.01):
-        raise GeometryError(f"{paths[0]}: ImageOrientationPatient {list(orientation[0])} is not two unit vectors")
+        raise GeometryError(f"{paths[0]}: ImageOrientationPatient {_fmt_numbers(orientation[0])} is not two unit vectors")
     row_dir = row_dir / np.linalg.norm(row_dir)
     col_dir = col_dir / np.linalg.norm(col_dir)
     if abs(float(row_dir @ col_dir)) > 1e-3:
-        raise GeometryError(f"{paths[0]}: ImageOrientationPatient rows are not orthogonal ({list(orientation[0])})")
+        raise GeometryError(f"{paths[0]}: ImageOrientationPatient rows are not orthogonal ({_fmt_numbers(orientation[0])})")
     normal = np.cross(row_dir, col_dir)
     normal /= np.linalg.norm(normal)
     row_spacing, column_spacing = float(pixel_spacing[0, 0]), float(pixel_spacing[0, 1])
     if row_spacing <= 0 or column_spacing <= 0:
-        raise GeometryError(f"{paths[0]}: PixelSpacing {list(pixel_spacing[0])} must be positive")
+        raise GeometryError(f"{paths[0]}: PixelSpacing {_fmt_numbers(pixel_spacing[0])} must be positive")
+    if max(row_spacing, column_spacing) > _MAX_SPACING_MM:
+        raise GeometryError(
+            f"{paths[0]}: PixelSpacing {_fmt_numbers(pixel_spacing[0])} mm is not a plausible voxel size "
+            f"(over {_MAX_SPACING_MM:g} mm); fix the header"
+        )
+    far = np.flatnonzero(np.any(np.abs(positions) > _MAX_POSITION_MM, axis=1))
+    if far.size:
+        raise GeometryError(
+            f"{paths[far[0]]}: ImagePositionPatient {_fmt_numbers(positions[far[0]])} mm lies more than "
+            f"{_MAX_POSITION_MM:g} mm from the origin; fix the header"
+        )
 
     along = positions @ normal
     order = np.argsort(along, kind="stable")
@@ -585,9 +697,9 @@ def _geometry(entries: list[_Entry], where: str) -> _Geometry:
     n = len(entries)
 
     if n == 1:
-        dz = _float(entries[0].ds, "SpacingBetweenSlices") or _float(entries[0].ds, "SliceThickness")
-        if not dz or dz <= 0:
-            raise GeometryError(f"{paths[0]}: a single slice without SliceThickness has no slice spacing")
+        dz = _strict_float(entries[0], "SpacingBetweenSlices", paths[0]) or _strict_float(entries[0], "SliceThickness", paths[0])
+        if not dz or dz <= 0 or dz > _MAX_SPACING_MM:
+            raise GeometryError(f"{paths[0]}: a single slice without a plausible SliceThickness has no slice spacing")
     else:
         steps = np.diff(along_sorted)
         duplicate_tol = max(1e-3, _SPACING_TOLERANCE * float(steps.max()))  # mm
@@ -679,15 +791,41 @@ class _Isotope:
     half_life_s: float | None
     injection: datetime | None
     nuclide: Nuclide | None
+    warnings: list[str] = field(default_factory=list)
 
 
 def _isotope(entry: _Entry, clock: _Clock, scan: datetime | None) -> _Isotope:
-    seq = entry.ds.get("RadiopharmaceuticalInformationSequence")
-    item = seq[0] if seq else None
+    """Dose, half-life, injection time and nuclide of the first Radiopharmaceutical Information item.
+
+    The nuclide comes from the Radionuclide Code Sequence meaning, else from a half-life within
+    1 % of one tabulated nuclide. A non-positive half-life is refused; one that differs from
+    the table value of the coded nuclide by more than 1 % is replaced by the table value, with
+    a warning.
+    """
+    seq = _value(entry.ds, "RadiopharmaceuticalInformationSequence")
+    try:
+        item = seq[0] if seq else None
+    except Exception:  # not a sequence: a damaged element
+        item = None
     if item is None:
         return _Isotope(None, None, None, None)
+    try:
+        return _isotope_item(entry, item, clock, scan)
+    except _Damaged as exc:
+        raise InputError(
+            f"{entry.path}: RadiopharmaceuticalInformationSequence: {exc.keyword} cannot be read ({exc.reason}); "
+            "the file is damaged, copy it again"
+        ) from None
+
+
+def _isotope_item(entry: _Entry, item: Any, clock: _Clock, scan: datetime | None) -> _Isotope:
+    """:func:`_isotope` for the Radiopharmaceutical Information ``item`` of ``entry``."""
     dose = _float(item, "RadionuclideTotalDose")
-    half_life = _float(item, "RadionuclideHalfLife")
+    half_life = _strict_float(entry, "RadionuclideHalfLife", entry.path, item=item)
+    if half_life is not None and half_life <= 0:
+        raise UnitsError(
+            f"{entry.path}: RadionuclideHalfLife (0018,1075) is {half_life:g} s; a half-life must be positive, fix the header"
+        )
     injection = None
     start_dt = _ascii(item, "RadiopharmaceuticalStartDateTime")
     start_tm = _ascii(item, "RadiopharmaceuticalStartTime")
@@ -701,19 +839,32 @@ def _isotope(entry: _Entry, clock: _Clock, scan: datetime | None) -> _Isotope:
                 injection -= timedelta(days=1)  # injected before midnight, scanned after
     except ValueError as exc:
         raise InputError(f"{entry.path}: radiopharmaceutical start time {exc}; fix the header") from None
+    except OverflowError:
+        raise InputError(f"{entry.path}: radiopharmaceutical start time lies outside the calendar; fix the header") from None
 
     nuclide = None
-    codes = item.get("RadionuclideCodeSequence")
-    meaning = _text(codes[0], "CodeMeaning") if codes else None
+    codes = _value(item, "RadionuclideCodeSequence")
+    try:
+        meaning = _text(codes[0], "CodeMeaning") if codes else None
+    except (TypeError, IndexError, KeyError):  # not a sequence of items: damaged
+        raise _Damaged("RadionuclideCodeSequence", "not a sequence of items") from None
     if meaning:
         try:
             nuclide = get_nuclide(meaning)
         except InputError:
             nuclide = None
+    notes = []
     if nuclide is None and half_life:
-        matches = [n for n in NUCLIDES.values() if abs(n.half_life_s - half_life) <= 0.01 * n.half_life_s]
+        matches = [n for n in NUCLIDES.values() if abs(n.half_life_s - half_life) <= _HALF_LIFE_TOLERANCE * n.half_life_s]
         nuclide = matches[0] if len(matches) == 1 else None
-    return _Isotope(dose, half_life, injection, nuclide)
+    elif nuclide is not None and half_life and abs(half_life - nuclide.half_life_s) > _HALF_LIFE_TOLERANCE * nuclide.half_life_s:
+        notes.append(
+            f"{entry.path}: RadionuclideHalfLife {half_life:g} s differs from the {nuclide.name} half-life "
+            f"{nuclide.half_life_s:g} s ({nuclide.source}) by {100 * abs(half_life / nuclide.half_life_s - 1):.1f} %; "
+            "the table value is used"
+        )
+        half_life = nuclide.half_life_s
+    return _Isotope(dose, half_life, injection, nuclide, notes)
 
 
 def _suv_to_bqml(
@@ -731,12 +882,6 @@ def _suv_to_bqml(
         missing.append("PatientWeight (0010,1030)")
     if isotope.dose_bq is None or isotope.dose_bq <= 0:
         missing.append("RadionuclideTotalDose (0018,1074)")
-    if decay_correction is None:
-        missing.append("DecayCorrection (0054,1102)")
-    elif decay_correction not in ("START", "ADMIN", "NONE"):
-        raise UnitsError(
-            f"{first.path}: DecayCorrection {decay_correction!r} is unknown; expected START, ADMIN or NONE"
-        )
     needs_decay = decay_correction in ("START", "NONE")
     half_life = isotope.half_life_s or (isotope.nuclide.half_life_s if isotope.nuclide else None)
     if needs_decay:
@@ -767,6 +912,12 @@ def _suv_to_bqml(
             f"{first.path}: injection time {isotope.injection.isoformat()} is after the scan time "
             f"{min(times).isoformat()}; fix RadiopharmaceuticalStartDateTime or the series times"
         )
+    nuclide = isotope.nuclide or Nuclide("the nuclide of RadionuclideHalfLife", float(half_life), "header")
+    worst = int(np.argmax(elapsed))
+    try:
+        check_decay_gap(nuclide, float(elapsed[worst]), isotope.injection, times[worst])
+    except DecayGapError as exc:
+        raise UnitsError(f"{first.path}: injection to scan time: {exc}") from None
     decayed_dose = dose * np.power(2.0, -elapsed / float(half_life))
     return decayed_dose / weight_g
 
@@ -813,9 +964,46 @@ def _native_pixels(entry: _Entry, ts: UID, rows: int, columns: int) -> np.ndarra
     return np.frombuffer(buffer, dtype=np.dtype(f"{order}{sign}{bits // 8}"), count=count).reshape(rows, columns)
 
 
+def _pixel_bytes_present(entry: _Entry) -> int | None:
+    """Bytes of native pixel data the file holds, or None when unknown (undefined length)."""
+    elem = entry.ds.get_item(_PIXEL_DATA, keep_deferred=True)
+    if elem is None:
+        return 0
+    if isinstance(elem, RawDataElement) and elem.value is None:  # deferred: not read yet
+        if elem.length == 0xFFFFFFFF:
+            return None
+        try:
+            in_file = entry.path.stat().st_size - int(elem.value_tell)
+        except OSError:
+            return None
+        return max(0, min(int(elem.length), in_file))
+    value = elem.value
+    return len(value) if isinstance(value, (bytes, bytearray)) else None
+
+
+def _check_pixel_claims(entries: list[_Entry], geometry: "_Geometry") -> None:
+    """Refuse, before allocating, a series larger than the voxel limit or a file whose native
+    pixel data is shorter than Rows x Columns x Bits Allocated / 8 claims
+    (:mod:`phantometry.io.limits`)."""
+    first = entries[0]
+    check_voxel_count((geometry.rows, geometry.columns, len(entries)), str(first.path), "Rows x Columns x slices")
+    for entry in entries:
+        ts = _transfer_syntax(entry.ds)
+        if ts.is_compressed or ts.is_deflated:
+            continue  # the decoded size is known only when decoding, one slice at a time
+        bits = _ushort(entry.ds, "BitsAllocated") or 0
+        samples = _ushort(entry.ds, "SamplesPerPixel") or 1
+        needed = (geometry.rows * geometry.columns * samples * bits + 7) // 8
+        present = _pixel_bytes_present(entry)
+        if present is not None and present < needed:
+            raise InputError(
+                f"{entry.path}: Rows x Columns {geometry.rows} x {geometry.columns} at {bits} bits claim {needed:,} bytes "
+                f"of pixel data but the file holds {present:,}; the file is truncated or its header damaged, copy it again"
+            )
+
+
 def _transfer_syntax(ds: Any) -> UID:
-    meta = getattr(ds, "file_meta", None)
-    return UID(str(meta.get("TransferSyntaxUID", "") or "")) if meta is not None else UID("")
+    return UID(str(_meta_value(ds, "TransferSyntaxUID") or ""))
 
 
 def _slice_pixels(entry: _Entry, rows: int, columns: int) -> np.ndarray:
@@ -832,7 +1020,7 @@ def _slice_pixels(entry: _Entry, rows: int, columns: int) -> np.ndarray:
         pixels = source.pixel_array
     except Exception as exc:
         raise InputError(
-            f"{entry.path}: pixel data cannot be decoded ({type(exc).__name__}: {exc}); "
+            f"{entry.path}: pixel data cannot be decoded ({_reason(exc)}); "
             "the file may be truncated or corrupt"
         ) from None
     if pixels.shape != (rows, columns):
@@ -851,6 +1039,7 @@ class _Quantity:
     acquired_at: datetime | None
     nuclide: Nuclide | None
     time_zone_assumed: bool
+    warnings: list[str] = field(default_factory=list)
 
 
 def _quantity(entries: list[_Entry], where: str, calibration_factor: float | None) -> _Quantity:
@@ -872,6 +1061,12 @@ def _quantity(entries: list[_Entry], where: str, calibration_factor: float | Non
         )
 
     decay_correction = (_ascii(first.ds, "DecayCorrection") or "").upper() or None
+    if units in ("BQML", "GML") and decay_correction not in _DECAY_CORRECTIONS:
+        stated = "is missing" if decay_correction is None else f"is {decay_correction!r}"
+        raise UnitsError(
+            f"{first.path}: DecayCorrection (0054,1102) {stated}; a {units} series must state it as one of "
+            f"{', '.join(_DECAY_CORRECTIONS)} (the time its values refer to); fix the header"
+        )
     clock = _clock(first)
     series_dt = _datetime(first, "SeriesDate", "SeriesTime", clock)
     acquisitions = [_datetime(e, "AcquisitionDate", "AcquisitionTime", clock, "SeriesDate") for e in entries]
@@ -884,9 +1079,10 @@ def _quantity(entries: list[_Entry], where: str, calibration_factor: float | Non
     if units == "BQML":
         to_bqml = np.ones(len(entries))
     elif units == "CNTS":
-        if calibration_factor is None or not calibration_factor > 0:
+        if calibration_factor is None or not 0 < calibration_factor < math.inf:
             raise UnitsError(
-                f"{where}: values are in CNTS (counts); give calibration_factor (Bq/mL per count) to convert them"
+                f"{where}: values are in CNTS (counts); give calibration_factor (Bq/mL per count, a positive number) "
+                "to convert them"
             )
         to_bqml = np.full(len(entries), float(calibration_factor))
     elif units == "GML":
@@ -894,7 +1090,7 @@ def _quantity(entries: list[_Entry], where: str, calibration_factor: float | Non
     else:
         raise UnitsError(f"{where}: Units {units!r} cannot be converted to Bq/mL; supported: {_CONVERTIBLE_UNITS}")
     acquired_at = isotope.injection if decay_correction == "ADMIN" else scan
-    return _Quantity(units, decay_correction, to_bqml, acquired_at, isotope.nuclide, clock.assumed)
+    return _Quantity(units, decay_correction, to_bqml, acquired_at, isotope.nuclide, clock.assumed, isotope.warnings)
 
 
 def _read_pixels(entries: list[_Entry], geometry: _Geometry, to_bqml: np.ndarray) -> np.ndarray:
@@ -907,13 +1103,21 @@ def _read_pixels(entries: list[_Entry], geometry: _Geometry, to_bqml: np.ndarray
     slopes = np.empty(len(entries))
     intercepts = np.empty(len(entries))
     for n, entry in enumerate(entries):
-        slope = _float(entry.ds, "RescaleSlope")
+        slope = _strict_float(entry, "RescaleSlope", entry.path)
         if slope is None:
             raise UnitsError(f"{entry.path}: has no RescaleSlope (0028,1053); cannot scale the pixel values")
+        if slope == 0:
+            raise UnitsError(f"{entry.path}: RescaleSlope (0028,1053) is 0, which would erase the image; fix the header")
         slopes[n] = slope
-        intercepts[n] = _float(entry.ds, "RescaleIntercept") or 0.0
-    gains = (slopes * to_bqml).astype(np.float32)
-    offsets = (intercepts * to_bqml).astype(np.float32)
+        intercepts[n] = _strict_float(entry, "RescaleIntercept", entry.path) or 0.0
+    with np.errstate(over="ignore", invalid="ignore"):
+        gains = (slopes * to_bqml).astype(np.float32)
+        offsets = (intercepts * to_bqml).astype(np.float32)
+    bad = np.flatnonzero(~(np.isfinite(gains) & np.isfinite(offsets)))
+    if bad.size:
+        raise UnitsError(
+            f"{entries[bad[0]].path}: RescaleSlope/RescaleIntercept give a scale beyond single precision; fix the header"
+        )
 
     nz, ny, nx = len(entries), geometry.rows, geometry.columns
     data = np.empty((nz, ny, nx), dtype=np.float32)
@@ -939,6 +1143,14 @@ def _check_supported(entries: list[_Entry], info: SeriesInfo, where: str) -> Non
     for entry in entries:
         if _PIXEL_DATA not in entry.ds:
             raise InputError(f"{entry.path}: has no pixel data; the file is truncated or not an image, copy it again")
+        ts = _transfer_syntax(entry.ds)
+        if not ts:
+            raise UnsupportedSeries(f"{entry.path}: has no Transfer Syntax UID (0002,0010); the file meta is damaged")
+        if not ts.is_transfer_syntax or ts.is_private:
+            raise UnsupportedSeries(
+                f"{entry.path}: Transfer Syntax UID {str(ts)[:64]!r} is not a standard DICOM transfer syntax; "
+                "export the series with a standard one (e.g. Explicit VR Little Endian)"
+            )
     sop_class = _ascii(first.ds, "SOPClassUID")
     frames = max((_int(e.ds, "NumberOfFrames") or 1) for e in entries)
     if sop_class in _ENHANCED_PET or frames > 1:
@@ -947,7 +1159,7 @@ def _check_supported(entries: list[_Entry], info: SeriesInfo, where: str) -> Non
             f"{first.path}: series {info.label()} is an enhanced/multi-frame PET object ({kind}, {frames} frames); "
             "only classic single-frame PET Image Storage is supported, export the series as classic PET images"
         )
-    series_type = first.ds.get("SeriesType")
+    series_type = _value(first.ds, "SeriesType")
     kind = str(series_type[0]).upper() if series_type else ""
     time_slots = max(_ushort(first.ds, "NumberOfTimeSlots") or 1, _ushort(first.ds, "NumberOfTimeSlices") or 1)
     if kind in ("DYNAMIC", "GATED") or time_slots > 1:
@@ -995,7 +1207,20 @@ def load_dicom(
     -----
     TimeZoneAssumedWarning
         When the series has no Timezone Offset From UTC and its times were read as UTC.
+
+    Notes
+    -----
+    pydicom's own warnings about values that break the standard are silenced: a value the
+    loader needs is checked by the loader and refused by name.
     """
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", category=UserWarning, module=r"pydicom(\.|$)")
+        return _load_dicom(paths, series, calibration_factor)
+
+
+def _load_dicom(
+    paths: str | os.PathLike | Iterable[str | os.PathLike], series: str | int | None, calibration_factor: float | None
+) -> Volume:
     roots = _as_path_list(paths)
     where = _describe(roots)
     groups, broken = _scan(roots)
@@ -1025,8 +1250,9 @@ def load_dicom(
             TimeZoneAssumedWarning(
                 f"{first.path}: no TimezoneOffsetFromUTC; times were read as UTC, check the acquisition time"
             ),
-            stacklevel=2,
+            stacklevel=3,
         )
+    _check_pixel_claims(entries, geometry)
     data = _read_pixels(entries, geometry, quantity.to_bqml)
 
     method, iterations, subsets = parse_iterations_subsets(_text(first.ds, "ReconstructionMethod"))
@@ -1064,4 +1290,5 @@ def load_dicom(
         sop_instance_uids=tuple(_ascii(e.ds, "SOPInstanceUID") or "" for e in entries),
         frame_of_reference_uid=frames.pop(),
         study_uid=_ascii(first.ds, "StudyInstanceUID"),
+        warnings=tuple(quantity.warnings),
     )

@@ -106,7 +106,7 @@ def first_int(text: str | None) -> int | None:
         return None
     try:
         return int(float(text.split("\\")[0]))
-    except ValueError:
+    except (ValueError, OverflowError):  # not a number, or infinite
         return None
 
 

@@ -7,6 +7,11 @@ Loading (:func:`load_nifti`):
   ``(i, j, k)``; it is transposed to the project's array order ``(k, j, i)`` = (z, y, x) and
   kept as float32. A 4-D image with one frame is used as 3-D; more frames are refused with
   :class:`~phantometry.errors.UnsupportedSeries`.
+* **Checks before reading voxels.** Every dimension at least 1, finite pixdim and affine, at
+  most ``$PHANTOMETRY_MAX_VOXELS`` voxels (:mod:`phantometry.io.limits`), and at least
+  vox_offset + voxels x bytes per voxel present in the file (a ``.nii.gz`` is decompressed as a
+  stream to count them, nothing of the claimed size allocated). Voxels that are NaN or infinite
+  are refused after reading. nibabel's log lines about header fixes are kept off the terminal.
 * **Geometry.** The affine is nibabel's (sform when its code is set, else qform), which maps
   ``(i, j, k, 1)`` to NIfTI scanner/world mm, so the volume's frame is ``"RAS"``.
 * **Sidecar.** The JSON beside the image (``.nii``/``.nii.gz`` replaced by ``.json``) or the
@@ -47,18 +52,24 @@ above; since a Volume keeps only the reference time, that time is written as
 
 from __future__ import annotations
 
+import contextlib
+import gzip
 import json
+import logging
+import math
 import os
 import re
+import zlib
 import warnings
 from datetime import datetime, timedelta
 from pathlib import Path
-from typing import Any
+from typing import Any, Iterator
 
 import nibabel as nib
 import numpy as np
 
-from ..errors import InputError, UnitsError, UnsupportedSeries
+from ..errors import ImageTooLarge, InputError, UnitsError, UnsupportedSeries
+from .limits import check_voxel_count
 from ..nuclides import get_nuclide
 from ..volume import Reconstruction, Scanner, Volume
 
@@ -72,6 +83,10 @@ _ACTIVITY_UNITS = {
     "mbq/ml": ("MBq/mL", 1.0e6),
 }
 _COUNT_UNITS = ("counts", "cnts")
+#: largest sidecar read; BIDS sidecars are a few kilobytes
+_MAX_SIDECAR_BYTES = 4 * 1024 * 1024
+#: largest time offset in a sidecar (s): ten years
+_MAX_SECONDS = 10 * 366 * 86400.0
 
 #: RAS <- LPS (and back): x and y change sign
 _LPS_TO_RAS = np.diag([-1.0, -1.0, 1.0, 1.0])
@@ -94,13 +109,22 @@ def sidecar_path(image_path: str | os.PathLike) -> Path:
 # ---------------------------------------------------------------------------- sidecar reading
 def _read_sidecar(path: Path) -> dict[str, Any]:
     try:
-        text = path.read_text(encoding="utf-8")
+        with open(path, "rb") as fh:
+            raw = fh.read(_MAX_SIDECAR_BYTES + 1)
     except OSError as exc:
         raise InputError(f"{path}: cannot read the JSON sidecar ({exc.strerror})") from None
+    if len(raw) > _MAX_SIDECAR_BYTES:
+        raise InputError(f"{path}: larger than {_MAX_SIDECAR_BYTES // (1024 * 1024)} MB; a sidecar is a small JSON file, check the path")
+    try:
+        text = raw.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        raise InputError(f"{path}: the JSON sidecar is not UTF-8 text (byte 0x{raw[exc.start]:02X} at offset {exc.start}); save it as UTF-8") from None
     try:
         meta = json.loads(text)
     except json.JSONDecodeError as exc:
         raise InputError(f"{path}: not valid JSON (line {exc.lineno}, column {exc.colno}: {exc.msg}); fix the sidecar") from None
+    except RecursionError:
+        raise InputError(f"{path}: the JSON is nested too deeply; a sidecar is a flat object of BIDS keys") from None
     if not isinstance(meta, dict):
         raise InputError(f"{path}: the sidecar must be a JSON object of BIDS keys")
     return meta
@@ -120,7 +144,11 @@ def _get(meta: dict[str, Any], key: str, kind: type | tuple[type, ...], where: P
 
 def _seconds(meta: dict[str, Any], key: str, where: Path | None) -> float | None:
     value = _get(meta, key, (int, float), where)
-    return None if value is None else float(value)
+    if value is None:
+        return None
+    if not (math.isfinite(value) and abs(value) <= _MAX_SECONDS):
+        raise InputError(f"{where}: {key} is {value!r} s, not a time offset within ten years; fix the sidecar")
+    return float(value)
 
 
 def _parse_aware(text: Any, what: str) -> datetime:
@@ -139,7 +167,7 @@ def _parse_aware(text: Any, what: str) -> datetime:
 def _units_factor(units: str, calibration_factor: float | None, what: str) -> tuple[str, float]:
     key = re.sub(r"\s+", "", units).lower()
     if key in _COUNT_UNITS:
-        if calibration_factor is None or not calibration_factor > 0:
+        if calibration_factor is None or not 0 < calibration_factor < math.inf:
             raise UnitsError(f"{what}: values are in {units} (counts); give a positive calibration factor (Bq/mL per count)")
         return "counts", float(calibration_factor)
     if key not in _ACTIVITY_UNITS:
@@ -236,6 +264,98 @@ def _reference_time(meta: dict[str, Any], where: Path | None) -> tuple[datetime 
     return start, decay_correction
 
 
+# ---------------------------------------------------------------------------- header checks
+@contextlib.contextmanager
+def _quiet_nibabel() -> Iterator[None]:
+    """Keep nibabel's header-fix log lines ("pixdim should be positive ...") off the terminal.
+
+    The loader's own checks refuse what matters, with one line naming the file. Done by raising
+    the level of nibabel's logger for the duration (logging's public API).
+    """
+    logger = logging.getLogger("nibabel.global")
+    level = logger.level
+    logger.setLevel(logging.CRITICAL + 1)
+    try:
+        yield
+    finally:
+        logger.setLevel(level)
+
+
+def _reason(exc: BaseException) -> str:
+    """First line of an exception message, for a one-line error."""
+    text = str(exc).strip().splitlines()
+    return text[0] if text else type(exc).__name__
+
+
+def _check_header(img: Any, p: Path) -> None:
+    """Refuse dimensions below 1, non-finite voxel sizes or affine, and more voxels than the limit."""
+    dims = [int(v) for v in img.header["dim"][1 : 1 + len(img.shape)]]
+    bad = [(axis, n) for axis, n in enumerate(dims, start=1) if n < 1]
+    if bad:
+        axis, n = bad[0]
+        raise InputError(f"{p}: header dimension {axis} is {n}; every dimension must be at least 1, the header is damaged")
+    pixdim = np.asarray(img.header["pixdim"][1 : 1 + min(3, len(dims))], dtype=float)
+    if not np.all(np.isfinite(pixdim)):
+        raise InputError(f"{p}: header pixdim holds a voxel size that is not finite; the header is damaged")
+    try:
+        affine = np.asarray(img.affine, dtype=float)
+    except Exception as exc:  # a damaged qform/sform nibabel cannot build
+        raise InputError(f"{p}: the voxel-to-world affine cannot be built ({_reason(exc)}); the header is damaged") from None
+    if not np.all(np.isfinite(affine)):
+        raise InputError(f"{p}: the voxel-to-world affine (sform/qform) holds a number that is not finite; the header is damaged")
+    if abs(np.linalg.det(affine[:3, :3])) < 1e-9 or np.abs(affine).max() > 1e9:
+        raise InputError(f"{p}: the voxel-to-world affine (sform/qform) is degenerate or absurdly large; the header is damaged")
+    check_voxel_count(dims, str(p), "dimensions")
+
+
+def _check_data_present(img: Any, p: Path) -> None:
+    """Refuse, before allocating, a file holding fewer voxel bytes than its header claims.
+
+    A ``.nii`` file must be at least vox_offset + voxels x bytes per voxel long. A ``.nii.gz``
+    is decompressed as a stream into a small buffer (nothing of the claimed size is allocated)
+    until that many bytes have come out, or the stream ends or breaks.
+    """
+    try:
+        offset = int(img.dataobj.offset)
+        itemsize = np.dtype(img.get_data_dtype()).itemsize
+    except Exception as exc:
+        raise InputError(f"{p}: the header cannot be used ({_reason(exc)}); the file may be damaged") from None
+    needed = offset + math.prod(int(n) for n in img.shape) * itemsize
+    if p.name.lower().endswith(".gz"):
+        present = _gzip_length(p, needed)
+    else:
+        present = p.stat().st_size
+    packed = "decompressed " if p.name.lower().endswith(".gz") else ""
+    if offset > present:
+        raise InputError(f"{p}: vox_offset {offset:,} lies beyond the end of the {packed}file ({present:,} bytes); the header is damaged")
+    if present < needed:
+        raise InputError(
+            f"{p}: the header claims {'x'.join(map(str, img.shape))} voxels of {itemsize} bytes from offset {offset:,} "
+            f"({needed:,} bytes) but the {packed}file holds "
+            f"{present:,}; the file is truncated or its header damaged, copy it again"
+        )
+
+
+def _gzip_length(p: Path, limit: int, chunk: int = 1 << 20) -> int:
+    """Decompressed length of a gzip file, counted up to ``limit`` bytes in ``chunk`` reads.
+
+    Reading goes on up to one ``chunk`` past ``limit``, so that a file ending there has its
+    checksum verified by :mod:`gzip` (a corrupt stream is refused).
+    """
+    total = 0
+    try:
+        with gzip.open(p, "rb") as fh:
+            while total < limit + chunk:
+                block = fh.read(chunk)
+                if not block:
+                    break
+                total += len(block)
+    except (OSError, EOFError, zlib.error) as exc:
+        reason = "its checksum does not match" if "CRC" in str(exc) else _reason(exc)
+        raise InputError(f"{p}: the gzip stream is damaged after {total:,} bytes ({reason}); copy the file again") from None
+    return total
+
+
 # ---------------------------------------------------------------------------- loading
 def load_nifti(
     path: str | os.PathLike,
@@ -294,11 +414,15 @@ def load_nifti(
         )
     unit_name, to_bq_ml = _units_factor(unit_text, calibration_factor, "--units" if units is not None else f"{side}")
 
-    try:
-        img = nib.load(str(p))
-    except Exception as exc:  # nibabel raises several types for damaged or foreign files
-        raise InputError(f"{p}: cannot be read as NIfTI ({exc}); check the file") from None
+    # nibabel logs the header fixes it makes (e.g. "pixdim should be positive"); the checks
+    # below refuse what matters, so its log lines are kept off the terminal
+    with _quiet_nibabel():
+        try:
+            img = nib.load(str(p))
+        except Exception as exc:  # nibabel raises several types for damaged or foreign files
+            raise InputError(f"{p}: cannot be read as NIfTI ({_reason(exc)}); check the file") from None
     shape = img.shape
+    _check_header(img, p)
     if len(shape) > 3:
         frames = int(np.prod(shape[3:]))
         if frames > 1:
@@ -309,13 +433,30 @@ def load_nifti(
     elif len(shape) < 3:
         raise UnsupportedSeries(f"{p}: a {len(shape)}-D image; a 3-D volume is needed")
 
-    data_ijk = np.asarray(img.get_fdata(dtype=np.float32)).reshape(shape[:3])
+    _check_data_present(img, p)
+    try:
+        with _quiet_nibabel():
+            data_ijk = np.asarray(img.get_fdata(dtype=np.float32)).reshape(shape[:3])
+    except MemoryError:
+        raise ImageTooLarge(f"{p}: not enough memory for {'x'.join(map(str, shape))} voxels") from None
+    except Exception as exc:  # nibabel and its readers raise several types on damaged data
+        raise InputError(f"{p}: the voxel data cannot be read ({_reason(exc)}); the file may be damaged, copy it again") from None
     data_kji = np.ascontiguousarray(np.transpose(data_ijk, (2, 1, 0)))
     if to_bq_ml != 1.0:
         data_kji *= np.float32(to_bq_ml)
+    finite = np.isfinite(data_kji)
+    if not finite.all():
+        bad = int(finite.size - np.count_nonzero(finite))
+        raise InputError(
+            f"{p}: {bad:,} voxel(s) hold no finite number (NaN or infinity{', or too large for Bq/mL' if to_bq_ml != 1.0 else ''}); "
+            "replace them (e.g. by 0 outside the field of view) before measuring"
+        )
     affine = np.asarray(img.affine, dtype=float)
 
-    ref_time, decay_correction = _reference_time(meta, side)
+    try:
+        ref_time, decay_correction = _reference_time(meta, side)
+    except OverflowError:
+        raise InputError(f"{side}: AcquisitionDateTime with the sidecar's time offsets falls outside the calendar; fix the sidecar") from None
     if acquired_at is not None:
         ref_time = _parse_aware(acquired_at, "--acquired-at")
 

@@ -101,8 +101,8 @@ def load_template(name_or_path: str | os.PathLike, extra_dirs: Sequence[str | os
     TemplateError
         Not found, invalid schema or options, or a geometric problem (each listed).
     """
-    tpl = load_template_schema(name_or_path, list(extra_dirs or []))
-    problems = check_template(tpl)
+    tpl = load_template_schema(name_or_path, list(extra_dirs or []))  # schema and geometry checked
+    problems = kind_of(tpl).check_template(tpl)
     if problems:
         raise TemplateError(f"{tpl.source_path or tpl.name}: template fails its checks: " + "; ".join(problems))
     return tpl
