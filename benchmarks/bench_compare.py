@@ -8,7 +8,7 @@ realisation (CV proportional to FWHM^-1.5). Then, in one run:
 (a) sequential: one ``phantometry.measure.measure`` call per series in this process (after one
     untimed warm-up call, so this process has its imports done) -> T_seq; and again with one
     thread per measurement (``phantometry.threads.threads(1)``); and, like for like, the
-    workers' own task (``compare.measure_series``: CSV, JSON and overlay, no per-series
+    workers' own task (``phantometry.compare.measure_series``: CSV, JSON and overlay, no per-series
     recovery-curve picture) one after another with one thread for phantometry and BLAS;
 (b) ``phantometry.compare.compare`` over the folder with 2 worker processes, timed from the
     call to its return (worker start-up, discovery, charts included) -> T_cmp;
@@ -39,8 +39,9 @@ import numpy as np
 
 
 def main() -> None:
-    from phantometry.compare import compare, write_synthetic_family
+    from phantometry.compare import compare
     from phantometry.measure import measure
+    from phantometry.synth import write_synthetic_family
 
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--series", type=int, default=20)

@@ -13,11 +13,12 @@ import pytest
 from pydicom.uid import generate_uid
 
 from phantometry import compare as cmp
+from phantometry import ranking as rk
 from phantometry.cli import main
 from phantometry.errors import InputError, NoPETSeries
 from phantometry.io.dicom_write import write_dicom_series
 from phantometry.results import CSV_COLUMNS, Measurement, read_measurements_csv
-from phantometry.synth import DEMO_SCAN_TIME
+from phantometry.synth import DEMO_SCAN_TIME, write_synthetic_family
 from phantometry.volume import Volume
 
 FWHMS = (5.0, 8.0, 12.0)
@@ -65,7 +66,7 @@ def _uniform_cylinder(dst, series_number):
 @pytest.fixture(scope="module")
 def family(tmp_path_factory):
     root = tmp_path_factory.mktemp("family")
-    fam = cmp.write_synthetic_family(root / "in", _family_settings(), voxel_mm=4.0)
+    fam = write_synthetic_family(root / "in", _family_settings(), voxel_mm=4.0)
     victim = _damaged_copy(fam["series"][0], root / "in" / "damaged", 4)
     _uniform_cylinder(root / "in" / "wrong", 5)
     labels = root / "labels.yaml"
@@ -104,7 +105,7 @@ def test_family_ranks_as_physics_says(run):
 def test_failed_series_are_reported_and_do_not_stop_the_others(run, family):
     res = run["result"]
     assert len(res.outcomes) == 5 and len(res.succeeded) == 3
-    assert res.exit_code == cmp.EXIT_SERIES_FAILED == 4
+    assert res.exit_code == rk.EXIT_SERIES_FAILED == cmp.EXIT_SERIES_FAILED == 4
     failed = {o.job.series_number: o for o in res.failed}
     assert failed[4].error_type == "InputError" and family["victim"].name in failed[4].error and "truncated" in failed[4].error
     assert failed[5].error_type == "PhantomNotFound" and "wrong" in failed[5].error
@@ -126,7 +127,7 @@ def test_comparison_csv_is_the_measure_rows_plus_label(run):
     with open(out / "comparison.csv", newline="") as fh:
         header = next(csv.reader(fh))
     assert header == CSV_COLUMNS + ["label"]
-    back = cmp.read_comparison_csv(out / "comparison.csv")
+    back = rk.read_comparison_csv(out / "comparison.csv")
     assert len(back) == sum(len(o.rows) for o in res.succeeded)
     for o in res.succeeded:
         mine = [m for label, m in back if label == o.label]
@@ -147,7 +148,7 @@ def test_labels_from_reconstruction_attributes_and_the_mapping_file(run):
 
 def test_ranking_meets_bands_first_then_distance(run):
     res = run["result"]
-    back = cmp.read_comparison_csv(run["out"] / "comparison.csv")
+    back = rk.read_comparison_csv(run["out"] / "comparison.csv")
     by_label = {o.label: o.job.number for o in res.succeeded}
     # by hand, from the CSV: rows with a pass/fail verdict; distance = RMS of
     # (value - centre) / half-width with centre (low + high) / 2, half-width (high - low) / 2
@@ -190,6 +191,49 @@ def test_charts_are_written(run):
         assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 20_000
 
 
+def test_values_by_setting_follow_the_kinds_key_metrics(run):
+    # the report's tables of values by setting: one per key metric of the phantom kind, its
+    # columns the ROIs that have it in the kind's order (the body: spheres smallest first)
+    from phantometry.phantoms import load_template
+
+    res = run["result"]
+    spheres = [s.name for s in load_template("iec-body").spheres]
+    assert [s.split("_")[1] for s in spheres] == ["10mm", "13mm", "17mm", "22mm", "28mm", "37mm"]
+    tables = {t.metric: t for t in rk.key_metric_columns(res.outcomes)}
+    for metric in ("rc_max", "rc_mean", "rc_peak", "percent_contrast", "background_variability_pct"):
+        assert tables[metric].rois == spheres, metric
+    assert tables["effective_fwhm_mm"].rois == ["phantom"]
+    assert tables["rc_mean"].title == "RC mean"  # the kind's title (its report table)
+    measured = {r.metric for o in res.succeeded for r in o.rows}
+    assert set(tables) <= measured and not any(m.startswith("centre_") for m in tables)
+    from phantometry.report import compare_report_html
+
+    page = compare_report_html(res, folder=run["out"])  # no report in this run: built here
+    for metric in tables:
+        assert f'id="matrix-{metric.replace("_", "-")}"' in page
+    assert "<th class=\"num\">10mm</th>" in page  # the common ROI prefix is left out of the headings
+
+
+def test_key_metric_columns_by_hand():
+    def outcome(n, pairs, rows, error=None):
+        job = rk.SeriesJob(n, "nifti", (f"/x/{n}.nii",))
+        return rk.SeriesOutcome(job=job, rows=rows, key_metrics=pairs, metric_titles={"a": "A title"}, error=error)
+
+    def m(roi, metric):
+        return Measurement("u", None, "t", roi, metric, 1.0, "1")
+
+    first = outcome(1, [("r2", "a"), ("r1", "a"), ("r1", "b")], [m("r2", "a"), m("r1", "a"), m("r1", "b")])
+    second = outcome(2, [("r3", "a"), ("r1", "c")], [m("r3", "a")])  # c: a key metric without any row
+    failed = outcome(3, [("r9", "d")], [m("r9", "d")], error="boom")
+    cols = rk.key_metric_columns([first, second, failed])
+    assert [(c.metric, c.title, c.rois) for c in cols] == [("a", "A title", ["r2", "r1", "r3"]), ("b", "b", ["r1"])]
+    assert rk.short_roi_names(["sphere_10mm", "sphere_13mm"]) == ["10mm", "13mm"]
+    assert rk.short_roi_names(["rod_1mm", "rod_12mm"]) == ["1mm", "12mm"]
+    assert rk.short_roi_names(["water_chamber", "air_chamber"]) == ["water_chamber", "air_chamber"]
+    assert rk.short_roi_names(["sphere_10mm"]) == ["sphere_10mm"]
+    assert rk.short_roi_names(["a_b", "a_"]) == ["a_b", "a_"]  # no empty heading
+
+
 def test_rank_settings_by_hand():
     def row(roi, value, low, high, unc=None):
         verdict = "pass" if low <= value <= high else "fail"
@@ -199,7 +243,7 @@ def test_rank_settings_by_hand():
     b = [row("s1", 1.0, 0.4, 1.0), row("s2", 0.5, 0.3, 0.7)]            # one at a limit: sqrt(1/2)
     c = [row("s1", 0.39, 0.4, 1.0, unc=0.02), row("s2", 0.5, 0.3, 0.7)]  # fails, 0.01 below: within 2 u
     d = [row("s1", 0.1, 0.4, 1.0), row("s2", 0.9, 0.3, 0.7)]            # fails twice
-    ranked = cmp.rank_settings([("D", 4, None, d), ("C", 3, None, c), ("B", 2, None, b), ("A", 1, None, a)])
+    ranked = rk.rank_settings([("D", 4, None, d), ("C", 3, None, c), ("B", 2, None, b), ("A", 1, None, a)])
     assert [e.label for e in ranked] == ["A", "B", "C", "D"]
     assert [e.rank for e in ranked] == [1, 2, 3, 4]
     assert ranked[0].distance == pytest.approx(0.0, abs=1e-12)
@@ -209,7 +253,7 @@ def test_rank_settings_by_hand():
     assert ranked[3].failed == 2 and "above" in ranked[3].reasons[1]
     # no verdicts at all: no claim about bands, order by setting number
     plain = [Measurement("u", None, "t", "s1", "rc_mean", 0.5, "1")]
-    none = cmp.rank_settings([("y", 2, None, plain), ("x", 1, None, plain)])
+    none = rk.rank_settings([("y", 2, None, plain), ("x", 1, None, plain)])
     assert [e.number for e in none] == [1, 2] and none[0].meets_all_bands is None and none[0].distance is None
 
 
@@ -236,7 +280,7 @@ def test_duplicate_automatic_labels_are_told_apart():
     from phantometry.volume import Reconstruction
 
     rec = Reconstruction(method="OSEM", iterations=2, subsets=10, filter="none", matrix=(128, 128, 90), voxel_size_mm=(2.5, 2.5, 2.5))
-    outs = [cmp.SeriesOutcome(job=cmp.SeriesJob(n, "dicom", (f"/x/{n}",), f"1.2.{n}", n, "same"), reconstruction=rec) for n in (1, 2)]
+    outs = [rk.SeriesOutcome(job=rk.SeriesJob(n, "dicom", (f"/x/{n}",), f"1.2.{n}", n, "same"), reconstruction=rec) for n in (1, 2)]
     notes = cmp.assign_labels(outs, {"99": "unused"})
     assert [o.label for o in outs] == ["OSEM 2i10s, none [same] #1", "OSEM 2i10s, none [same] #2"]
     assert any("match no series: 99" in n for n in notes)

@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import csv
 import json
+import re
 from pathlib import Path
 
 import pytest
@@ -71,6 +72,16 @@ def test_compare_with_report(kind_scans, tmp_path, capsys):
     ranking = list(csv.DictReader(open(out / "ranking.csv", encoding="utf-8")))
     assert len(ranking) == 2 and all(r["status"] == "measured" for r in ranking)
     assert (out / "report.html").stat().st_size > 10_000
+    said = " ".join(captured.out.split())  # the files named are the ones written (the kind's charts)
+    assert all(f.name in said for f in out.iterdir() if f.is_file() and not f.name.startswith("."))
+    # the values by setting: a table per key metric of the kind, here the banded one, one row
+    # per setting, each value inside its band marked as such
+    html = (out / "report.html").read_text(encoding="utf-8")
+    entry = KINDS[kind_scans["name"]][1]
+    table = re.search(f'<table id="matrix-{entry["metric"].replace("_", "-")}">.*?<tbody>(.*?)</tbody>', html, re.S)
+    assert table is not None, entry["metric"]
+    body = table.group(1)
+    assert body.count("<tr>") == 2 and body.count("&#10003;") >= 2 and "&#10007;" not in body
     for folder in sorted((out / "series").iterdir()):
         assert (folder / "overlay.png").exists()
 

@@ -18,6 +18,7 @@ from phantometry import compare as cmp
 from phantometry.measure import measure
 from phantometry.report import esc, format_value, measure_report_html
 from phantometry.results import CAUTION
+from phantometry.synth import write_synthetic_family
 
 ROOT = Path(__file__).resolve().parents[1]
 CHROMIUM = Path("/usr/bin/chromium")
@@ -138,7 +139,7 @@ def verdict_report(measure_report, tmp_path_factory):
 @pytest.fixture(scope="module")
 def compare_report(tmp_path_factory):
     root = tmp_path_factory.mktemp("cmp_report")
-    fam = cmp.write_synthetic_family(root / "in", [{"fwhm_mm": 5.0, "noise_cv": 0.15}, {"fwhm_mm": 11.0, "noise_cv": 0.06}], voxel_mm=4.0)
+    fam = write_synthetic_family(root / "in", [{"fwhm_mm": 5.0, "noise_cv": 0.15}, {"fwhm_mm": 11.0, "noise_cv": 0.06}], voxel_mm=4.0)
     labels = root / "labels.csv"
     labels.write_text("series,label\n2,<script>alert(1)</script> smooth\n", encoding="utf-8")
 

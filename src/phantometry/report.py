@@ -24,11 +24,12 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any, Iterable, Sequence
 
 from . import __version__
+from .ranking import KeyMetricColumns, key_metric_columns, short_roi_names
 from .results import CAUTION, Measurement
 
 if TYPE_CHECKING:  # pragma: no cover
-    from .compare import ComparisonResult
     from .phantoms.base import Analysis, ResultGrid
+    from .ranking import ComparisonResult
 
 _CSS = """
 :root { --ink: #161616; --muted: #555; --rule: #b8b8b8; --faint: #f3f3f3;
@@ -336,24 +337,20 @@ def write_measure_report(analysis: "Analysis", path: str | os.PathLike, *, folde
 
 
 # ============================================================================== compare report
-def _settings_matrix(result: "ComparisonResult", metric: str, title: str) -> str:
-    spheres = sorted(result.sphere_diameters_mm, key=lambda n: result.sphere_diameters_mm[n])
-    if metric.startswith("rc_"):
-        spheres = [s for s in spheres if result.hot_spheres.get(s, True)]
-    ok = result.succeeded
-    if not any(r.metric == metric for o in ok for r in o.rows):
-        return ""
+def _settings_matrix(result: "ComparisonResult", table: KeyMetricColumns) -> str:
+    """Values of one key metric: one row per measured setting, one column per ROI that has it."""
+    metric, rois = table.metric, table.rois
     head = "<thead><tr><th class=\"num\">#</th><th>setting</th>" + "".join(
-        f"<th class=\"num\">{esc(s.replace('sphere_', ''))}</th>" for s in spheres) + "</tr></thead>"
+        f"<th class=\"num\">{esc(name)}</th>" for name in short_roi_names(rois)) + "</tr></thead>"
     body = []
-    for o in ok:
+    for o in result.succeeded:
         by: dict[str, list[Measurement]] = {}
         for r in o.rows:
             if r.metric == metric:
                 by.setdefault(r.roi, []).append(r)
         cells = []
-        for s in spheres:
-            rs = by.get(s)
+        for roi in rois:
+            rs = by.get(roi)
             if not rs:
                 cells.append('<td class="num">&ndash;</td>')
                 continue
@@ -363,7 +360,8 @@ def _settings_matrix(result: "ComparisonResult", metric: str, title: str) -> str
             cells.append(f'<td class="num{cls}">{format_value(rs[0].value, rs[0].unit, rs[0].uncertainty)}{mark}</td>')
         body.append(f"<tr><td class=\"num\">{o.job.number}</td><td>{esc(o.label)}</td>{''.join(cells)}</tr>")
     tid = "matrix-" + metric.replace("_", "-")
-    return (f'<h3>{esc(title)}</h3><table id="{tid}"><caption>Rows: settings; columns: spheres; '
+    title = table.title if table.title == metric else f"{table.title} ({metric})"
+    return (f'<h3>{esc(title)}</h3><table id="{esc(tid)}"><caption>Rows: settings; columns: ROIs; '
             f'&#10003; inside / &#10007; outside the band.</caption>{head}<tbody>{"".join(body)}</tbody></table>')
 
 
@@ -430,11 +428,7 @@ def compare_report_html(result: "ComparisonResult", *, folder: str | os.PathLike
                   "<thead><tr><th class=\"num\">#</th><th>source</th><th>error</th><th>message</th></tr></thead>"
                   f"<tbody>{frows}</tbody></table></section>")
     charts = "".join(_figure(_read(base / name), name, caption) for name, caption in result.charts)
-    matrices = "".join(
-        _settings_matrix(result, m, t)
-        for m, t in (("rc_mean", "RC mean"), ("rc_max", "RC max"), ("rc_peak", "RC peak"),
-                     ("percent_contrast", "Percent contrast Q (%)"), ("background_variability_pct", "Background variability N (%)"))
-    )
+    matrices = "".join(_settings_matrix(result, table) for table in key_metric_columns(result.succeeded))
     blocks = []
     for o in result.succeeded:
         rec = (o.series or {}).get("reconstruction") or {}

@@ -449,6 +449,90 @@ def write_synthetic(
     return {"image": image, "fill": out / "fill.yaml", "truth": out / "truth.json", "written": staging.written}
 
 
+
+def write_synthetic_family(
+    out_dir: str | os.PathLike,
+    settings: Sequence[dict[str, Any]],
+    *,
+    voxel_mm: float = 3.0,
+    matrix: tuple[int, int, int] | None = None,
+    rotation_deg: tuple[float, float, float] = (1.0, -1.0, 20.0),
+    shift_mm: tuple[float, float, float] = (3.0, -2.0, 1.0),
+    sphere_ratio: float = 4.0,
+    cold: Sequence[str] = (),
+    seed: int = 0,
+) -> dict[str, Any]:
+    """Write one invented phantom acquisition "reconstructed" several ways, one DICOM series each.
+
+    For tests and benchmarks of ``compare``. The phantom is rasterised once (:func:`synthesize`
+    without blur or noise); every setting blurs it with its own Gaussian PSF and adds correlated
+    noise (the model of this module). By default every setting filters the *same* white-noise realisation (``seed``), as
+    reconstructions of one acquisition share its counts. All series share the Study and Frame
+    of Reference UIDs, as reconstructions of one acquisition do.
+
+    Parameters
+    ----------
+    out_dir : path
+        Folder (created; written directly, not as a phantometry results folder); series go to
+        ``out_dir/recon_NN/``, the fill record to ``out_dir/fill.yaml``.
+    settings : list of dict
+        Each with ``fwhm_mm`` (PSF FWHM, mm) and ``noise_cv`` (background voxel CV); optional
+        ``seed`` (default: the common ``seed``), ``method`` (Reconstruction Method, e.g. ``"OSEM 3i21s"``), ``filter``
+        (Convolution Kernel) and ``description``.
+    voxel_mm, matrix, rotation_deg, shift_mm, sphere_ratio, cold
+        As in :class:`SynthSpec`.
+    seed : int
+        Seed of the white noise shared by the settings.
+
+    Returns
+    -------
+    dict
+        ``fill`` (path), ``series`` (list of folders), ``truth`` (the synthesizer's truth).
+    """
+    import dataclasses
+
+    import yaml
+    from pydicom.uid import generate_uid
+
+    from .io.dicom import parse_iterations_subsets
+    from .io.dicom_write import write_dicom_series
+
+    spec = SynthSpec(voxel_mm=(voxel_mm,) * 3, matrix=matrix, psf_fwhm_mm=0.0, noise_cv=0.0, rotation_deg=rotation_deg,
+                     shift_mm=shift_mm, sphere_ratio=sphere_ratio, cold=list(cold))
+    if matrix is None:  # leave room for the widest PSF of the family
+        widest = SynthSpec(**{**spec.__dict__, "psf_fwhm_mm": max(float(s["fwhm_mm"]) for s in settings)})
+        tpl = load_template(spec.phantom)
+        spec.matrix = auto_matrix(widest, tpl, *phantom_pose(widest, tpl))
+    base = synthesize(spec)
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    truth_img = base.volume.data.astype(np.float64)
+    bg = base.truth["background_bq_ml"]
+    spacing = base.volume.spacing_mm
+    study_uid, frame_uid = generate_uid(), generate_uid()
+    folders = []
+    for n, s in enumerate(settings, start=1):
+        fwhm, cv = float(s["fwhm_mm"]), float(s["noise_cv"])
+        img = gaussian_blur(truth_img, fwhm, spacing)
+        if cv > 0:
+            rng = np.random.default_rng(int(s.get("seed", seed)))
+            img += cv * np.sqrt(np.clip(img, 0, None) * bg) * correlated_unit_noise(img.shape, fwhm, spacing, rng)
+        method_text = s.get("method", "OSEM 3i21s")
+        method, iters, subsets = parse_iterations_subsets(method_text)
+        recon = Reconstruction(method=method, iterations=iters, subsets=subsets, filter=s.get("filter", f"Gauss {fwhm:g}mm"),
+                               matrix=base.volume.reconstruction.matrix, voxel_size_mm=base.volume.reconstruction.voxel_size_mm)
+        vol = dataclasses.replace(base.volume, data=img.astype(np.float32), reconstruction=recon)
+        folder = out / f"recon_{n:02d}"
+        write_dicom_series(vol, folder, series_number=n, study_uid=study_uid, frame_of_reference_uid=frame_uid,
+                           series_description=s.get("description", f"QC phantom recon {n} (synthetic)"),
+                           patient_weight_kg=10.0)
+        folders.append(folder)
+        del img
+    fill_path = out / "fill.yaml"
+    fill_path.write_text(yaml.safe_dump(base.fill_record, sort_keys=False), encoding="utf-8")
+    return {"fill": fill_path, "series": folders, "truth": base.truth}
+
+
 def _nominal_dose_bq(result: SynthResult) -> float:
     """An injected activity consistent with the background (about 9.7 L of water), Bq at injection."""
     bg = result.truth["background_bq_ml"]

@@ -1,0 +1,390 @@
+"""What a comparison of reconstruction settings gives, and how its settings are ranked.
+
+The result types of :func:`phantometry.compare.compare` (one :class:`SeriesJob` per series
+found, its :class:`SeriesOutcome`, the :class:`RankEntry` of each measured setting, the whole
+:class:`ComparisonResult`), the ranking itself (:func:`rank_settings`: a formula over the band
+verdicts of the rows), the ``values by setting`` columns (:func:`key_metric_columns`) and the
+text of ``ranking.csv`` and ``comparison.csv``. Plain data and pure functions: the outputs
+(:mod:`phantometry.report`) read them without knowing how a comparison is run.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import math
+import os
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import TYPE_CHECKING, Any, Sequence
+
+from .results import CSV_COLUMNS, Measurement, _fmt
+from .volume import Reconstruction
+
+if TYPE_CHECKING:  # pragma: no cover
+    from .outputs import WrittenFolder
+    from .templates import Template
+
+#: Exit code of ``phantometry compare`` when at least one series failed (the others succeeded).
+EXIT_SERIES_FAILED = 4
+
+
+# ============================================================================== data types
+@dataclass(frozen=True)
+class SeriesJob:
+    """One series to measure (picklable; sent to a worker).
+
+    Attributes
+    ----------
+    number : int
+        Position in discovery order, 1-based: the setting number on charts and tables.
+    kind : {"dicom", "nifti"}
+    paths : tuple of str
+        The files of the DICOM series, or the NIfTI file.
+    series_uid, series_number, series_description
+        From the DICOM headers (None for NIfTI).
+    where : str
+        How messages name the series.
+    """
+
+    number: int
+    kind: str
+    paths: tuple[str, ...]
+    series_uid: str | None = None
+    series_number: int | None = None
+    series_description: str | None = None
+    where: str = ""
+
+    @property
+    def folder_name(self) -> str:
+        return f"series_{self.number:03d}"
+
+
+@dataclass
+class SeriesOutcome:
+    """What measuring one series gave: rows, or the error that stopped it.
+
+    Attributes
+    ----------
+    job : SeriesJob
+    rows : list of Measurement
+        Empty when the series failed.
+    error : str or None
+        One-line message of the failure (``None`` on success).
+    error_type : str or None
+        Exception class name (``PhantomNotFound``, ``InputError``, ...).
+    internal : bool
+        True when the failure was not an expected :class:`PhantometryError` (a bug to report).
+    warnings : list of str
+    series : dict or None
+        ``Volume.summary()`` of the loaded series (no patient identity).
+    reconstruction : Reconstruction or None
+    localisation : dict or None
+        ``Placement.as_dict()``.
+    key_metrics : list of (roi, metric)
+        What characterises the setting, as its phantom kind says
+        (:meth:`phantometry.phantoms.base.Analysis.key_metrics`), in the kind's order.
+    metric_titles : dict
+        metric -> title of its column in the kind's report tables (where the kind gives one).
+    label : str
+        Assigned by the main process after all series are done.
+    seconds : float
+        Wall time in the worker.
+    peak_traced_bytes, volume_bytes : int or None
+        With memory tracing: peak of memory allocated during the task (tracemalloc) and the
+        size of the float32 volume.
+    peak_rss_bytes : int or None
+        With memory tracing: the worker process's maximum resident set size so far.
+    """
+
+    job: SeriesJob
+    rows: list[Measurement] = field(default_factory=list)
+    error: str | None = None
+    error_type: str | None = None
+    internal: bool = False
+    warnings: list[str] = field(default_factory=list)
+    series: dict[str, Any] | None = None
+    reconstruction: Reconstruction | None = None
+    localisation: dict[str, Any] | None = None
+    key_metrics: list[tuple[str, str]] = field(default_factory=list)
+    metric_titles: dict[str, str] = field(default_factory=dict)
+    label: str = ""
+    seconds: float = 0.0
+    peak_traced_bytes: int | None = None
+    volume_bytes: int | None = None
+    peak_rss_bytes: int | None = None
+
+    @property
+    def ok(self) -> bool:
+        return self.error is None
+
+
+@dataclass
+class RankEntry:
+    """One setting in the ranking.
+
+    Attributes
+    ----------
+    rank : int
+    label : str
+    number : int
+        Setting number (discovery order).
+    series_uid : str or None
+    meets_all_bands : bool or None
+        None when no row carries a band verdict.
+    checked, passed, failed : int
+        Rows with a ``pass``/``fail`` verdict, and how many of each.
+    distance : float or None
+        Root-mean-square normalised distance from the band centres (0 = every value at the
+        centre of its band, 1 = on average at a limit); None without two-sided bands.
+    reasons : list of str
+        Why the setting fails (one line per failing row).
+    brief : list of str
+        The same, short: ``sphere_10mm rc_mean high``.
+    """
+
+    rank: int
+    label: str
+    number: int
+    series_uid: str | None
+    meets_all_bands: bool | None
+    checked: int
+    passed: int
+    failed: int
+    distance: float | None
+    reasons: list[str]
+    brief: list[str] = field(default_factory=list)
+
+
+@dataclass
+class ComparisonResult:
+    """Everything :func:`phantometry.compare.compare` measured and wrote."""
+
+    out: Path
+    outcomes: list[SeriesOutcome]
+    ranking: list[RankEntry]
+    template_name: str
+    template_title: str
+    fill: dict[str, Any]
+    band_names: list[str]
+    warnings: list[str] = field(default_factory=list)
+    workers: int = 1
+    seconds: float = 0.0
+    #: the template the series were measured with
+    template: "Template | None" = None
+    #: (file name, caption) of the charts written (the phantom kind's comparison charts)
+    charts: list[tuple[str, str]] = field(default_factory=list)
+    #: what writing the folder did (replaced an earlier one?)
+    written: "WrittenFolder | None" = None
+
+    @property
+    def succeeded(self) -> list[SeriesOutcome]:
+        return [o for o in self.outcomes if o.ok]
+
+    @property
+    def failed(self) -> list[SeriesOutcome]:
+        return [o for o in self.outcomes if not o.ok]
+
+    @property
+    def exit_code(self) -> int:
+        """0 when every series was measured, :data:`EXIT_SERIES_FAILED` otherwise."""
+        return EXIT_SERIES_FAILED if self.failed else 0
+
+
+# ============================================================================== ranking
+def _band_distance(r: Measurement) -> float | None:
+    lo, hi = r.band_low, r.band_high
+    if lo is None or hi is None or not (math.isfinite(lo) and math.isfinite(hi)) or hi <= lo:
+        return None
+    return (r.value - 0.5 * (lo + hi)) / (0.5 * (hi - lo))
+
+
+def _fail_reason(r: Measurement) -> str:
+    lo, hi = r.band_low, r.band_high
+    if lo is not None and math.isfinite(lo) and r.value < lo:
+        side, limit = "below", lo
+    elif hi is not None and math.isfinite(hi) and r.value > hi:
+        side, limit = "above", hi
+    else:
+        side, limit = "outside", None
+    band = f" ({r.band})" if r.band else ""
+    text = f"{r.roi} {r.metric} {r.value:.3g} {side} the band{band}"
+    if limit is not None:
+        text += f" limit {limit:.3g}"
+    if r.uncertainty is not None and math.isfinite(r.uncertainty) and limit is not None and abs(r.value - limit) < 2 * r.uncertainty:
+        text += f", within 2 standard uncertainties ({r.uncertainty:.2g})"
+    return text
+
+
+def rank_settings(settings: Sequence[tuple[str, int, str | None, Sequence[Measurement]]]) -> list[RankEntry]:
+    """Rank settings: those meeting every band first, then by distance from the band centres.
+
+    Parameters
+    ----------
+    settings : list of (label, number, series_uid, rows)
+        The measurement rows of each setting, with ``band_low``, ``band_high``, ``verdict``
+        filled by the acceptance bands.
+
+    Returns
+    -------
+    list of RankEntry
+        Sorted by (fails any band, number of failing rows, distance, number). The distance is
+        the root-mean-square over the rows with a two-sided band of
+        ``(value - centre) / half-width`` (``centre = (low + high) / 2``,
+        ``half-width = (high - low) / 2``), so 1 means "on average at a limit". Rows whose
+        verdict is ``n/a`` or empty are not counted. Without any band verdict every setting
+        gets ``meets_all_bands = None`` and the order is the setting number.
+    """
+    entries = []
+    for label, number, uid, rows in settings:
+        judged = [r for r in rows if r.verdict in ("pass", "fail")]
+        fails = [r for r in judged if r.verdict == "fail"]
+        dists = [d for d in (_band_distance(r) for r in judged) if d is not None and math.isfinite(d)]
+        dist = math.sqrt(sum(d * d for d in dists) / len(dists)) if dists else None
+        entries.append(
+            RankEntry(
+                rank=0,
+                label=label,
+                number=number,
+                series_uid=uid,
+                meets_all_bands=(not fails) if judged else None,
+                checked=len(judged),
+                passed=len(judged) - len(fails),
+                failed=len(fails),
+                distance=dist,
+                reasons=[_fail_reason(r) for r in fails],
+                brief=[f"{r.roi} {r.metric} {'low' if (r.band_low is not None and r.value < r.band_low) else 'high'}" for r in fails],
+            )
+        )
+    entries.sort(key=lambda e: (e.meets_all_bands is False, e.failed, math.inf if e.distance is None else e.distance, e.number))
+    for n, e in enumerate(entries, start=1):
+        e.rank = n
+    return entries
+
+
+# ============================================================================== values by setting
+@dataclass(frozen=True)
+class KeyMetricColumns:
+    """One table of values by setting: a key metric, and the ROIs that have it.
+
+    Attributes
+    ----------
+    metric : str
+    title : str
+        The kind's title of the metric (its report tables), else the metric name.
+    rois : list of str
+        The columns, in the kind's order of its key metrics (the body: spheres smallest first).
+    """
+
+    metric: str
+    title: str
+    rois: list[str]
+
+
+def key_metric_columns(outcomes: Sequence[SeriesOutcome]) -> list[KeyMetricColumns]:
+    """The tables of values by setting: one per key metric of the measured settings.
+
+    Metrics and ROIs come in the order the phantom kind lists its key metrics
+    (:attr:`SeriesOutcome.key_metrics`; the first setting's order, then anything only later
+    settings have); a metric that no setting has a row of is left out.
+    """
+    rois_of: dict[str, list[str]] = {}
+    titles: dict[str, str] = {}
+    measured: set[str] = set()
+    for o in outcomes:
+        if not o.ok:
+            continue
+        measured.update(r.metric for r in o.rows)
+        for metric, title in o.metric_titles.items():
+            titles.setdefault(metric, title)
+        for roi, metric in o.key_metrics:
+            cols = rois_of.setdefault(metric, [])
+            if roi not in cols:
+                cols.append(roi)
+    return [KeyMetricColumns(m, titles.get(m, m), rois) for m, rois in rois_of.items() if m in measured]
+
+
+def short_roi_names(rois: Sequence[str]) -> list[str]:
+    """Column headings: the ROI names without the prefix (up to an ``_``) they all share.
+
+    ``sphere_10mm, sphere_13mm`` -> ``10mm, 13mm``; a single name or names without a common
+    prefix stay as they are.
+    """
+    if len(rois) < 2:
+        return list(rois)
+    common = os.path.commonprefix(list(rois))
+    cut = common.rfind("_") + 1
+    if cut == 0 or any(len(r) == cut for r in rois):
+        return list(rois)
+    return [r[cut:] for r in rois]
+
+
+# ============================================================================== CSV text
+RANKING_COLUMNS = [
+    "rank",
+    "setting",
+    "label",
+    "series_uid",
+    "status",
+    "meets_all_bands",
+    "rows_checked",
+    "rows_passed",
+    "rows_failed",
+    "distance_from_band_centres",
+    "reasons",
+    "folder",
+]
+
+
+def ranking_csv(result: ComparisonResult) -> str:
+    """``ranking.csv``: :data:`RANKING_COLUMNS`; failed series last with status ``error``."""
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(RANKING_COLUMNS)
+    for e in result.ranking:
+        meets = "" if e.meets_all_bands is None else ("yes" if e.meets_all_bands else "no")
+        w.writerow([e.rank, e.number, e.label, e.series_uid or "", "measured", meets, e.checked, e.passed, e.failed,
+                    _fmt(e.distance), "; ".join(e.reasons), f"series/series_{e.number:03d}"])
+    for o in result.failed:
+        w.writerow(["", o.job.number, o.label, o.job.series_uid or "", "error", "", 0, 0, 0, "", o.error, ""])
+    return buf.getvalue()
+
+
+def comparison_csv(outcomes: Sequence[SeriesOutcome]) -> str:
+    """``comparison.csv``: the measurement columns plus ``label``, every measured series."""
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow([*CSV_COLUMNS, "label"])
+    for o in outcomes:
+        for r in o.rows:
+            d = r.as_dict()
+            w.writerow([*(_fmt(d[c]) for c in CSV_COLUMNS), o.label])
+    return buf.getvalue()
+
+
+def read_comparison_csv(path: str | os.PathLike) -> list[tuple[str, Measurement]]:
+    """Read ``comparison.csv`` back as ``(label, Measurement)`` pairs."""
+    from .results import measurement_from_record
+
+    out = []
+    with open(path, newline="", encoding="utf-8") as fh:
+        for rec in csv.DictReader(fh):
+            out.append((rec["label"], measurement_from_record(rec)))
+    return out
+
+
+__all__ = [
+    "EXIT_SERIES_FAILED",
+    "SeriesJob",
+    "SeriesOutcome",
+    "RankEntry",
+    "ComparisonResult",
+    "KeyMetricColumns",
+    "rank_settings",
+    "key_metric_columns",
+    "short_roi_names",
+    "RANKING_COLUMNS",
+    "ranking_csv",
+    "comparison_csv",
+    "read_comparison_csv",
+]
