@@ -8,7 +8,8 @@ edge and from the spheres, with concentric ROIs of every sphere size)
    are carried into the image by the body frame found from the outline
    (:func:`phantometry.locate.find_body_frame`), the same ``x, y`` on every background plane.
 2. Each ROI (the largest size; the others are concentric) must keep ``clearance`` mm, on every
-   plane, from the body edge *found on that plane* (:func:`phantometry.outline.find_outline`),
+   plane, from the body edge *found on that plane* (:func:`phantometry.outline.find_outline`;
+   a plane without an outline cannot be checked, and its set is reported as not confirmed),
    and in the plane from every sphere's outer surface and every insert parallel to the axis
    (at the positions found). A template position is kept when it keeps the clearance less
    :data:`EDGE_TOLERANCE_MM` (allowed for locating the edge in the image).
@@ -105,18 +106,17 @@ class BackgroundPlacement:
 def clearances(xy: np.ndarray, planes: list[PlaneGeometry], obstacles: list[Obstacle], diameter_mm: float) -> tuple[np.ndarray, np.ndarray]:
     """Edge and obstacle clearances (mm) of discs of ``diameter_mm`` at body-frame centres (m, 2).
 
-    Returns (edge, obstacle): the smallest distance over the planes from the disc's edge to
-    the body edge found there (negative: it crosses it; NaN where a plane has no outline), and
-    the smallest in-plane distance from the disc's edge to an obstacle's surface (+inf if none).
+    Returns (edge, obstacle): the smallest distance over the planes with an outline from the
+    disc's edge to the body edge found there (negative: it crosses it; +inf when no plane has
+    an outline), and the smallest in-plane distance from the disc's edge to an obstacle's
+    surface (+inf if none).
     """
     xy = np.asarray(xy, float).reshape(-1, 2)
     r = 0.5 * float(diameter_mm)
     edge = np.full(len(xy), np.inf)
     for pg in planes:
-        if pg.outline is None:
-            edge[:] = np.nan
-            continue
-        edge = np.minimum(edge, pg.outline.signed_distance(pg.to_plane(xy)) - r)
+        if pg.outline is not None:
+            edge = np.minimum(edge, pg.outline.signed_distance(pg.to_plane(xy)) - r)
     return edge, _obstacle_clearance(xy, obstacles, r)
 
 
@@ -136,10 +136,10 @@ def keeps_clearance(xy: np.ndarray, planes: list[PlaneGeometry], obstacles: list
     ok = _obstacle_clearance(xy, obstacles, r) >= clearance_mm
     for pg in planes:
         idx = np.flatnonzero(ok)
-        if pg.outline is None:
-            ok[:] = False
-        if not idx.size or pg.outline is None:
+        if not idx.size:
             break
+        if pg.outline is None:  # nothing to check against on this plane (the set is then not confirmed)
+            continue
         ok[idx] = pg.outline.signed_distance(pg.to_plane(xy[idx]), clearance_mm + r + 1.0) - r >= clearance_mm
     return ok
 
@@ -164,7 +164,7 @@ def place(
     n = len(txy)
     edge, obst = clearances(txy, planes, obstacles, diameter_mm)
     clear = np.minimum(edge, obst)
-    ok = np.nan_to_num(clear, nan=-np.inf) >= clearance_mm - tolerance_mm
+    ok = clear >= clearance_mm - tolerance_mm
     if n > 1:
         d = np.hypot(*(txy[:, None, :] - txy[None, :, :]).transpose(2, 0, 1))
         np.fill_diagonal(d, np.inf)
@@ -227,17 +227,12 @@ class SetCheck:
 
 def check_size(xy: np.ndarray, planes: list[PlaneGeometry], obstacles: list[Obstacle], diameter_mm: float) -> SetCheck:
     """Fraction of every ROI of one size inside the body outline found on its plane, and its
-    smallest distances to the body edge and to the obstacles (mm)."""
+    smallest distances to the body edge and to the obstacles (mm), over the planes with an
+    outline (NaN / +inf when none has one)."""
     xy = np.asarray(xy, float).reshape(-1, 2)
     if len(xy) == 0:
         return SetCheck(diameter_mm, math.nan, math.nan, math.nan)
-    fractions = []
-    for pg in planes:
-        if pg.outline is None:
-            fractions.append(np.full(len(xy), np.nan))
-            continue
-        fractions.append(pg.outline.disc_inside_fraction(pg.to_plane(xy), diameter_mm))
+    fractions = [pg.outline.disc_inside_fraction(pg.to_plane(xy), diameter_mm) for pg in planes if pg.outline is not None]
     edge, obst = clearances(xy, planes, obstacles, diameter_mm)
-    frac = np.concatenate(fractions)
-    return SetCheck(diameter_mm, float(np.min(frac)) if np.all(np.isfinite(frac)) else math.nan,
+    return SetCheck(diameter_mm, float(np.min(np.concatenate(fractions))) if fractions else math.nan,
                     float(np.min(edge)), float(np.min(obst)))

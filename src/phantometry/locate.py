@@ -834,7 +834,7 @@ def find_body_frame(volume: Volume, placement: Placement, template: Template, ax
     c0 = np.array([ax_ins.centre_mm[0], ax_ins.centre_mm[1], 0.0])
     level = 0.5 * placement.background_estimate_bq_ml
     body_t = template.body
-    max_r = 2.0 * body_t.half_extent_xy_mm + 20.0
+    max_r = body_t.half_extent_xy_mm + 30.0
     offsets = list(template.background.slice_offsets_mm) if template.background is not None else [0.0]
     u, v = R[:, 0], R[:, 1]
     outlines: dict[float, Any] = {}

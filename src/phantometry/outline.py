@@ -3,7 +3,7 @@
 Method (phantometry's own)
 --------------------------
 From a point inside the region, rays are cast in the plane every ``360 / n_rays`` degrees and
-the image is sampled along them every 0.5 mm (trilinear;
+the image is sampled along them every 1 mm, or a quarter voxel when finer (trilinear;
 on an original slice this is bilinear within the slice). The edge on a ray is where the
 profile crosses ``level`` (half the background: the 50 % point of a blurred step lies on the
 edge for a symmetric point response), by linear interpolation between samples:
@@ -31,8 +31,8 @@ from scipy.spatial import cKDTree
 
 from .volume import Volume
 
-#: Sampling step along a ray, mm.
-RAY_STEP_MM = 0.5
+#: Largest sampling step along a ray, mm (a quarter of the smallest voxel spacing when finer).
+RAY_STEP_MM = 1.0
 
 
 @dataclass
@@ -173,7 +173,8 @@ def find_outline(
     v = np.asarray(v_dir, float)
     o = np.asarray(origin_mm, float)
     theta = np.arange(n_rays) * 2 * np.pi / n_rays
-    r = np.arange(0.0, max_radius_mm + RAY_STEP_MM / 2, RAY_STEP_MM)
+    step = min(RAY_STEP_MM, 0.25 * float(np.min(volume.spacing_mm)))
+    r = np.arange(0.0, max_radius_mm + step / 2, step)
     dirs = np.cos(theta)[:, None] * u + np.sin(theta)[:, None] * v  # (n, 3)
     pts = o + r[None, :, None] * dirs[:, None, :]
     idx = volume.world_to_index(pts).reshape(-1, 3).T
@@ -188,7 +189,7 @@ def find_outline(
         ok = has & (last < r.size - 1)
         i = last[ok]
         a, b = vals[rows[ok], i], vals[rows[ok], i + 1]
-        radii[ok] = r[i] + RAY_STEP_MM * (a - level) / np.where(a - b > 0, a - b, 1.0)
+        radii[ok] = r[i] + step * (a - level) / np.where(a - b > 0, a - b, 1.0)
     elif mode == "first":
         start = int(np.searchsorted(r, min_radius_mm))
         sub = above[:, start:]
@@ -197,7 +198,7 @@ def find_outline(
         ok = has & (first > 0)
         i = first[ok]
         a, b = vals[rows[ok], i - 1], vals[rows[ok], i]
-        radii[ok] = r[i - 1] + RAY_STEP_MM * (level - a) / np.where(b - a > 0, b - a, 1.0)
+        radii[ok] = r[i - 1] + step * (level - a) / np.where(b - a > 0, b - a, 1.0)
     else:  # pragma: no cover - a programming error
         raise ValueError(f"unknown outline mode {mode!r}")
     if np.isfinite(radii).all():

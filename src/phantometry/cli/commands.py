@@ -179,6 +179,9 @@ def _print_resolution_and_verdicts(analysis: Analysis, banded: bool) -> None:
 def synth_cmd(
     out: Path = typer.Argument(..., help="Output folder."),
     phantom: str = typer.Option("iec-body", "--phantom", help="Template name: iec-body, small-animal, or a user template."),
+    template_file: Optional[Path] = typer.Option(
+        None, "--template-file", help="Build the phantom from this template file instead (a variant: e.g. the sphere ring turned or mirrored)."
+    ),
     fmt: str = typer.Option("dicom", "--format", help="dicom or nifti."),
     voxel: Optional[float] = typer.Option(None, "--voxel", help="Isotropic voxel size, mm (default 2; 0.5 for small-animal)."),
     matrix: Optional[str] = typer.Option(None, "--matrix", help="Grid size NX,NY,NZ (default: fits the phantom)."),
@@ -193,8 +196,9 @@ def synth_cmd(
     seed: int = typer.Option(0, "--seed", help="Noise seed."),
 ) -> None:
     """Synthesise a phantom scan with known truth (image, fill.yaml, truth.json)."""
-    from ..synth import SynthSpec, default_scan_settings, synthesize, write_synthetic
+    from ..synth import SynthSpec, default_scan_settings, synth_template_source, synthesize, write_synthetic
 
+    phantom = synth_template_source(phantom, template_file, phantom_given=phantom != "iec-body")
     defaults = default_scan_settings(phantom)
     voxel = defaults["voxel_mm"] if voxel is None else voxel
     fwhm = defaults["psf_fwhm_mm"] if fwhm is None else fwhm

@@ -566,7 +566,7 @@ def read_background_planes(volume: Volume, placement: Placement, frame: BodyFram
     ax = template.insert(opts.axis_insert)
     half_width = template.body.half_extent_xy_mm + 10
     level = 0.5 * placement.background_estimate_bq_ml
-    max_r = 2.0 * template.body.half_extent_xy_mm + 20.0
+    max_r = template.body.half_extent_xy_mm + 30.0
     planes: dict[float, PlaneImage] = {}
     geometries: list[PlaneGeometry] = []
     for off in bg_set.slice_offsets_mm:
@@ -607,6 +607,7 @@ def _background_rows(template: Template, diameter: float, reference: bool, lung:
     if reference:
         rows += [(s.name, "percent_contrast") for s in template.spheres if s.diameter_mm not in template.background.diameters_mm]
         rows += [("background", "mean_bq_ml"), ("background", "activity_recovery")]
+        rows += [(s.name, "rc_mean") for s in template.spheres]  # the A50 isocontour level uses the background
         if lung:
             rows.append((lung, "lung_residual_pct"))
     return rows
