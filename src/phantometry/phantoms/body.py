@@ -212,8 +212,8 @@ class BodyAnalysis(Analysis):
         for off, lplane, luv in self.lung_discs:
             if off == off0:
                 shapes.append(Shape("circle", "insert", plane.world_to_uv(lplane.uv_to_world(luv)), opts.lung_roi_diameter_mm, label="insert", label_below=True))
-        how = "slice" if self.sampler is not None and self.sampler.nearest_slice else "plane (interpolated)"
-        views = [View(plane, f"Sphere {how}: spheres (solid), 37 mm background ROIs (dashed), insert ROI (dotted), body outline found (grey)", shapes, vmax)]
+        how = "slice" if self.sampler is not None and self.sampler.nearest_slice else "plane"
+        views = [View(plane, f"Sphere {how}: 37 mm background ROIs (dashed), insert (dotted), body outline found (grey)", shapes, vmax)]
         # longitudinal view through the phantom axis and the template x direction
         u = pl.rotation[:, 0]
         half = max(tpl.body_length_mm, 2 * tpl.body.half_extent_xy_mm) / 2 + 10
