@@ -10,6 +10,7 @@ from scipy import ndimage
 
 from phantometry.background_rois import Obstacle, PlaneGeometry, check_size, place
 from phantometry.outline import Outline, find_outline, match_profiles, polygon_area_centroid, radius_profile
+from phantometry.rois import sample_plane
 from phantometry.volume import Volume
 
 
@@ -50,7 +51,8 @@ def test_outline_of_a_blurred_cylinder_is_its_edge():
     aff = np.diag([sp, sp, sp, 1.0])
     aff[:3, 3] = [idx[0], idx[0], -11.0]
     vol = Volume(data.astype(np.float32), aff)
-    ol = find_outline(vol, np.array([0.0, 0.0, 0.0]), np.array([1.0, 0, 0]), np.array([0, 1.0, 0]), 500.0, 90.0)
+    plane = sample_plane(vol, np.array([0.0, 0.0, 0.0]), np.array([1.0, 0, 0]), np.array([0, 1.0, 0]), 90.0)
+    ol = find_outline(plane, np.array([0.0, 0.0, 0.0]), 500.0, 90.0)
     assert ol.valid
     pts = ol.points_world()
     r = np.hypot(pts[:, 0] - 3.3, pts[:, 1] + 1.7)
@@ -137,3 +139,25 @@ def test_a_plane_without_outline_cannot_confirm_but_does_not_drop_everything():
     assert bp.status == ["kept", "kept"]
     check = check_size(bp.xy, planes, [], 37.0)
     assert check.min_inside_fraction == 1.0  # on the plane that has an outline
+
+
+def test_combined_outlines_average_noise_but_keep_a_real_departure():
+    from phantometry.outline import combine_outlines
+
+    rng = np.random.default_rng(7)
+    n = 720
+    theta = np.arange(n) * 2 * np.pi / n
+    planes = []
+    for p in range(5):
+        radii = 100.0 + rng.normal(0.0, 0.8, n)
+        if p == 2:  # this plane is cut (e.g. by the field of view) over 40 degrees: 12 mm inside
+            radii[100:180] -= 12.0
+        planes.append(Outline(np.array([0.0, 0.0, 10.0 * p]), np.array([1.0, 0, 0]), np.array([0, 1.0, 0]), theta, radii))
+    combined, se = combine_outlines(planes)
+    # the median of 5 planes of SD 0.8 mm, then smoothed: well under the single-plane SD
+    assert np.std(combined[0].radii_mm - 100.0) < 0.3
+    assert 0.2 < se < 0.8  # 1.25 x 0.8 / sqrt(5) = 0.45 mm
+    # the cut plane keeps its own edge where it is cut, and only there
+    assert np.all(combined[2].radii_mm[105:175] < 90.0)
+    assert np.all(np.abs(combined[2].radii_mm[300:600] - 100.0) < 1.0)
+    assert np.all(combined[0].radii_mm[105:175] > 98.0)

@@ -11,8 +11,9 @@ edge and from the spheres, with concentric ROIs of every sphere size)
    plane, from the body edge *found on that plane* (:func:`phantometry.outline.find_outline`;
    a plane without an outline cannot be checked, and its set is reported as not confirmed),
    and in the plane from every sphere's outer surface and every insert parallel to the axis
-   (at the positions found). A template position is kept when it keeps the clearance less
-   :data:`EDGE_TOLERANCE_MM` (allowed for locating the edge in the image).
+   (at the positions found). A template position is kept when it keeps the clearance less an
+   allowance for locating the edge in the image (:data:`EDGE_TOLERANCE_MM`, or more on a
+   noisy image: the caller's ``tolerance_mm``).
 3. An ROI that does not is moved to the nearest position in the body (searched on a 1 mm
    grid, refined to 0.1 mm) that keeps the full clearance and stays at least the template's
    closest ROI spacing (at most the ROI diameter) from the ROIs already placed, in template
@@ -78,6 +79,8 @@ class BackgroundPlacement:
     clearance_mm: np.ndarray
     diameter_mm: float
     clearance_required_mm: float
+    #: allowance for locating the edge when a template position was checked (mm)
+    tolerance_mm: float = EDGE_TOLERANCE_MM
     notes: list[str] = field(default_factory=list)
 
     @property
@@ -197,7 +200,7 @@ def place(
             moved[i] = float(np.hypot(*(best - txy[i])))
     index = np.array(sorted(placed), dtype=int)
     xy = np.array([placed[i] for i in index]).reshape(-1, 2)
-    return BackgroundPlacement(txy, xy, index, status, moved, clear, float(diameter_mm), float(clearance_mm))
+    return BackgroundPlacement(txy, xy, index, status, moved, clear, float(diameter_mm), float(clearance_mm), float(tolerance_mm))
 
 
 def _refine_towards(nominal: np.ndarray, best: np.ndarray, step: float, planes: list[PlaneGeometry], obstacles: list[Obstacle],

@@ -828,6 +828,7 @@ def find_body_frame(volume: Volume, placement: Placement, template: Template, ax
         When no complete outline is found on any plane.
     """
     from .outline import find_outline, match_profiles, polygon_area_centroid, radius_profile
+    from .rois import sample_plane
 
     R, t = placement.rotation, placement.translation_mm
     ax_ins = template.insert(axis_insert)
@@ -841,7 +842,7 @@ def find_body_frame(volume: Volume, placement: Placement, template: Template, ax
     profiles, centroids = [], []
     for off in offsets:
         o = R @ (c0 + [0.0, 0.0, off]) + t
-        ol = find_outline(volume, o, u, v, level, max_r)
+        ol = find_outline(sample_plane(volume, o, u, v, max_r), o, level, max_r)
         if not ol.valid:
             continue
         outlines[float(off)] = ol

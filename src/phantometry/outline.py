@@ -2,9 +2,10 @@
 
 Method (phantometry's own)
 --------------------------
-From a point inside the region, rays are cast in the plane every ``360 / n_rays`` degrees and
-the image is sampled along them every 1 mm, or a quarter voxel when finer (trilinear;
-on an original slice this is bilinear within the slice). The edge on a ray is where the
+From a point inside the region, rays are cast in a plane read from the image (an original
+slice or an interpolated plane) every ``360 / n_rays`` degrees; the plane, smoothed by a
+Gaussian of one pixel (at least 2 mm) against noise, is sampled along them every 1 mm, or a
+quarter pixel when finer (bilinear). The edge on a ray is where the
 profile crosses ``level`` (half the background: the 50 % point of a blurred step lies on the
 edge for a symmetric point response), by linear interpolation between samples:
 
@@ -29,7 +30,7 @@ import numpy as np
 from scipy import ndimage
 from scipy.spatial import cKDTree
 
-from .volume import Volume
+from .rois import PlaneImage
 
 #: Largest sampling step along a ray, mm (a quarter of the smallest voxel spacing when finer).
 RAY_STEP_MM = 1.0
@@ -130,6 +131,60 @@ class Outline:
         return polygon_area_centroid(self.points_local())
 
 
+#: A plane's own edge is kept where it departs from the planes' median by more than this many
+#: robust SDs of the departures (and at least :data:`OWN_EDGE_MIN_MM`): a real difference (the
+#: field of view cutting one plane, a body end), not noise.
+OWN_EDGE_SDS = 4.0
+OWN_EDGE_MIN_MM = 3.0
+#: ... and along at least this many degrees of rays.
+OWN_EDGE_MIN_RUN_DEG = 10.0
+#: SD (degrees) of the Gaussian smoothing of the combined radii along the outline (at the
+#: body's radius of 100-150 mm, 3.5-5 mm of edge: it leaves the D shape's smooth curve alone).
+SMOOTH_DEG = 2.0
+
+
+def combine_outlines(outlines: list[Outline | None]) -> tuple[list[Outline | None], float | None]:
+    """Outlines of one prism-shaped body on several parallel planes, with the noise averaged out.
+
+    The planes must share the in-plane directions and ray angles, and each outline's origin must
+    lie on the same line parallel to the body's axis (the phantom axis), so that the radius
+    along a ray is the same on every plane for a prism. Each ray's radius becomes the median
+    over the planes, smoothed along the outline by a Gaussian of :data:`SMOOTH_DEG`, except
+    where a plane's own radius departs from that median by more than
+    ``max(OWN_EDGE_MIN_MM, OWN_EDGE_SDS x robust SD)`` of all departures along at least
+    :data:`OWN_EDGE_MIN_RUN_DEG` of rays: there the plane's own edge is kept.
+
+    Returns
+    -------
+    (outlines, standard error): the outlines, and the standard error (mm) of the combined edge
+    of one ray, ``1.25 s / sqrt(n)`` from the robust SD ``s`` of the planes about their median
+    (the median's efficiency; an upper bound, as the smoothing is not counted). With fewer
+    than three outlines they are returned unchanged and the standard error is None.
+    """
+    found = [o for o in outlines if o is not None]
+    if len(found) < 3:
+        return list(outlines), None
+    radii = np.array([o.radii_mm for o in found])
+    med = np.median(radii, axis=0)
+    dev = radii - med
+    sd = 1.4826 * float(np.median(np.abs(dev)))
+    n = len(med)
+    smooth = ndimage.gaussian_filter1d(med, SMOOTH_DEG / 360.0 * n, mode="wrap")
+    limit = max(OWN_EDGE_MIN_MM, OWN_EDGE_SDS * sd)
+    run = max(3, int(round(OWN_EDGE_MIN_RUN_DEG / 360.0 * n)))
+    out: list[Outline | None] = []
+    for o in outlines:
+        if o is None:
+            out.append(None)
+            continue
+        own = np.abs(o.radii_mm - med) > limit
+        if own.any():  # only departures along a run of rays (a circular opening): not a noise blob
+            padded = np.r_[own[-run:], own, own[:run]]
+            own = ndimage.binary_opening(padded, structure=np.ones(run, bool))[run:-run]
+        out.append(Outline(o.origin_mm, o.u_dir, o.v_dir, o.angles_rad, np.where(own, o.radii_mm, smooth)))
+    return out, 1.25 * sd / math.sqrt(len(found))
+
+
 def polygon_area_centroid(xy: np.ndarray) -> tuple[float, np.ndarray]:
     """Area and area centroid of a simple closed polygon (n, 2) (shoelace formula; mathematics)."""
     x, y = xy[:, 0], xy[:, 1]
@@ -144,42 +199,46 @@ def polygon_area_centroid(xy: np.ndarray) -> tuple[float, np.ndarray]:
 
 
 def find_outline(
-    volume: Volume,
+    plane: PlaneImage,
     origin_mm: np.ndarray,
-    u_dir: np.ndarray,
-    v_dir: np.ndarray,
     level: float,
     max_radius_mm: float,
     *,
     n_rays: int = 720,
     mode: str = "outward",
     min_radius_mm: float = 0.0,
+    smooth_mm: float | None = None,
 ) -> Outline:
-    """The outline about ``origin_mm`` in the plane spanned by ``u_dir``, ``v_dir`` (module notes).
+    """The outline about ``origin_mm`` (a point of the plane) in a plane image (module notes).
 
     Parameters
     ----------
+    plane : the plane read from the image (an original slice or an interpolated plane).
     level : the edge level, Bq/mL (half the background).
     max_radius_mm : how far the rays reach.
     mode : ``outward`` (outermost crossing; a body) or ``first`` (first rise above the
         level; a cold insert around the origin).
     min_radius_mm : ``first`` mode: crossings nearer than this are ignored.
+    smooth_mm : SD (mm) of a Gaussian the plane is smoothed with first (default
+        :func:`edge_smoothing_mm`): it does not move a straight edge's half-level point and
+        keeps noise from breaking the level into islands.
 
     Returns
     -------
     Outline with NaN radii on rays without a crossing.
     """
-    u = np.asarray(u_dir, float)
-    v = np.asarray(v_dir, float)
-    o = np.asarray(origin_mm, float)
+    p = float(plane.pixel_mm)
+    vals2d = np.nan_to_num(plane.values, nan=0.0)
+    sm = edge_smoothing_mm(p) if smooth_mm is None else float(smooth_mm)
+    if sm > 0:
+        vals2d = ndimage.gaussian_filter(vals2d, sm / p, mode="constant", cval=0.0)
+    o_uv = plane.world_to_uv(np.asarray(origin_mm, float))
     theta = np.arange(n_rays) * 2 * np.pi / n_rays
-    step = min(RAY_STEP_MM, 0.25 * float(np.min(volume.spacing_mm)))
+    step = min(RAY_STEP_MM, 0.25 * p)
     r = np.arange(0.0, max_radius_mm + step / 2, step)
-    dirs = np.cos(theta)[:, None] * u + np.sin(theta)[:, None] * v  # (n, 3)
-    pts = o + r[None, :, None] * dirs[:, None, :]
-    idx = volume.world_to_index(pts).reshape(-1, 3).T
-    vals = ndimage.map_coordinates(volume.data, idx, order=1, mode="constant", cval=0.0, prefilter=False).reshape(pts.shape[:-1])
-    vals = np.nan_to_num(vals, nan=0.0)
+    cu = (o_uv[0] + r[None, :] * np.cos(theta)[:, None]) / p
+    cv = (o_uv[1] + r[None, :] * np.sin(theta)[:, None]) / p
+    vals = ndimage.map_coordinates(vals2d, [cv.ravel(), cu.ravel()], order=1, mode="constant", cval=0.0, prefilter=False).reshape(cu.shape)
     above = vals >= level
     radii = np.full(n_rays, np.nan)
     rows = np.arange(n_rays)
@@ -203,7 +262,14 @@ def find_outline(
         raise ValueError(f"unknown outline mode {mode!r}")
     if np.isfinite(radii).all():
         radii = ndimage.median_filter(radii, size=5, mode="wrap")
-    return Outline(o, u, v, theta, radii)
+    return Outline(plane.uv_to_world(o_uv), plane.u_dir.copy(), plane.v_dir.copy(), theta, radii)
+
+
+def edge_smoothing_mm(pixel_mm: float) -> float:
+    """Default smoothing (Gaussian SD, mm) before an edge is found: one pixel, at least 2 mm
+    (a symmetric kernel leaves a straight edge's half-level point in place; on a curved edge of
+    radius R it moves it by about (s^2 + s_psf^2) / (2 R), a few tenths of a mm for the body)."""
+    return max(2.0, float(pixel_mm))
 
 
 def radius_profile(xy: np.ndarray, centre: np.ndarray, n_bins: int = 360) -> np.ndarray:

@@ -53,7 +53,7 @@ from ..metrics.nu2 import (
 from ..metrics.recovery import BOOTSTRAP_DRAWS, SearchSimulation, recovery_coefficients
 from ..metrics.resolution import ResolutionFit, SphereObservation, blurred_disc_profile, fit_sphere_profiles
 from ..noise import NoiseModel, discs_variance, estimate_noise, u_ratio
-from ..outline import Outline, find_outline
+from ..outline import Outline, combine_outlines, find_outline
 from ..results import Measurement
 from ..rois import PlaneImage, cylinder_weights, disc_means, sample_plane, sphere_weights
 from ..sampling import PlaneSampler
@@ -260,7 +260,7 @@ class BodyAnalysis(Analysis):
             out["background_rois"] = {
                 "diameter_placed_mm": bp.diameter_mm,
                 "min_clearance_mm": bp.clearance_required_mm,
-                "edge_tolerance_mm": EDGE_TOLERANCE_MM,
+                "edge_tolerance_mm": round(bp.tolerance_mm, 3),
                 "k_per_size": len(bp.xy) * len(self.plane_geometries),
                 "k_planned": self.template.background.n_rois,
                 "positions": [
@@ -431,7 +431,8 @@ class BodyKind(PhantomKind):
         d_max = max(bg_set.diameters_mm)
         outline_xy = template.body.outline_xy()
         bounds = (*(outline_xy[:, 0].min() - 20, outline_xy[:, 0].max() + 20), *(outline_xy[:, 1].min() - 20, outline_xy[:, 1].max() + 20))
-        bplace = place_background(np.asarray(bg_set.centres_xy_mm, float), geo.geometries, obstacles, d_max, bg_set.min_clearance_mm, bounds)
+        bplace = place_background(np.asarray(bg_set.centres_xy_mm, float), geo.geometries, obstacles, d_max, bg_set.min_clearance_mm, bounds,
+                                  tolerance_mm=geo.edge_tolerance_mm)
         if len(bplace.xy) == 0:
             raise PhantomNotFound(
                 f"{where}: no background ROI position keeps {bg_set.min_clearance_mm:g} mm from the body edge found in the image, "
@@ -532,6 +533,20 @@ class BackgroundPlanes:
     planes: dict[float, PlaneImage]
     geometries: list[PlaneGeometry]
     half_width_mm: float
+    #: allowance for locating the edge when a template position is checked (mm)
+    edge_tolerance_mm: float = EDGE_TOLERANCE_MM
+
+
+def edge_tolerance_mm(edge_se_mm: float | None) -> float:
+    """Allowance for locating the body edge: :data:`~phantometry.background_rois.EDGE_TOLERANCE_MM`,
+    or twice the edge's standard error on a noisier image, at most :data:`MAX_EDGE_TOLERANCE_MM`."""
+    if edge_se_mm is None or not math.isfinite(edge_se_mm):
+        return EDGE_TOLERANCE_MM
+    return float(min(MAX_EDGE_TOLERANCE_MM, max(EDGE_TOLERANCE_MM, 2.0 * edge_se_mm)))
+
+
+#: Largest allowance (mm) for locating the body edge.
+MAX_EDGE_TOLERANCE_MM = 2.0
 
 
 def ring_frame(placement: Placement, template: Template) -> BodyFrame:
@@ -549,7 +564,7 @@ MAX_MISSING_RAYS = 0.10
 def plane_outline(volume: Volume, origin_mm: np.ndarray, plane: PlaneImage, level: float, max_radius_mm: float, **kw: Any) -> Outline | None:
     """The outline about ``origin_mm`` in ``plane`` (:func:`phantometry.outline.find_outline`);
     a few rays without an edge are interpolated from their neighbours; None when too many lack one."""
-    ol = find_outline(volume, origin_mm, plane.u_dir, plane.v_dir, level, max_radius_mm, **kw)
+    ol = find_outline(plane, origin_mm, level, max_radius_mm, **kw)
     bad = ~np.isfinite(ol.radii_mm)
     if bad.mean() > MAX_MISSING_RAYS:
         return None
@@ -560,7 +575,8 @@ def plane_outline(volume: Volume, origin_mm: np.ndarray, plane: PlaneImage, leve
 
 def read_background_planes(volume: Volume, placement: Placement, frame: BodyFrame, template: Template, sampler: PlaneSampler) -> BackgroundPlanes:
     """Read every background plane (nearest slice or interpolated, :class:`PlaneSampler`) and
-    find the body outline on it (rays from the phantom axis, 50 % of the background level)."""
+    find the body outline on it (rays from the phantom axis, 50 % of the background level;
+    combined over the planes, :func:`phantometry.outline.combine_outlines`)."""
     opts = KIND.options(template)
     bg_set = template.background
     ax = template.insert(opts.axis_insert)
@@ -581,7 +597,12 @@ def read_background_planes(volume: Volume, placement: Placement, frame: BodyFram
             return sampler.onto(plane, frame.to_world(np.c_[xy, np.full(len(xy), off)]))
 
         geometries.append(PlaneGeometry(off, to_plane, outline))
-    return BackgroundPlanes(planes, geometries, half_width)
+    # one body, one edge: the planes' outlines share their noise-free part (rays from the axis,
+    # same directions), so their median is taken, except where a plane really differs
+    combined, edge_se = combine_outlines([pg.outline for pg in geometries])
+    for pg, ol in zip(geometries, combined):
+        pg.outline = ol
+    return BackgroundPlanes(planes, geometries, half_width, edge_tolerance_mm(edge_se))
 
 
 def background_obstacles(placement: Placement, frame: BodyFrame, template: Template) -> list[Obstacle]:
@@ -621,7 +642,7 @@ def placement_checks(analysis: "BodyAnalysis", c_b_ref: float) -> list[RoiSetChe
     bg = tpl.background
     bp = analysis.background_placement
     geos = analysis.plane_geometries
-    need = bg.min_clearance_mm - EDGE_TOLERANCE_MM
+    need = bg.min_clearance_mm - bp.tolerance_mm
     checks: list[RoiSetCheck] = []
     k_used = len(bp.xy) * len(geos)
     missing = [f"{pg.offset_mm:+g} mm" for pg in geos if pg.outline is None]
