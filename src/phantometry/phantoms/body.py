@@ -11,6 +11,17 @@ Metrics
 * Calibration check: the background level against the fill record.
 * Effective resolution: the blurred-sphere fit (:mod:`phantometry.metrics.resolution`).
 
+Placement on the image (README "How the numbers are made")
+----------------------------------------------------------
+The spheres are placed by the ring fit (:func:`phantometry.locate.locate`); the body's own
+frame comes from its outline (:func:`phantometry.locate.find_body_frame`), independently of
+the ring, and the template's background positions are carried into the image by it, then
+kept, moved or dropped to keep their clearances from the body edge found on each plane, the
+spheres and the insert (:mod:`phantometry.background_rois`). Every ROI set is checked on the
+image (:func:`placement_checks`). The planes are the original slices nearest the sphere plane
+and +-10, +-20 mm, or interpolated for a tilted phantom (:mod:`phantometry.sampling`); the
+uncertainties use the same discs.
+
 Uncertainties (standard, image noise only; README "Uncertainties")
 ------------------------------------------------------------------
 The noise model is estimated from the image (:func:`phantometry.noise.estimate_noise`). Disc
