@@ -22,6 +22,8 @@ GOLDEN_PATH = Path(__file__).parent / "data" / "golden_numbers.json"
 SCANS: dict[str, tuple[str, dict, list[str]]] = {
     "body-noisy": ("iec-body", dict(voxel_mm=(4.0,) * 3, psf_fwhm_mm=6.5, sphere_ratio=10.0, background_kbq_ml=2.0, noise_cv=0.12,
                                     shift_mm=(5.0, -7.0, 3.0), rotation_deg=(1.5, -1.0, 33.0), seed=21), ["eanm-fdg-2015"]),
+    "body-noisy-slices": ("iec-body", dict(voxel_mm=(4.0,) * 3, psf_fwhm_mm=6.5, sphere_ratio=4.0, noise_cv=0.15,
+                                           shift_mm=(2.0, 3.0, -1.3), rotation_deg=(0.0, 0.0, -25.0), seed=8), []),
     "body-noise-free": ("iec-body", dict(voxel_mm=(4.0,) * 3, psf_fwhm_mm=6.0, sphere_ratio=4.0, noise_cv=0.0,
                                          shift_mm=(-3.0, 4.0, -2.0), rotation_deg=(0.0, 2.0, -70.0), flip=True, seed=1), []),
     "small-animal-noisy": ("small-animal", dict(phantom="small-animal", voxel_mm=(0.5,) * 3, psf_fwhm_mm=1.8, background_kbq_ml=150.0,

@@ -36,6 +36,9 @@ LAYERS: dict[str, int] = {
     "phantometry.outputs": 1,
     # 2: geometry, ROI engine, metrics, noise, bands, synthesizer
     "phantometry.locate": 2,
+    "phantometry.outline": 2,
+    "phantometry.sampling": 2,
+    "phantometry.background_rois": 2,
     "phantometry.rois": 2,
     "phantometry.metrics": 2,
     "phantometry.metrics.": 2,

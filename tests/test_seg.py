@@ -82,10 +82,11 @@ def test_voxel_counts_match_roi_masks(seg_run):
         hot |= sphere_weights(vol, pl.insert_centre(s.name), s.diameter_mm).to_full(vol.shape) >= 0.5
     bg = np.zeros(vol.shape, bool)
     d = max(tpl.background.diameters_mm)
-    for off in tpl.background.slice_offsets_mm:
-        for xy in tpl.background.centres_xy_mm:
-            centre = pl.to_world([xy[0], xy[1], off])
-            bg |= cylinder_weights(vol, centre, pl.axis_world, d, float(vol.spacing_mm[0])).to_full(vol.shape) >= 0.5
+    # the background ROIs where the analysis placed them (on the body found in the image), one
+    # slice thick on the plane each was read on
+    for plane, uvs in a.background_discs.values():
+        for uv in uvs:
+            bg |= cylinder_weights(vol, plane.uv_to_world(uv), plane.normal, d, float(vol.spacing_mm[0])).to_full(vol.shape) >= 0.5
     expected = {1: hot, 2: bg}
     _, frames = _frames(seg_run["path"])
     k_of = {uid: k for k, uid in enumerate(vol.sop_instance_uids)}

@@ -74,6 +74,8 @@ class Placement:
     fits: dict[str, InsertFit] = field(default_factory=dict)
     ring_score: float | None = None
     warnings: list[str] = field(default_factory=list)
+    #: the body's own frame found from its outline (body phantoms; :func:`find_body_frame`)
+    body_frame: Any = None
 
     def to_world(self, points_template_mm: np.ndarray) -> np.ndarray:
         p = np.asarray(points_template_mm, float)
@@ -109,6 +111,7 @@ class Placement:
             "ring_score": None if self.ring_score is None else round(self.ring_score, 4),
             "inserts": {k: v.as_dict() for k, v in self.fits.items()},
             "warnings": list(self.warnings),
+            **(self.body_frame.as_dict() if self.body_frame is not None else {}),
         }
 
 
@@ -647,7 +650,289 @@ def locate(
                 None,
                 "override" if c is not None else "template",
             )
-    return Placement(template, rot, t, bg, body.noise_sd, fits, ring_score, warnings)
+    placement = Placement(template, rot, t, bg, body.noise_sd, fits, ring_score, warnings)
+    try:
+        placement.body_frame = find_body_frame(volume, placement, template, axis_insert, where)
+    except PhantomNotFound as exc:
+        placement.warnings.append(f"WARNING: {exc}; the background ROIs follow the ring fit and the template")
+    else:
+        placement.warnings.extend(placement.body_frame.warnings)
+    return placement
+
+
+# =============================================================================== body outline
+#: Ring-to-body difference (degrees) beyond which the arrangement differs from the template
+#: (the outline angle is found to a few tenths of a degree; "a few degrees" of slack).
+RING_TO_BODY_TOLERANCE_DEG = 3.0
+#: Difference (mm) between the two body ends' distances from the sphere plane needed to tell
+#: the ends apart (the template's 70 and 110 mm differ by 40 mm).
+END_ASYMMETRY_MIN_MM = 20.0
+#: RMS difference (mm) between the found and the template's body outline beyond which a
+#: warning says the body is not the template's shape.
+OUTLINE_RMS_WARN_MM = 3.0
+
+
+def _angle_from_anterior_deg(xy: np.ndarray) -> np.ndarray:
+    """Direction of in-plane vectors as degrees from +y (anterior), counterclockwise seen from +z, in (-180, 180]."""
+    xy = np.asarray(xy, float)
+    return np.degrees(np.arctan2(-xy[..., 0], xy[..., 1]))
+
+
+def _wrap_deg(a: float) -> float:
+    return float((a + 180.0) % 360.0 - 180.0)
+
+
+def ring_arrangement(sphere_xy: list[tuple[float, np.ndarray]], centre_xy: np.ndarray) -> tuple[float, str]:
+    """Where a sphere ring sits in a body frame: the direction of the largest sphere (degrees
+    from +y, counterclockwise seen from +z) and the ring order from the largest sphere down
+    (``counterclockwise`` or ``clockwise`` seen from +z).
+
+    ``sphere_xy``: (diameter, (x, y)) of each sphere, in the body frame (mm).
+    """
+    ordered = sorted(sphere_xy, key=lambda item: -item[0])
+    ang = _angle_from_anterior_deg(np.array([np.asarray(xy, float) - centre_xy for _, xy in ordered]))
+    steps = [_wrap_deg(b - a) for a, b in zip(ang[:-1], ang[1:])]
+    return float(ang[0]), ("counterclockwise" if sum(steps) > 0 else "clockwise")
+
+
+def template_ring_arrangement(template: Template, axis_insert: str) -> tuple[float, str] | None:
+    """:func:`ring_arrangement` of a template as written (None for a round body: no flat side)."""
+    if template.body.shape != "d_shape" or len(template.spheres) < 2:
+        return None
+    ax = template.insert(axis_insert)
+    return ring_arrangement([(s.diameter_mm, np.asarray(s.centre_mm[:2], float)) for s in template.spheres], np.asarray(ax.centre_mm[:2], float))
+
+
+@dataclass
+class BodyFrame:
+    """The body phantom's own frame, found from its outline: ``world = R @ p + t`` with ``p`` in
+    the template frame as the *body* sees it (+y away from the flat side, z = 0 the sphere
+    plane, +z towards the body end nearer the sphere plane when the ends tell).
+
+    Attributes
+    ----------
+    rotation, translation_mm : the rigid transform.
+    rotation_from_ring_deg : the body's rotation about the axis relative to the ring's fit
+        (None for a round body: no orientation).
+    flipped : the ends found say +z runs the other way than the ring's fit implies.
+    outline_rms_mm : RMS radial difference between the found outline and the template's.
+    ends_mm : body-frame z of the two body ends found (sphere plane at 0).
+    ring_to_body_deg, template_ring_to_body_deg : direction of the largest sphere from the
+        body's anterior direction, found and in the template (degrees, counterclockwise seen
+        from +z).
+    ring_order, template_ring_order : ``counterclockwise`` / ``clockwise`` (seen from +z).
+    end_rule : how +z was chosen (``body ends`` or ``ring fit``).
+    outlines : the outlines found (world), one per plane offset.
+    """
+
+    rotation: np.ndarray
+    translation_mm: np.ndarray
+    rotation_from_ring_deg: float | None
+    flipped: bool
+    outline_rms_mm: float | None
+    ends_mm: tuple[float, float]
+    ring_to_body_deg: float | None
+    template_ring_to_body_deg: float | None
+    ring_order: str | None
+    template_ring_order: str | None
+    end_rule: str
+    outlines: dict[float, Any] = field(default_factory=dict)
+    warnings: list[str] = field(default_factory=list)
+
+    def to_world(self, points_template_mm: np.ndarray) -> np.ndarray:
+        return np.asarray(points_template_mm, float) @ self.rotation.T + self.translation_mm
+
+    def to_body(self, points_world_mm: np.ndarray) -> np.ndarray:
+        return (np.asarray(points_world_mm, float) - self.translation_mm) @ self.rotation
+
+    @property
+    def difference_deg(self) -> float | None:
+        if self.ring_to_body_deg is None or self.template_ring_to_body_deg is None:
+            return None
+        return _wrap_deg(self.ring_to_body_deg - self.template_ring_to_body_deg)
+
+    @property
+    def as_template(self) -> bool | None:
+        """The ring sits relative to the body as the template says (None: not determined)."""
+        if self.difference_deg is None:
+            return None
+        return abs(self.difference_deg) <= RING_TO_BODY_TOLERANCE_DEG and self.ring_order == self.template_ring_order
+
+    def as_dict(self) -> dict[str, Any]:
+        r = (lambda v, n=2: None if v is None else round(float(v), n))
+        return {
+            "ring_to_body_deg": r(self.ring_to_body_deg),
+            "ring_to_body_template_deg": r(self.template_ring_to_body_deg),
+            "ring_to_body_difference_deg": r(self.difference_deg),
+            "ring_order": self.ring_order,
+            "ring_order_template": self.template_ring_order,
+            "arrangement_as_template": self.as_template,
+            "body_frame": {
+                "rotation": [[round(float(v), 6) for v in row] for row in self.rotation],
+                "translation_mm": [round(float(v), 3) for v in self.translation_mm],
+                "rotation_from_ring_fit_deg": r(self.rotation_from_ring_deg, 3),
+                "outline_rms_mm": r(self.outline_rms_mm),
+                "ends_mm": [round(float(v), 2) for v in self.ends_mm],
+                "end_rule": self.end_rule,
+            },
+        }
+
+
+def _rot_z(phi: float) -> np.ndarray:
+    c, s = math.cos(phi), math.sin(phi)
+    return np.array([[c, -s, 0.0], [s, c, 0.0], [0.0, 0.0, 1.0]])
+
+
+def _axial_ends(volume: Volume, centre: np.ndarray, d: np.ndarray, r_in: float, r_out: float, length: float, level: float) -> tuple[float, float] | None:
+    """Outermost positions (mm along ``d`` from ``centre``) where the median over an annulus
+    (radii ``r_in``..``r_out`` about the axis) crosses ``level``; None when not found."""
+    u, v = _orthonormal_basis(d)
+    step = 0.5
+    s = np.arange(-length, length + step / 2, step)
+    rr = np.linspace(r_in, r_out, 4)
+    th = np.deg2rad(np.arange(0, 360, 15.0))
+    R, T = np.meshgrid(rr, th, indexing="ij")
+    ring = (R * np.cos(T))[..., None] * u + (R * np.sin(T))[..., None] * v
+    vals = np.nan_to_num(sample_world(volume, centre + s[:, None, None, None] * d + ring[None]), nan=0.0)
+    prof = np.median(vals.reshape(len(s), -1), axis=1)
+    above = np.flatnonzero(prof >= level)
+    if above.size == 0 or above[0] == 0 or above[-1] == len(s) - 1:
+        return None
+    i0, i1 = int(above[0]), int(above[-1])
+    lo = s[i0 - 1] + step * (level - prof[i0 - 1]) / max(prof[i0] - prof[i0 - 1], 1e-12)
+    hi = s[i1] + step * (prof[i1] - level) / max(prof[i1] - prof[i1 + 1], 1e-12)
+    return float(lo), float(hi)
+
+
+def find_body_frame(volume: Volume, placement: Placement, template: Template, axis_insert: str, where: str) -> BodyFrame:
+    """The body's own frame from its outline, independently of the sphere ring.
+
+    Method (phantometry's own; README "How the numbers are made"):
+
+    1. On the planes of the background ROIs (perpendicular to the ring's axis), the body
+       outline is found by rays from the axis (:func:`phantometry.outline.find_outline`,
+       50 % of the background level).
+    2. The outlines' radius profile about their area centroid is matched against the
+       template's outline by circular cross-correlation: the rotation of the body about the
+       axis relative to the ring's fit; the centroids give the body's position.
+    3. Along the axis, the two body ends (50 % crossings of the median over an annulus) tell
+       which end is nearer the sphere plane; when the template's ends differ enough
+       (:data:`END_ASYMMETRY_MIN_MM`), +z is taken towards the nearer end, so a ring mounted
+       the other way round (mirrored) is recognised.
+    4. The largest sphere's direction from the body's anterior direction, and the ring order,
+       are compared with the template's.
+
+    Raises
+    ------
+    PhantomNotFound
+        When no complete outline is found on any plane.
+    """
+    from .outline import find_outline, match_profiles, polygon_area_centroid, radius_profile
+    from .rois import sample_plane
+
+    R, t = placement.rotation, placement.translation_mm
+    ax_ins = template.insert(axis_insert)
+    c0 = np.array([ax_ins.centre_mm[0], ax_ins.centre_mm[1], 0.0])
+    level = 0.5 * placement.background_estimate_bq_ml
+    body_t = template.body
+    max_r = body_t.half_extent_xy_mm + 30.0
+    offsets = list(template.background.slice_offsets_mm) if template.background is not None else [0.0]
+    u, v = R[:, 0], R[:, 1]
+    outlines: dict[float, Any] = {}
+    profiles, centroids = [], []
+    for off in offsets:
+        o = R @ (c0 + [0.0, 0.0, off]) + t
+        ol = find_outline(sample_plane(volume, o, u, v, max_r), o, level, max_r)
+        if not ol.valid:
+            continue
+        outlines[float(off)] = ol
+        xy = ol.points_local() + c0[:2]  # ring-template xy
+        _, cen = polygon_area_centroid(xy)
+        centroids.append(cen)
+        profiles.append(xy)
+    if not outlines:
+        raise PhantomNotFound(f"{where}: the body outline was not found around the phantom axis; is the whole phantom in the field of view?")
+    c_img = np.mean(centroids, axis=0)
+    found = np.median([radius_profile(xy, c_img) for xy in profiles], axis=0)
+    tpl_xy = body_t.outline_xy()
+    _, c_tpl = polygon_area_centroid(tpl_xy)
+    model = radius_profile(tpl_xy, c_tpl)
+    warnings: list[str] = []
+    if body_t.shape == "d_shape":
+        phi, rms = match_profiles(found, model)
+        phi = (phi + math.pi) % (2 * math.pi) - math.pi
+        phi_deg: float | None = math.degrees(phi)
+    else:
+        phi, rms, phi_deg = 0.0, float(np.sqrt(np.mean((found - model) ** 2))), None
+    Rz = _rot_z(phi)
+    shift = c_img - Rz[:2, :2] @ c_tpl
+    R_b = R @ Rz
+    t_b = R @ np.array([shift[0], shift[1], 0.0]) + t
+    # ---- the ends along the axis (ring-fit z, sphere plane at 0)
+    z0, z1 = body_t.z_range_mm
+    r_in = 0.5 * ax_ins.outer_diameter_mm + 8.0
+    reach = float(template.distance_to_body_edge_xy(c0[:2][None])[0])
+    r_out = max(r_in + 5.0, 0.8 * reach)
+    ends = _axial_ends(volume, R @ c0 + t, R[:, 2], r_in, r_out, 1.5 * template.body_length_mm, level)
+    flipped = False
+    end_rule = "ring fit"
+    if ends is None:
+        ends = (float(z0), float(z1))
+        warnings.append("the body ends were not found along the axis (phantom cut by the field of view?); the template's are assumed")
+    else:
+        a_t, a_m = z0 + z1, ends[0] + ends[1]
+        if abs(a_t) >= END_ASYMMETRY_MIN_MM and abs(a_m) >= 0.5 * abs(a_t):
+            end_rule = "body ends"
+            flipped = a_m * a_t < 0
+    if flipped:
+        F = np.diag([-1.0, 1.0, -1.0])
+        pivot = np.array([body_t.centre_xy_mm[0], 0.0, 0.0])
+        t_b = t_b + R_b @ (pivot - F @ pivot)
+        R_b = R_b @ F
+        ends = (-ends[1], -ends[0])
+    frame = BodyFrame(R_b, t_b, phi_deg, flipped, rms, (float(ends[0]), float(ends[1])), None, None, None, None, end_rule,
+                      outlines, warnings)
+    # ---- the ring as found, in the body frame
+    arr_t = template_ring_arrangement(template, axis_insert)
+    if arr_t is not None:
+        centre_b = frame.to_body(R @ c0 + t)[:2]
+        spheres = [(s.diameter_mm, frame.to_body(placement.insert_centre(s.name))[:2]) for s in template.spheres]
+        frame.ring_to_body_deg, frame.ring_order = ring_arrangement(spheres, centre_b)
+        frame.template_ring_to_body_deg, frame.template_ring_order = arr_t
+        if not frame.as_template:
+            mirrored = frame.ring_order != frame.template_ring_order
+            warnings.append(
+                f"WARNING: the sphere ring sits differently relative to the body than template {template.name} says: the "
+                f"{max(s.diameter_mm for s in template.spheres):g} mm sphere is at {frame.ring_to_body_deg:.1f} deg from the body's "
+                f"anterior direction (template {frame.template_ring_to_body_deg:.1f} deg)"
+                + (f", and the ring runs {frame.ring_order} (template {frame.template_ring_order}; mirrored)" if mirrored else "")
+                + "; the background ROIs were placed and checked on the body as found in the image (see placement_quality)"
+            )
+    if rms > OUTLINE_RMS_WARN_MM:
+        warnings.append(
+            f"WARNING: the body outline found differs from template {template.name}'s by {rms:.1f} mm RMS; the body may not be "
+            "this template's shape (the background ROIs are checked against the outline found)"
+        )
+    return frame
+
+
+def as_found_template(template: Template, placement: Placement, frame: BodyFrame) -> Template:
+    """The template rewritten in the body frame found in the image: the inserts where the
+    placement put them, the body ends where they were found. With ``frame`` as the placement,
+    it describes the phantom as it is (e.g. for the noise estimate's background mask)."""
+    inserts = []
+    for ins in template.inserts:
+        c = frame.to_body(placement.insert_centre(ins.name))
+        axis = frame.rotation.T @ placement.direction_to_world(ins.axis_unit)
+        inserts.append(ins.model_copy(update={"centre_mm": tuple(float(x) for x in c), "axis": tuple(float(x) for x in axis)}))
+    body = template.body.model_copy(update={"z_range_mm": tuple(float(x) for x in frame.ends_mm)})
+    return template.model_copy(update={"inserts": inserts, "body": body})
+
+
+def body_frame_placement(placement: Placement, frame: BodyFrame) -> Placement:
+    """A placement in the body frame (same fits, warnings and levels); pairs with :func:`as_found_template`."""
+    return Placement(placement.template, frame.rotation, frame.translation_mm, placement.background_estimate_bq_ml, placement.noise_sd_bq_ml,
+                     dict(placement.fits), placement.ring_score, list(placement.warnings))
 
 
 # =============================================================================== small animal

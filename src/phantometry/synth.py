@@ -120,6 +120,32 @@ class SynthSpec:
             raise InputError("acquired_at must be timezone-aware")
 
 
+def synth_template_source(phantom: str, template_file: str | os.PathLike | None, *, phantom_given: bool = False) -> str:
+    """The template a synthetic scan is built from: ``template_file`` (a template YAML, e.g. a
+    variant of a shipped phantom) when given, else the ``phantom`` name.
+
+    The file is loaded and validated here (schema only: a variant's background ROIs need not
+    keep their clearances, the synthesizer does not paint them), so a bad file stops with a
+    one-line error naming it.
+
+    Raises
+    ------
+    InputError
+        Both a phantom name and a template file given, or the file does not exist.
+    TemplateError
+        The file is not a valid template.
+    """
+    if template_file is None:
+        return phantom
+    if phantom_given:
+        raise InputError("give either --phantom NAME or --template-file FILE, not both")
+    path = Path(template_file)
+    if not path.is_file():
+        raise InputError(f"{path}: no such template file")
+    load_template(path)  # validates (raises TemplateError naming the file)
+    return str(path)
+
+
 def default_scan_settings(phantom: str, templates_dirs: list[str] | None = None) -> dict[str, float]:
     """Typical voxel size (mm), PSF FWHM (mm) and background (kBq/mL) for a phantom kind:
     clinical scanners for body phantoms, preclinical ones for the small-animal phantom
@@ -359,6 +385,8 @@ def _truth(spec: SynthSpec, template: Template, rot: np.ndarray, t: np.ndarray, 
     return {
         "generator": "phantometry.synth",
         "template": template.name,
+        "template_source": template.source_path,
+        "arrangement": _arrangement(template),
         "frame": "LPS",
         "acquired_at": spec.acquired_at.isoformat(),
         "background_bq_ml": bg,
@@ -377,6 +405,21 @@ def _truth(spec: SynthSpec, template: Template, rot: np.ndarray, t: np.ndarray, 
         },
         "spec": spec_d,
     }
+
+
+def _arrangement(template: Template) -> dict[str, Any] | None:
+    """Where the sphere ring sits relative to the body in this template (body phantoms with a
+    flat side): the largest sphere's direction from the anterior (+y) direction, degrees
+    counterclockwise seen from +z, and the ring order (:func:`phantometry.locate.ring_arrangement`)."""
+    from .locate import template_ring_arrangement
+
+    axis_insert = template.analysis.raw().get("axis_insert")
+    if not isinstance(axis_insert, str) or axis_insert not in {i.name for i in template.inserts}:
+        return None
+    arr = template_ring_arrangement(template, axis_insert)
+    if arr is None:
+        return None
+    return {"ring_to_body_deg": round(arr[0], 3), "ring_order": arr[1], "body_z_range_mm": list(template.body.z_range_mm)}
 
 
 def fill_record_for(spec: SynthSpec, template: Template, measured_before_s: float = 3000.0) -> dict[str, Any]:

@@ -192,6 +192,9 @@ def synth_cmd(
     out: Path = typer.Argument(..., help="Output folder: a new one, or an earlier synthetic scan with --overwrite."),
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace OUT when it holds an earlier phantometry folder (never any other folder)."),
     phantom: str = typer.Option("iec-body", "--phantom", help="Template name: iec-body, small-animal, or a user template."),
+    template_file: Optional[Path] = typer.Option(
+        None, "--template-file", help="Build the phantom from this template file instead (a variant: e.g. the sphere ring turned or mirrored)."
+    ),
     fmt: str = typer.Option("dicom", "--format", help="dicom or nifti."),
     voxel: Optional[float] = typer.Option(None, "--voxel", help="Isotropic voxel size, mm (default 2; 0.5 for small-animal)."),
     matrix: Optional[str] = typer.Option(None, "--matrix", help="Grid size NX,NY,NZ (default: fits the phantom)."),
@@ -207,10 +210,11 @@ def synth_cmd(
 ) -> None:
     """Synthesise a phantom scan with known truth (image, fill.yaml, truth.json)."""
     from ..outputs import KIND_SCAN, check_output_folder, existing_inputs
-    from ..synth import SynthSpec, default_scan_settings, synthesize, write_synthetic
+    from ..synth import SynthSpec, default_scan_settings, synth_template_source, synthesize, write_synthetic
 
     if fmt not in ("dicom", "nifti"):
         raise InputError(f"--format {fmt!r}: use dicom or nifti")
+    phantom = synth_template_source(phantom, template_file, phantom_given=phantom != "iec-body")
     inputs = existing_inputs(phantom)
     check_output_folder(out, KIND_SCAN, inputs=inputs, overwrite=overwrite)  # before synthesising
     defaults = default_scan_settings(phantom)

@@ -196,8 +196,9 @@ class RoiSetCheck:
             "roi_set": self.roi_set,
             "planned": self.planned,
             "used": self.used,
-            "min_inside_fraction": round(float(self.min_inside_fraction), 4),
-            "min_edge_distance_mm": None if self.min_edge_distance_mm is None else round(float(self.min_edge_distance_mm), 2),
+            "min_inside_fraction": round(float(self.min_inside_fraction), 4) if math.isfinite(self.min_inside_fraction) else None,
+            "min_edge_distance_mm": (None if self.min_edge_distance_mm is None or not math.isfinite(self.min_edge_distance_mm)
+                                     else round(float(self.min_edge_distance_mm), 2)),
             "confirmed": self.confirmed,
             "note": self.note,
         }

@@ -11,6 +11,17 @@ Metrics
 * Calibration check: the background level against the fill record.
 * Effective resolution: the blurred-sphere fit (:mod:`phantometry.metrics.resolution`).
 
+Placement on the image (README "How the numbers are made")
+----------------------------------------------------------
+The spheres are placed by the ring fit (:func:`phantometry.locate.locate`); the body's own
+frame comes from its outline (:func:`phantometry.locate.find_body_frame`), independently of
+the ring, and the template's background positions are carried into the image by it, then
+kept, moved or dropped to keep their clearances from the body edge found on each plane, the
+spheres and the insert (:mod:`phantometry.background_rois`). Every ROI set is checked on the
+image (:func:`placement_checks`). The planes are the original slices nearest the sphere plane
+and +-10, +-20 mm, or interpolated for a tilted phantom (:mod:`phantometry.sampling`); the
+uncertainties use the same discs.
+
 Uncertainties (standard, image noise only; README "Uncertainties")
 ------------------------------------------------------------------
 The noise model is estimated from the image (:func:`phantometry.noise.estimate_noise`). Disc
@@ -37,8 +48,10 @@ import numpy as np
 from pydantic import Field
 
 from ..errors import FillRecordError, InputError, PhantomNotFound, PhantometryError
+from ..background_rois import EDGE_TOLERANCE_MM, BackgroundPlacement, Obstacle, PlaneGeometry, check_size
+from ..background_rois import place as place_background
 from ..fill import FillRecord
-from ..locate import locate
+from ..locate import BodyFrame, Placement, as_found_template, body_frame_placement, locate
 from ..metrics.nu2 import (
     background_variability,
     lung_residual,
@@ -51,8 +64,10 @@ from ..metrics.nu2 import (
 from ..metrics.recovery import BOOTSTRAP_DRAWS, SearchSimulation, recovery_coefficients
 from ..metrics.resolution import ResolutionFit, SphereObservation, blurred_disc_profile, fit_sphere_profiles
 from ..noise import NoiseModel, discs_variance, estimate_noise, u_ratio
+from ..outline import Outline, combine_outlines, find_outline
 from ..results import Measurement
 from ..rois import PlaneImage, cylinder_weights, disc_means, sample_plane, sphere_weights
+from ..sampling import PlaneSampler
 from ..templates import Template
 from ..threads import fft_workers, threads
 from ..volume import Volume
@@ -66,6 +81,7 @@ from .base import (
     PhantomKind,
     ResultGrid,
     RoiKindMask,
+    RoiSetCheck,
     RowBuilder,
     Shape,
     SummaryTable,
@@ -118,6 +134,24 @@ class BodyAnalysis(Analysis):
     background_roi_means: dict[float, np.ndarray] = field(default_factory=dict)
     #: blurred-sphere fit behind effective_fwhm_mm, if made
     resolution: ResolutionFit | None = None
+    #: the body frame the background ROIs were placed in (found from the outline)
+    frame: BodyFrame | None = None
+    #: how the planes were read (nearest original slice or interpolated)
+    sampler: PlaneSampler | None = None
+    #: where the background ROIs went (kept, moved, dropped)
+    background_placement: BackgroundPlacement | None = None
+    #: background ROI centres by offset: (plane, (K_pos, 2) in-plane mm)
+    background_discs: dict[float, tuple[PlaneImage, np.ndarray]] = field(default_factory=dict)
+    #: sphere ROI by name: (plane, (2,) in-plane mm)
+    sphere_discs: dict[str, tuple[PlaneImage, np.ndarray]] = field(default_factory=dict)
+    #: low-density insert ROIs: (offset, plane, (2,) in-plane mm)
+    lung_discs: list[tuple[float, PlaneImage, np.ndarray]] = field(default_factory=list)
+    #: body outline found on each background plane (None where not found)
+    outlines: dict[float, Outline | None] = field(default_factory=dict)
+    #: what the background ROIs keep their clearance from
+    obstacles: list[Obstacle] = field(default_factory=list)
+    #: the background planes' geometry (how body-frame points reach them, outlines)
+    plane_geometries: list[PlaneGeometry] = field(default_factory=list)
 
     @property
     def options(self) -> Options:
@@ -166,22 +200,31 @@ class BodyAnalysis(Analysis):
     def overlay(self) -> Overlay:
         pl, tpl, vol = self.placement, self.template, self.volume
         opts = self.options
-        plane = self.planes[0.0] if 0.0 in self.planes else next(iter(self.planes.values()))
+        off0 = 0.0 if 0.0 in self.planes else next(iter(self.planes))
+        plane = self.planes[off0]
         vmax = float(np.nanpercentile(plane.values, 99.5)) or 1.0
         shapes: list[Shape] = []
+        outline = self.outlines.get(off0)
+        if outline is not None:
+            shapes.append(Shape("contour", "guide", points_uv=plane.world_to_uv(outline.points_world()[::4])))
         for s in tpl.spheres:
-            uv = plane.world_to_uv(pl.insert_centre(s.name))
-            shapes.append(Shape("circle", "cold" if self.fill.is_cold(s.name) else "hot", uv, s.diameter_mm, label=s.name.replace("sphere_", "")))
+            if s.name in self.sphere_discs:
+                sp, uv = self.sphere_discs[s.name]
+                uv0 = plane.world_to_uv(sp.uv_to_world(uv))
+            else:
+                uv0 = plane.world_to_uv(pl.insert_centre(s.name))
+            shapes.append(Shape("circle", "cold" if self.fill.is_cold(s.name) else "hot", uv0, s.diameter_mm, label=s.name.replace("sphere_", "")))
         bg = tpl.background
-        if bg is not None:
+        if bg is not None and off0 in self.background_discs:
             d = max(bg.diameters_mm)
-            for i, (x, y) in enumerate(bg.centres_xy_mm):
-                shapes.append(Shape("circle", "background", plane.world_to_uv(pl.to_world([x, y, 0.0])), d, label=str(i + 1)))
-        if opts.lung_insert:
-            lung = tpl.insert(opts.lung_insert)
-            uv = plane.world_to_uv(pl.to_world([lung.centre_mm[0], lung.centre_mm[1], 0.0]))
-            shapes.append(Shape("circle", "insert", uv, opts.lung_roi_diameter_mm, label="insert", label_below=True))
-        views = [View(plane, "Sphere plane: spheres (solid), 37 mm background ROIs (dashed), insert ROI (dotted)", shapes, vmax)]
+            _, uvs = self.background_discs[off0]
+            for i, uv in zip(self.background_placement.index, uvs):
+                shapes.append(Shape("circle", "background", uv, d, label=str(int(i) + 1)))
+        for off, lplane, luv in self.lung_discs:
+            if off == off0:
+                shapes.append(Shape("circle", "insert", plane.world_to_uv(lplane.uv_to_world(luv)), opts.lung_roi_diameter_mm, label="insert", label_below=True))
+        how = "slice" if self.sampler is not None and self.sampler.nearest_slice else "plane"
+        views = [View(plane, f"Sphere {how}: 37 mm background ROIs (dashed), insert (dotted), body outline found (grey)", shapes, vmax)]
         # longitudinal view through the phantom axis and the template x direction
         u = pl.rotation[:, 0]
         half = max(tpl.body_length_mm, 2 * tpl.body.half_extent_xy_mm) / 2 + 10
@@ -193,9 +236,9 @@ class BodyAnalysis(Analysis):
             r = s.diameter_mm / 2
             if dist < r:
                 lshapes.append(Shape("circle", "hot", lon.world_to_uv(c), 2 * math.sqrt(r * r - dist * dist)))
-        if bg is not None:
-            for off in bg.slice_offsets_mm:
-                lshapes.append(Shape("hline", "background", lon.world_to_uv(pl.to_world([0.0, 0.0, off]))))
+        for off, bplane in self.planes.items():
+            p = pl.to_world([0.0, 0.0, off])
+            lshapes.append(Shape("hline", "background", lon.world_to_uv(self.sampler.onto(bplane, p) if self.sampler is not None else p)))
         views.append(View(lon, "Longitudinal view along the phantom axis: background slices (dashed)", lshapes, vmax))
         tilt = pl.as_dict()["axis_tilt_deg"]
         title = (f"{tpl.title} | series {vol.series_description or vol.series_uid or ''} | axis tilt {tilt:.1f} deg | "
@@ -217,10 +260,30 @@ class BodyAnalysis(Analysis):
         return {"recovery_curve.png": draw}
 
     def json_extras(self) -> dict[str, Any]:
-        return {
+        out: dict[str, Any] = {
             "noise": self.noise.as_dict() if self.noise is not None else None,
             "effective_resolution": self.resolution.as_dict() if self.resolution is not None else None,
         }
+        if self.sampler is not None:
+            out["sampling"] = self.sampler.as_dict()
+        bp = self.background_placement
+        if bp is not None:
+            out["background_rois"] = {
+                "diameter_placed_mm": bp.diameter_mm,
+                "min_clearance_mm": bp.clearance_required_mm,
+                "edge_tolerance_mm": round(bp.tolerance_mm, 3),
+                "k_per_size": len(bp.xy) * len(self.plane_geometries),
+                "k_planned": self.template.background.n_rois,
+                "positions": [
+                    {"number": i + 1, "status": st, "template_xy_mm": [round(float(v), 2) for v in bp.template_xy[i]],
+                     "nominal_clearance_mm": None if not np.isfinite(bp.clearance_mm[i]) else round(float(bp.clearance_mm[i]), 2),
+                     "moved_mm": None if not np.isfinite(bp.moved_mm[i]) else round(float(bp.moved_mm[i]), 2),
+                     "xy_mm": ([round(float(v), 2) for v in bp.xy[list(bp.index).index(i)]] if i in set(bp.index.tolist()) else None)}
+                    for i, st in enumerate(bp.status)
+                ],
+                "frame": "body frame found in the image (x, y in mm; +y away from the flat side)",
+            }
+        return out
 
     def roi_masks(self) -> list[RoiKindMask]:
         """Binary masks of every ROI kind placed: hot spheres, cold spheres, background ROIs (the
@@ -229,8 +292,6 @@ class BodyAnalysis(Analysis):
         slice thick. Kinds without any ROI (e.g. no cold spheres) are left out."""
         volume, tpl, pl = self.volume, self.template, self.placement
         shape = volume.shape
-        axis = pl.axis_world
-        thickness = _slice_thickness_along(volume, axis)
         kinds: list[RoiKindMask] = []
         hot = RoiKindMask("hot_spheres", "hot spheres", np.zeros(shape, bool), [], "Sphere")
         cold = RoiKindMask("cold_spheres", "cold spheres", np.zeros(shape, bool), [], "Sphere")
@@ -240,24 +301,22 @@ class BodyAnalysis(Analysis):
             target.roi_names.append(s.name)
         kinds += [k for k in (hot, cold) if k.roi_names]
         bg = tpl.background
-        if bg is not None:
+        if bg is not None and self.background_discs:
             d = max(bg.diameters_mm)
             kind = RoiKindMask("background_rois", "background ROIs", np.zeros(shape, bool), [], "Background")
-            for off in bg.slice_offsets_mm:
-                pts = pl.to_world(np.c_[np.asarray(bg.centres_xy_mm, float), np.full(len(bg.centres_xy_mm), off)])
-                for n, p in enumerate(pts, start=1):
-                    _add_mask(kind.mask, cylinder_weights(volume, p, axis, d, thickness))
-                    kind.roi_names.append(f"background_{d:g}mm_{off:+g}mm_{n:02d}")
+            for off, (plane, uvs) in self.background_discs.items():
+                thickness = _slice_thickness_along(volume, plane.normal)
+                for n, uv in zip(self.background_placement.index, uvs):
+                    _add_mask(kind.mask, cylinder_weights(volume, plane.uv_to_world(uv), plane.normal, d, thickness))
+                    kind.roi_names.append(f"background_{d:g}mm_{off:+g}mm_{int(n) + 1:02d}")
             kinds.append(kind)
         opts = self.options
-        if opts.lung_insert:
-            lung = tpl.insert(opts.lung_insert)
-            offsets = opts.lung_slice_offsets_mm or (bg.slice_offsets_mm if bg is not None else [0.0])
+        if opts.lung_insert and self.lung_discs:
             kind = RoiKindMask("low_density_insert", "low-density insert", np.zeros(shape, bool), [], "Phantom")
-            for off in offsets:
-                p = pl.to_world([lung.centre_mm[0], lung.centre_mm[1], off])
-                _add_mask(kind.mask, cylinder_weights(volume, p, axis, opts.lung_roi_diameter_mm, thickness))
-                kind.roi_names.append(f"{lung.name}_{off:+g}mm")
+            for off, plane, uv in self.lung_discs:
+                thickness = _slice_thickness_along(volume, plane.normal)
+                _add_mask(kind.mask, cylinder_weights(volume, plane.uv_to_world(uv), plane.normal, opts.lung_roi_diameter_mm, thickness))
+                kind.roi_names.append(f"{opts.lung_insert}_{off:+g}mm")
             kinds.append(kind)
         return kinds
 
@@ -374,40 +433,55 @@ class BodyKind(PhantomKind):
         out = RowBuilder(volume, template)
         add = out.add
         warnings = list(placement.warnings)
+        frame = placement.body_frame if placement.body_frame is not None else ring_frame(placement, template)
+        sampler = PlaneSampler.choose(volume, axis, u, v)
 
-        # ---- background ROIs on every slice offset, every size
-        half_width = template.body.half_extent_xy_mm + 10
-        planes: dict[float, PlaneImage] = {}
+        # ---- background ROIs: placed on the body found in the image, every slice offset, every size
+        geo = read_background_planes(volume, placement, frame, template, sampler)
+        obstacles = background_obstacles(placement, frame, template)
+        d_max = max(bg_set.diameters_mm)
+        outline_xy = template.body.outline_xy()
+        bounds = (*(outline_xy[:, 0].min() - 20, outline_xy[:, 0].max() + 20), *(outline_xy[:, 1].min() - 20, outline_xy[:, 1].max() + 20))
+        bplace = place_background(np.asarray(bg_set.centres_xy_mm, float), geo.geometries, obstacles, d_max, bg_set.min_clearance_mm, bounds,
+                                  tolerance_mm=geo.edge_tolerance_mm)
+        if len(bplace.xy) == 0:
+            raise PhantomNotFound(
+                f"{where}: no background ROI position keeps {bg_set.min_clearance_mm:g} mm from the body edge found in the image, "
+                "the spheres and the insert; is the whole phantom in the field of view, and is this the template's phantom?"
+            )
+        discs: dict[float, tuple[PlaneImage, np.ndarray]] = {}
         means: dict[float, list[np.ndarray]] = {d: [] for d in bg_set.diameters_mm}
-        centres_xy = np.asarray(bg_set.centres_xy_mm, float)
-        for off in bg_set.slice_offsets_mm:
-            plane_centre = placement.to_world([0.0, 0.0, off])
-            plane = sample_plane(volume, plane_centre, u, v, half_width)
-            planes[off] = plane
-            world = placement.to_world(np.c_[centres_xy, np.full(len(centres_xy), off)])
-            uv = plane.world_to_uv(world)
+        for pg in geo.geometries:
+            plane = geo.planes[pg.offset_mm]
+            uv = plane.world_to_uv(pg.to_plane(bplace.xy))
+            discs[pg.offset_mm] = (plane, uv)
             for d in bg_set.diameters_mm:
                 try:
                     means[d].append(disc_means(plane, uv, d))
                 except PhantomNotFound:
                     raise PhantomNotFound(
-                        f"{where}: background ROIs at {off:+g} mm from the sphere plane fall outside the image; "
+                        f"{where}: background ROIs at {pg.offset_mm:+g} mm from the sphere plane fall outside the image; "
                         "is the whole phantom in the field of view?"
                     ) from None
         roi_means = {d: np.concatenate(m) for d, m in means.items()}
         c_b = {}
         bv = {}
         for d, m in roi_means.items():
-            bv[d], c_b[d], _ = background_variability(m)
+            bv[d], c_b[d], _ = background_variability(m) if len(m) >= 2 else (math.nan, float(np.mean(m)), None)
         c_b_ref = c_b[opts.reference_background_diameter_mm]
-        # ---- spheres
+        k_used = len(bplace.xy) * len(geo.geometries)
+        k_planned = bg_set.n_rois
+        k_note = None if k_used == k_planned else f"K = {k_used} background ROIs of {k_planned} ({bplace.summary()})"
+        # ---- spheres, each on the slice (or plane) through its centre
+        sphere_discs: dict[str, tuple[PlaneImage, np.ndarray]] = {}
         for s in spheres:
             centre = placement.insert_centre(s.name)
-            sp = sample_plane(volume, centre, u, v, s.diameter_mm / 2 + 4 * float(np.max(volume.spacing_mm)))
             try:
-                c_sphere = float(disc_means(sp, sp.world_to_uv(centre[None]), s.diameter_mm)[0])
+                sp, uv = sphere_disc(sampler, volume, centre, s.diameter_mm, name=s.name)
+                c_sphere = float(disc_means(sp, uv, s.diameter_mm)[0])
             except PhantomNotFound:
                 raise PhantomNotFound(f"{where}: {s.name} lies outside the image; is the whole phantom in the field of view?") from None
+            sphere_discs[s.name] = (sp, uv[0])
             cb = c_b.get(s.diameter_mm, c_b_ref)
             if hot[s.name]:
                 if ratio[s.name] <= 1:
@@ -415,7 +489,7 @@ class BodyKind(PhantomKind):
                 add(s.name, "percent_contrast", percent_contrast_hot(c_sphere, cb, ratio[s.name]), "%")
             else:
                 add(s.name, "percent_contrast", percent_contrast_cold(c_sphere, cb), "%")
-            add(s.name, "background_variability_pct", bv.get(s.diameter_mm, math.nan), "%")
+            add(s.name, "background_variability_pct", bv.get(s.diameter_mm, math.nan), "%", k_note)
             if hot[s.name]:
                 rc = recovery_coefficients(
                     volume,
@@ -431,27 +505,229 @@ class BodyKind(PhantomKind):
             for axis_name, val in zip("xyz", centre):
                 add(s.name, f"centre_{axis_name}_mm", val, "mm")
         # ---- low-density insert residual
+        lung_discs: list[tuple[float, PlaneImage, np.ndarray]] = []
         if opts.lung_insert is not None:
             lung = template.insert(opts.lung_insert)
             lung_vals = []
             for off in opts.lung_slice_offsets_mm or bg_set.slice_offsets_mm:
-                plane = planes.get(off)
+                plane = geo.planes.get(float(off))
                 if plane is None:
-                    plane = sample_plane(volume, placement.to_world([0.0, 0.0, off]), u, v, half_width)
-                lc = _lung_centre(placement, lung, off, overrides)
-                lung_vals.append(float(disc_means(plane, plane.world_to_uv(lc[None]), opts.lung_roi_diameter_mm)[0]))
+                    plane = sampler.plane(placement.to_world([0.0, 0.0, off]), geo.half_width_mm, name=f"insert {off:+g} mm")
+                lc = sampler.onto(plane, _lung_centre(placement, lung, off, overrides))
+                uv = plane.world_to_uv(lc[None])
+                lung_vals.append(float(disc_means(plane, uv, opts.lung_roi_diameter_mm)[0]))
+                lung_discs.append((float(off), plane, uv[0]))
             avg, _ = lung_residual(np.array(lung_vals), c_b_ref)
             add(lung.name, "lung_residual_pct", avg, "%")
         # ---- background level and calibration check
-        add("background", "mean_bq_ml", c_b_ref, "Bq/mL")
+        add("background", "mean_bq_ml", c_b_ref, "Bq/mL", k_note)
         note = calibration_warning(c_b_ref, true_bg, "background")
         if note:
             warnings.append(note)
         add("background", "activity_recovery", c_b_ref / true_bg, "1", note)
         result = BodyAnalysis(volume, template, fill, placement, out.rows, true_bg, true_ins, warnings,
-                              planes=planes, background_roi_means=roi_means)
+                              planes=geo.planes, background_roi_means=roi_means, frame=frame, sampler=sampler,
+                              background_placement=bplace, background_discs=discs, sphere_discs=sphere_discs,
+                              lung_discs=lung_discs, outlines={pg.offset_mm: pg.outline for pg in geo.geometries},
+                              obstacles=obstacles, plane_geometries=geo.geometries)
+        result.placement_checks = placement_checks(result, c_b_ref)
+        _placement_warnings(result)
         _noise_resolution_uncertainties(result, overrides=overrides, settings=settings)
         return result
+
+
+# ============================================================================== placement on the image
+@dataclass
+class BackgroundPlanes:
+    """The background planes read for one analysis and what the image shows on them."""
+
+    planes: dict[float, PlaneImage]
+    geometries: list[PlaneGeometry]
+    half_width_mm: float
+    #: allowance for locating the edge when a template position is checked (mm)
+    edge_tolerance_mm: float = EDGE_TOLERANCE_MM
+
+
+def edge_tolerance_mm(edge_se_mm: float | None) -> float:
+    """Allowance for locating the body edge: :data:`~phantometry.background_rois.EDGE_TOLERANCE_MM`,
+    or twice the edge's standard error on a noisier image, at most :data:`MAX_EDGE_TOLERANCE_MM`."""
+    if edge_se_mm is None or not math.isfinite(edge_se_mm):
+        return EDGE_TOLERANCE_MM
+    return float(min(MAX_EDGE_TOLERANCE_MM, max(EDGE_TOLERANCE_MM, 2.0 * edge_se_mm)))
+
+
+#: Largest allowance (mm) for locating the body edge.
+MAX_EDGE_TOLERANCE_MM = 2.0
+
+
+def ring_frame(placement: Placement, template: Template) -> BodyFrame:
+    """The ring's fit as the body frame: used only when the body outline was not found (the
+    template's ring-to-body arrangement is then assumed, and a warning says so)."""
+    z0, z1 = template.body.z_range_mm
+    return BodyFrame(placement.rotation.copy(), placement.translation_mm.copy(), None, False, None, (float(z0), float(z1)),
+                     None, None, None, None, "ring fit (no outline)")
+
+
+#: Largest share of rays without an edge that an outline may have (they are interpolated).
+MAX_MISSING_RAYS = 0.10
+
+
+def plane_outline(volume: Volume, origin_mm: np.ndarray, plane: PlaneImage, level: float, max_radius_mm: float, **kw: Any) -> Outline | None:
+    """The outline about ``origin_mm`` in ``plane`` (:func:`phantometry.outline.find_outline`);
+    a few rays without an edge are interpolated from their neighbours; None when too many lack one."""
+    ol = find_outline(plane, origin_mm, level, max_radius_mm, **kw)
+    bad = ~np.isfinite(ol.radii_mm)
+    if bad.mean() > MAX_MISSING_RAYS:
+        return None
+    if bad.any():
+        ol.radii_mm = np.interp(ol.angles_rad, ol.angles_rad[~bad], ol.radii_mm[~bad], period=2 * np.pi)
+    return ol
+
+
+def read_background_planes(volume: Volume, placement: Placement, frame: BodyFrame, template: Template, sampler: PlaneSampler) -> BackgroundPlanes:
+    """Read every background plane (nearest slice or interpolated, :class:`PlaneSampler`) and
+    find the body outline on it (rays from the phantom axis, 50 % of the background level;
+    combined over the planes, :func:`phantometry.outline.combine_outlines`)."""
+    opts = KIND.options(template)
+    bg_set = template.background
+    ax = template.insert(opts.axis_insert)
+    half_width = template.body.half_extent_xy_mm + 10
+    level = 0.5 * placement.background_estimate_bq_ml
+    max_r = template.body.half_extent_xy_mm + 30.0
+    planes: dict[float, PlaneImage] = {}
+    geometries: list[PlaneGeometry] = []
+    for off in bg_set.slice_offsets_mm:
+        off = float(off)
+        plane = sampler.plane(placement.to_world([0.0, 0.0, off]), half_width, name=f"background {off:+g} mm")
+        planes[off] = plane
+        origin = sampler.onto(plane, placement.to_world([ax.centre_mm[0], ax.centre_mm[1], off]))
+        outline = plane_outline(volume, origin, plane, level, max_r)
+
+        def to_plane(xy: np.ndarray, off: float = off, plane: PlaneImage = plane) -> np.ndarray:
+            xy = np.asarray(xy, float).reshape(-1, 2)
+            return sampler.onto(plane, frame.to_world(np.c_[xy, np.full(len(xy), off)]))
+
+        geometries.append(PlaneGeometry(off, to_plane, outline))
+    # one body, one edge: the planes' outlines share their noise-free part (rays from the axis,
+    # same directions), so their median is taken, except where a plane really differs
+    combined, edge_se = combine_outlines([pg.outline for pg in geometries])
+    for pg, ol in zip(geometries, combined):
+        pg.outline = ol
+    return BackgroundPlanes(planes, geometries, half_width, edge_tolerance_mm(edge_se))
+
+
+def background_obstacles(placement: Placement, frame: BodyFrame, template: Template) -> list[Obstacle]:
+    """The spheres and the inserts parallel to the axis, where the placement put them, in the
+    body frame's ``x, y`` (what background ROIs keep their clearance from; NEMA NU 2)."""
+    out = []
+    for ins in template.inserts:
+        if ins.role == "sphere" or (ins.shape == "cylinder" and abs(float(ins.axis_unit[2])) > 0.999):
+            xy = frame.to_body(placement.insert_centre(ins.name))[:2]
+            out.append(Obstacle(ins.name, xy, 0.5 * ins.outer_diameter_mm))
+    return out
+
+
+def sphere_disc(sampler: PlaneSampler, volume: Volume, centre: np.ndarray, diameter_mm: float, name: str | None = None) -> tuple[PlaneImage, np.ndarray]:
+    """The plane (the slice nearest the sphere centre, or the plane through it) and the (1, 2)
+    in-plane centre of a sphere's ROI."""
+    plane = sampler.plane(centre, diameter_mm / 2 + 4 * float(np.max(volume.spacing_mm)), name=name)
+    return plane, plane.world_to_uv(sampler.onto(plane, centre)[None])
+
+
+def _background_rows(template: Template, diameter: float, reference: bool, lung: str | None) -> list[tuple[str, str]]:
+    rows = [(s.name, m) for s in template.spheres if s.diameter_mm == diameter for m in ("background_variability_pct", "percent_contrast")]
+    if reference:
+        rows += [(s.name, "percent_contrast") for s in template.spheres if s.diameter_mm not in template.background.diameters_mm]
+        rows += [("background", "mean_bq_ml"), ("background", "activity_recovery")]
+        rows += [(s.name, "rc_mean") for s in template.spheres]  # the A50 isocontour level uses the background
+        if lung:
+            rows.append((lung, "lung_residual_pct"))
+    return rows
+
+
+def placement_checks(analysis: "BodyAnalysis", c_b_ref: float) -> list[RoiSetCheck]:
+    """How the image confirms each ROI set: the background ROIs of every size, the sphere ROIs
+    and the insert ROIs (fraction inside the region found in the image, distance to its edge)."""
+    tpl, vol, pl = analysis.template, analysis.volume, analysis.placement
+    opts = analysis.options
+    bg = tpl.background
+    bp = analysis.background_placement
+    geos = analysis.plane_geometries
+    need = bg.min_clearance_mm - bp.tolerance_mm
+    checks: list[RoiSetCheck] = []
+    k_used = len(bp.xy) * len(geos)
+    missing = [f"{pg.offset_mm:+g} mm" for pg in geos if pg.outline is None]
+    for d in sorted(bg.diameters_mm, reverse=True):
+        sc = check_size(bp.xy, geos, analysis.obstacles, d)
+        inside_ok = math.isfinite(sc.min_inside_fraction) and sc.min_inside_fraction >= 1.0 - 1e-9
+        confirmed = inside_ok and sc.min_edge_distance_mm >= need and sc.min_obstacle_distance_mm >= need - 1e-9 and k_used >= 2 and not missing
+        bits = [f"K = {k_used} of {bg.n_rois}", bp.summary()]
+        bits.append(f"closest to a sphere or insert: {sc.min_obstacle_distance_mm:.1f} mm")
+        if missing:
+            bits.append("no body outline found on the plane(s) " + ", ".join(missing))
+        elif not confirmed:
+            bits.append(f"not every ROI lies wholly inside the body found, {bg.min_clearance_mm:g} mm from its edge, the spheres and the insert")
+        checks.append(RoiSetCheck(f"background_{d:g}mm", bg.n_rois, k_used, sc.min_inside_fraction,
+                                  sc.min_edge_distance_mm if math.isfinite(sc.min_edge_distance_mm) else None, confirmed, "; ".join(bits),
+                                  _background_rows(tpl, d, d == opts.reference_background_diameter_mm, opts.lung_insert)))
+    # ---- spheres: inside the body found, and each refined centre agreeing with the rigid fit
+    outline0 = next((pg.outline for pg in geos if pg.offset_mm == 0.0), None) or next((pg.outline for pg in geos if pg.outline), None)
+    fractions, edges, off_fit = [], [], []
+    tol = max(2.0, 0.75 * float(np.max(vol.spacing_mm)))
+    for s in tpl.spheres:
+        plane, uv = analysis.sphere_discs[s.name]
+        c = plane.uv_to_world(uv)
+        if outline0 is not None:
+            fractions.append(float(outline0.disc_inside_fraction(c[None], s.diameter_mm)[0]))
+            edges.append(float(outline0.signed_distance(c[None])[0]) - s.diameter_mm / 2)
+        fit = pl.fits.get(s.name)
+        if fit is not None and fit.signal_to_noise is not None and fit.signal_to_noise > 5 and (fit.residual_mm or 0.0) > tol:
+            off_fit.append(f"{s.name} {fit.residual_mm:.1f} mm")
+    inside = min(fractions) if fractions else math.nan
+    confirmed = bool(fractions) and inside >= 1.0 - 1e-9 and not off_fit
+    note = "every sphere ROI inside the body found" if confirmed else "; ".join(
+        (["no body outline found"] if not fractions else [] if inside >= 1.0 - 1e-9 else ["a sphere ROI crosses the body edge found"])
+        + ([f"refined centres off the rigid fit (more than {tol:.1f} mm): " + ", ".join(off_fit)] if off_fit else []))
+    sphere_rows = [(s.name, m) for s in tpl.spheres for m in ("percent_contrast", "rc_max", "rc_mean", "rc_peak", "centre_x_mm", "centre_y_mm", "centre_z_mm")]
+    checks.append(RoiSetCheck("spheres", len(tpl.spheres), len(tpl.spheres), inside, min(edges) if edges else None, confirmed, note, sphere_rows))
+    # ---- the low-density insert's ROIs inside the cold insert found on each plane
+    if opts.lung_insert is not None and analysis.lung_discs:
+        lung = tpl.insert(opts.lung_insert)
+        fr, ed, lost = [], [], []
+        for off, plane, uv in analysis.lung_discs:
+            c = plane.uv_to_world(uv)
+            ol = plane_outline(vol, c, plane, 0.5 * c_b_ref, lung.outer_diameter_mm + 20.0, mode="first", n_rays=360)
+            if ol is None:
+                lost.append(f"{off:+g} mm")
+                continue
+            fr.append(float(ol.disc_inside_fraction(c[None], opts.lung_roi_diameter_mm)[0]))
+            ed.append(float(ol.signed_distance(c[None])[0]) - opts.lung_roi_diameter_mm / 2)
+        inside = min(fr) if fr else math.nan
+        confirmed = not lost and bool(fr) and inside >= 1.0 - 1e-9
+        note = (f"every {opts.lung_roi_diameter_mm:g} mm ROI inside the cold insert found" if confirmed else
+                "; ".join((["the cold insert was not found around the ROI on the plane(s) " + ", ".join(lost)] if lost else [])
+                          + (["an ROI reaches beyond the cold insert found"] if fr and inside < 1.0 - 1e-9 else [])))
+        checks.append(RoiSetCheck(lung.name, len(analysis.lung_discs), len(analysis.lung_discs), inside, min(ed) if ed else None,
+                                  confirmed, note, [(lung.name, "lung_residual_pct")]))
+    return checks
+
+
+def _placement_warnings(analysis: "BodyAnalysis") -> None:
+    """Say what happened to the background ROIs, and loudly when an ROI set is not confirmed."""
+    bp = analysis.background_placement
+    bg = analysis.template.background
+    if bp.n_moved or bp.n_dropped:
+        k = len(bp.xy) * len(analysis.plane_geometries)
+        analysis.warnings.append(
+            f"background ROIs: {bp.summary()} (template numbering), to keep {bg.min_clearance_mm:g} mm from the body edge found in "
+            f"the image, the spheres and the insert; K = {k} ROIs per size (NEMA NU 2 plans {bg.n_rois})"
+        )
+    for c in analysis.placement_checks:
+        if not c.confirmed:
+            analysis.warnings.append(
+                f"WARNING: {c.roi_set} ROIs are not confirmed in the image ({c.note}); the numbers that depend on them are doubtful "
+                "and their band verdicts are withheld"
+            )
 
 
 def _template_error(template: Template, problem: str):
@@ -482,7 +758,8 @@ def _noise_resolution_uncertainties(analysis: BodyAnalysis, *, overrides, settin
     noise = None
     if settings.uncertainties or settings.resolution:
         try:
-            noise = estimate_noise(analysis.volume, analysis.placement, analysis.template, variance_power=settings.variance_power)
+            pl_noise, tpl_noise = noise_geometry(analysis)
+            noise = estimate_noise(analysis.volume, pl_noise, tpl_noise, variance_power=settings.variance_power)
         except PhantometryError as exc:
             analysis.warnings.append(f"no uncertainties: the noise could not be estimated ({exc})")
     analysis.noise = noise
@@ -515,6 +792,16 @@ def _noise_resolution_uncertainties(analysis: BodyAnalysis, *, overrides, settin
                 dataclasses.replace(r, uncertainty=float(us[(r.roi, r.metric)])) if (r.roi, r.metric) in us and r.uncertainty is None else r
                 for r in analysis.rows
             ]
+
+
+def noise_geometry(analysis: BodyAnalysis) -> tuple[Placement, Template]:
+    """Placement and template describing the phantom as found (body frame from the outline,
+    inserts where the placement put them, body ends as found) for the noise estimate's
+    background mask; the ring's placement and the template as written when no outline was found."""
+    pl = analysis.placement
+    if pl.body_frame is None:
+        return pl, analysis.template
+    return body_frame_placement(pl, pl.body_frame), as_found_template(analysis.template, pl, pl.body_frame)
 
 
 def body_uncertainties(
@@ -636,30 +923,21 @@ def _disc_uncertainties(analysis: BodyAnalysis, noise: NoiseModel) -> tuple[dict
     vol = analysis.volume
     tpl = analysis.template
     fill = analysis.fill
-    pl = analysis.placement
     a = analysis.options
-    bg = tpl.background
-    u_dir, v_dir = pl.rotation[:, 0], pl.rotation[:, 1]
     values = {(r.roi, r.metric): r.value for r in analysis.rows}
-    # ---- background ROI sets: the mean of K ROI means per size (level = background)
-    centres_xy = np.asarray(bg.centres_xy_mm, float)
-    discs_by_offset = []
-    for off in bg.slice_offsets_mm:
-        plane = analysis.planes[off]
-        uv = plane.world_to_uv(pl.to_world(np.c_[centres_xy, np.full(len(centres_xy), off)]))
-        discs_by_offset.extend((plane, c) for c in uv)
+    # ---- background ROI sets: the mean of K ROI means per size (level = background), on the
+    # planes and at the positions the measurement used
+    discs_by_offset = [(plane, c) for plane, uvs in analysis.background_discs.values() for c in uvs]
     u_cb: dict[float, float] = {}
     for d in analysis.background_roi_means:
         u_cb[d] = math.sqrt(discs_variance(noise, vol, discs_by_offset, d, heteroscedastic=False))
     ref = a.reference_background_diameter_mm
     cb_ref, ucb_ref = c_b[ref], u_cb[ref]
-    # ---- spheres
-    spacing_max = float(np.max(vol.spacing_mm))
+    # ---- spheres, on the planes the measurement used
     for s in tpl.spheres:
         name = s.name
-        centre = pl.insert_centre(name)
-        sp = sample_plane(vol, centre, u_dir, v_dir, s.diameter_mm / 2 + 4 * spacing_max)
-        uv = sp.world_to_uv(centre[None])
+        sp, uv = analysis.sphere_discs[name]
+        uv = np.asarray(uv, float).reshape(1, 2)
         c_sphere = float(disc_means(sp, uv, s.diameter_mm)[0])
         u_sphere = math.sqrt(discs_variance(noise, vol, [(sp, uv[0])], s.diameter_mm, heteroscedastic=True))
         cb = c_b.get(s.diameter_mm, cb_ref)
@@ -691,27 +969,14 @@ def _lung_uncertainty(
     tpl = analysis.template
     pl = analysis.placement
     a = analysis.options
-    bg = tpl.background
-    u_dir, v_dir = pl.rotation[:, 0], pl.rotation[:, 1]
     values = {(r.roi, r.metric): r.value for r in analysis.rows}
     ref = a.reference_background_diameter_mm
     cb_ref, ucb_ref = c_b[ref], u_cb[ref]
-    # ---- low-density insert
-    if a.lung_insert is not None and (a.lung_insert, "lung_residual_pct") in values:
+    # ---- low-density insert, on the planes and at the positions the measurement used
+    if a.lung_insert is not None and (a.lung_insert, "lung_residual_pct") in values and analysis.lung_discs:
         lung = tpl.insert(a.lung_insert)
-        offsets = a.lung_slice_offsets_mm or bg.slice_offsets_mm
-        half_width = tpl.body.half_extent_xy_mm + 10
-        discs = []
-        lung_vals = []
-        for off in offsets:
-            plane = analysis.planes.get(off)
-            if plane is None:
-                plane = sample_plane(vol, pl.to_world([0.0, 0.0, off]), u_dir, v_dir, half_width)
-            lc = _lung_centre(pl, lung, off, overrides)
-            uv = plane.world_to_uv(lc[None])
-            lung_vals.append(float(disc_means(plane, uv, a.lung_roi_diameter_mm)[0]))
-            discs.append((plane, uv[0]))
-        c_lung = float(np.mean(lung_vals))
+        discs = [(plane, np.asarray(uv, float)) for _, plane, uv in analysis.lung_discs]
+        c_lung = float(np.mean([disc_means(plane, uv[None], a.lung_roi_diameter_mm)[0] for plane, uv in discs]))
         level_fn = None
         if resolution_fit is not None and lung.shape == "cylinder":
             level_fn = _cylinder_level(resolution_fit, pl.insert_centre(lung.name), pl.direction_to_world(lung.axis_unit), 0.5 * lung.outer_diameter_mm)
