@@ -947,10 +947,10 @@ def blurred_disc(rho_mm: np.ndarray, level: float, radius_mm: float, sigma_mm: f
     of ``sigma_mm``, at distance ``rho_mm`` from its centre: ``level * P(|X| <= R)`` with
     ``X ~ N(rho, sigma^2 I)``, i.e. ``ncx2.cdf(R^2/s^2, 2, rho^2/s^2)`` (the non-central
     chi-square distribution of scipy.stats)."""
-    from scipy import stats
+    from scipy.special import chndtr  # the non-central chi-square CDF (as scipy.stats.ncx2.cdf)
 
     s = max(float(sigma_mm), 1e-6)
-    return level * stats.ncx2.cdf((radius_mm / s) ** 2, 2, (np.asarray(rho_mm, float) / s) ** 2)
+    return level * chndtr((radius_mm / s) ** 2, 2, (np.asarray(rho_mm, float) / s) ** 2)
 
 
 def _slab_mean(volume: Volume, origin: np.ndarray, rot: np.ndarray, zs: np.ndarray, X: np.ndarray, Y: np.ndarray) -> np.ndarray:
@@ -1356,7 +1356,8 @@ def locate_generic(
     concentrations: dict[str, float],
     overrides: dict[str, np.ndarray] | None = None,
     where: str | None = None,
-) -> Placement:
+    edge_z_mm: tuple[float, float] | None = None,
+) -> "GenericPlacement":
     """Find a user-defined phantom (cylindrical or body-shaped, inserts anywhere).
 
     Method (phantometry's own): body and axis as for the small-animal phantom (coarse slice
@@ -1367,9 +1368,16 @@ def locate_generic(
     for both directions; finally each insert with enough signal is refined by a signed centroid
     and a weighted Kabsch fit when at least three inserts qualify.
 
+    Last, for a cylindrical body, the radius and the point-response width are fitted to the
+    angle-averaged radial profile of its edge over ``edge_z_mm`` (template frame; a uniform
+    part, e.g. the reference VOI's range) by the blurred-disc model, and the body's length is
+    taken from where its axial profile crosses half the background.
+
     Parameters
     ----------
     concentrations : dict insert name -> expected Bq/mL (from the fill record).
+    edge_z_mm : template-frame z range where the body edge is fitted (default: 10 mm about the
+        body's middle).
     """
     where = where or (volume.source or "image")
     overrides = {k: np.asarray(v, float) for k, v in (overrides or {}).items()}
@@ -1407,6 +1415,7 @@ def locate_generic(
     if len(high) == 0:
         raise PhantomNotFound(f"{where}: no phantom body found along its axis")
     centre = centre + 0.5 * (s[high[0]] + s[high[-1]]) * d
+    length_found = float(s[high[-1]] - s[high[0]])
     body_centre_t = template.body_centre_mm
     # rotation and direction: correlation on a cylindrical grid
     n_t = 180
@@ -1482,4 +1491,54 @@ def locate_generic(
             fits[ins.name] = InsertFit(ins.name, pred, c, float(np.linalg.norm(c - pred)), snr, "fit")
         else:
             fits[ins.name] = InsertFit(ins.name, pred, None, None, None, "template")
-    return Placement(template, rot, t, bg, body.noise_sd, fits, score, [])
+    # what the image shows of the body: its length along the axis, and for a cylinder its
+    # radius and the point-response width from the blurred edge (reference part of the body)
+    z_mid = float(body_centre_t[2])
+    found_z = (z_mid - length_found / 2, z_mid + length_found / 2)
+    radius = psf = None
+    psf_source = "not measured (the body is not a cylinder)"
+    if body_t.shape == "cylinder":
+        origin = rot @ np.array([*body_t.centre_xy_mm, 0.0]) + t
+        z_lo, z_hi = edge_z_mm if edge_z_mm is not None else (z_mid - 5.0, z_mid + 5.0)
+        edge = _fit_disc_edge(volume, origin, rot, np.linspace(z_lo, z_hi, 5), body_r, bg, float(np.min(np.abs(volume.spacing_mm))))
+        if edge is not None:
+            radius, psf, psf_source = edge[1], _FWHM_PER_SIGMA * edge[2], "body edge"
+        else:
+            psf_source = "not measured (the body edge profile could not be fitted)"
+    return GenericPlacement(template, rot, t, bg, body.noise_sd, fits, score, [], body_radius_mm=radius, psf_fwhm_mm=psf,
+                            psf_source=psf_source, body_z_range_mm=found_z)
+
+
+@dataclass
+class GenericPlacement(Placement):
+    """Placement of a user-defined phantom with what the image showed of its body.
+
+    Attributes
+    ----------
+    body_radius_mm : radius of a cylindrical body from its blurred edge (None otherwise).
+    psf_fwhm_mm : FWHM of the point response from the same edge (None when not measured).
+    psf_source : how the point response was found, or why not.
+    body_z_range_mm : template-frame z range of the body found along the axis (where the
+        mean over a disc of half the body radius crosses half the background level).
+    """
+
+    body_radius_mm: float | None = None
+    psf_fwhm_mm: float | None = None
+    psf_source: str = "not measured"
+    body_z_range_mm: tuple[float, float] | None = None
+
+    def as_dict(self) -> dict[str, Any]:
+        out = super().as_dict()
+        out["body_found"] = {
+            "radius_mm": None if self.body_radius_mm is None else round(self.body_radius_mm, 3),
+            "z_range_mm": None if self.body_z_range_mm is None else [round(float(v), 3) for v in self.body_z_range_mm],
+            "psf_fwhm_mm": None if self.psf_fwhm_mm is None else round(self.psf_fwhm_mm, 3),
+            "psf_source": self.psf_source,
+        }
+        return out
+
+
+def expected_concentration(template: Template, points_template_mm: np.ndarray, concentrations: dict[str, float], background: float) -> np.ndarray:
+    """The concentration a template and fill predict at template-frame points (Bq/mL; point
+    samples of the body and every insert, painted in the synthesizer's order)."""
+    return _template_value_at(template, np.asarray(points_template_mm, float), concentrations, background)

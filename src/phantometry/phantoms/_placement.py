@@ -53,3 +53,19 @@ def outside_warning(check: RoiSetCheck, what: str) -> str | None:
         f"sample (as found in this image); its numbers mix in what lies outside"
         + ("" if check.confirmed else "; band verdicts withheld")
     )
+
+
+def ball_overlap_fraction(offset_mm: float, r_roi_mm: float, r_region_mm: float) -> float:
+    """Fraction of a ball of radius ``r_roi_mm`` inside a ball of radius ``r_region_mm`` whose
+    centre is ``offset_mm`` away (the volume of the lens of two spheres over the ROI's volume)."""
+    d, r, R = abs(float(offset_mm)), float(r_roi_mm), float(r_region_mm)
+    if r <= 0:
+        return 1.0 if d <= R else 0.0
+    if d + r <= R:
+        return 1.0
+    if d >= r + R:
+        return 0.0
+    if d + R <= r:
+        return (R / r) ** 3
+    lens = math.pi * (R + r - d) ** 2 * (d * d + 2 * d * r - 3 * r * r + 2 * d * R + 6 * r * R - 3 * R * R) / (12 * d)
+    return lens / (4.0 / 3.0 * math.pi * r**3)
