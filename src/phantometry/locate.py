@@ -843,7 +843,7 @@ def locate_small_animal(
     # refine the axis on the full-resolution image: centroids of the filled cross-section of the
     # uniform region (rods excluded, chambers filled as holes), fitted by a line
     for _ in range(2):
-        centre, d = _refine_cylinder_axis(volume, centre + s_face_rough * d, d, 2.0, uniform_len - 2.0, body_r, bg, where)
+        centre, d = _refine_cylinder_axis(volume, centre + s_face_rough * d, d, 2.0, uniform_len - 2.0, body_r, bg, where, fraction=0.25)
         s_face_rough = 0.0
         s = np.arange(-10.0, 10.0 + step / 2, step)
         prof_face = _axial_profile(volume, centre, d, s, 0.8 * body_r)
@@ -901,7 +901,7 @@ def locate_small_animal(
     # ---- cold chambers from the image
     noise_sd = _uniform_noise_sd(volume, face, rot, free_z, radius_fit, psf_fwhm)
     chambers, identity, ch_warn = _find_chambers(
-        volume, template, face, rot, level_fit, radius_fit, sigma_fit, pix, spillover_voi_mm, noise_sd, overrides, where
+        volume, template, face, rot, level_fit, radius_fit, sigma_fit, pix, spillover_voi_mm, noise_sd, overrides
     )
     warnings += ch_warn
     # ---- rod section: the far end of the rods
@@ -1022,6 +1022,135 @@ def _is_air(ins: Insert) -> bool:
     return "air" in words
 
 
+@dataclass
+class _DeficitMap:
+    """The cold chambers alone: the blurred body disc minus the image, averaged over the planes
+    through the chambers' middle, on a template-frame grid (X, Y) of ``pixel_mm``."""
+
+    X: np.ndarray
+    Y: np.ndarray
+    D: np.ndarray
+    pixel_mm: float
+    z_range_mm: tuple[float, float]
+
+    def own_cell(self, cands: list[np.ndarray], i: int) -> np.ndarray:
+        """Grid points nearer candidate ``i`` than any other candidate."""
+        dist = np.hypot(self.X - cands[i][0], self.Y - cands[i][1])
+        own = np.ones(self.X.shape, bool)
+        for j, o in enumerate(cands):
+            if j != i:
+                own &= dist < np.hypot(self.X - o[0], self.Y - o[1])
+        return own
+
+
+def _deficit_map(volume: Volume, chambers: list[Insert], face: np.ndarray, rot: np.ndarray, level: float, body_r: float,
+                 sigma: float, pix: float) -> _DeficitMap:
+    """:class:`_DeficitMap` over the central half of the chambers' length (template z)."""
+    fwhm = _FWHM_PER_SIGMA * sigma
+    z_lo = max(float(c.centre_mm[2]) - float(c.length_mm) / 4 for c in chambers)
+    z_hi = min(float(c.centre_mm[2]) + float(c.length_mm) / 4 for c in chambers)
+    if z_hi < z_lo:
+        z_lo = z_hi = float(np.mean([c.centre_mm[2] for c in chambers]))
+    p = min(0.25, pix / 2)
+    half = body_r + 2 * fwhm + 2.0
+    xs = np.arange(-half, half + p / 2, p)
+    X, Y = np.meshgrid(xs, xs)
+    A = _slab_mean(volume, face, rot, np.arange(z_lo, z_hi + 1e-9, max(0.5, pix)), X, Y)
+    D = np.where(np.isfinite(A), blurred_disc(np.hypot(X, Y), level, body_r, sigma) - A, 0.0)
+    return _DeficitMap(X, Y, D, p, (z_lo, z_hi))
+
+
+def _chamber_candidates(dm: _DeficitMap, n: int, r_out: float, fwhm: float, level: float, body_r: float) -> list[np.ndarray]:
+    """Up to ``n`` chamber axes (template x, y): maxima of the smoothed deficit inside the body,
+    at least two cold radii apart, each refined by an iterated deficit centroid in a window of
+    the chamber's size (within its own cell)."""
+    X, Y, p = dm.X, dm.Y, dm.pixel_mm
+    Ds = ndimage.gaussian_filter(dm.D, max(r_out / 2, fwhm / 2) / p, mode="constant")
+    avail = np.hypot(X, Y) <= body_r
+    cands: list[np.ndarray] = []
+    for _ in range(n):
+        m = np.where(avail, Ds, -np.inf)
+        k = np.unravel_index(int(np.argmax(m)), m.shape)
+        if not m[k] > 0.1 * level:
+            break
+        cands.append(np.array([X[k], Y[k]]))
+        avail &= np.hypot(X - X[k], Y - Y[k]) > 2 * r_out
+    win = r_out + 0.5 * fwhm
+    for _ in range(30):
+        moved = 0.0
+        for i, c in enumerate(cands):
+            dist = np.hypot(X - c[0], Y - c[1])
+            w = np.clip((win - dist) / p + 0.5, 0.0, 1.0) * dm.own_cell(cands, i) * dm.D
+            tot = float(w.sum())
+            if tot <= 0:
+                continue
+            new = np.array([float((w * X).sum()) / tot, float((w * Y).sum()) / tot])
+            moved = max(moved, float(np.linalg.norm(new - c)))
+            cands[i] = new
+        if moved < 0.002:
+            break
+    return cands
+
+
+def _chamber_voi_centre(face: np.ndarray, rot: np.ndarray, ch: Insert, xy: np.ndarray, end: float | None) -> tuple[np.ndarray, tuple[float, float] | None]:
+    """World centre of a chamber's spill-over VOI (half-way along its interior from the end
+    found, or at the template's depth) and the interior's template z range (None: end not seen)."""
+    if end is None:
+        z_mid, inner = float(ch.centre_mm[2]), None
+    else:
+        z0 = end + ch.wall_mm
+        inner = (z0, z0 + float(ch.length_mm))
+        z_mid = z0 + float(ch.length_mm) / 2
+    return face + rot @ np.array([xy[0], xy[1], z_mid]), inner
+
+
+def _identify_chambers(template: Template, found: list[dict[str, Any]], level: float) -> tuple[tuple[int, ...], str, list[str]]:
+    """Which template chamber each found one is: (found i -> chamber index, rule, warnings).
+
+    By the template's arrangement when every found chamber lies within its inner radius of its
+    template place (the nearest assignment); otherwise, for one air and one water chamber, by
+    level (the colder is air) when the levels differ by at least
+    :data:`CHAMBER_LEVEL_DIFFERENCE` of the uniform level and 3 standard errors; otherwise
+    undetermined (the nearest assignment, flagged).
+    """
+    import itertools
+
+    chambers = template.chambers
+    tpl_xy = [np.asarray(c.centre_mm[:2], float) for c in chambers]
+    n = min(len(found), len(chambers))
+    best: tuple[float, tuple[int, ...]] = (np.inf, tuple(range(n)))
+    for perm in itertools.permutations(range(len(chambers)), n):
+        cost = sum(float(np.linalg.norm(found[i]["xy"] - tpl_xy[perm[i]])) for i in range(n))
+        if cost < best[0]:
+            best = (cost, perm)
+    perm = best[1]
+    offsets = [float(np.linalg.norm(found[i]["xy"] - tpl_xy[perm[i]])) for i in range(n)]
+    if all(offsets[i] <= chambers[perm[i]].diameter_mm / 2 for i in range(n)):
+        return perm, "arrangement", []
+    where = f"the cold chambers are not where template {template.name} places them relative to the rods ({', '.join(f'{o:.1f}' for o in offsets)} mm away)"
+    air = [k for k, c in enumerate(chambers) if _is_air(c)]
+    if n == len(chambers) == 2 and len(air) == 1 and all(f["mean"] is not None for f in found[:2]):
+        diff = found[0]["mean"] - found[1]["mean"]
+        threshold = max(CHAMBER_LEVEL_DIFFERENCE * level, 3.0 * math.hypot(found[0]["se"], found[1]["se"]))
+        if abs(diff) >= threshold:
+            a, w = air[0], 1 - air[0]
+            colder, warmer = sorted((found[0]["mean"], found[1]["mean"]))
+            return ((a, w) if diff < 0 else (w, a)), "level", [
+                f"WARNING: {where}; water and air were told apart by their level: the colder one ({colder / level:.3f} of the "
+                f"uniform level against {warmer / level:.3f}) is taken as {chambers[a].name} (air holds no water for activity and "
+                "scatter to reach; common practice)"
+            ]
+        return perm, "undetermined", [
+            f"WARNING: {where} and their levels agree within {abs(diff) / level:.3f} of the uniform level (less than "
+            f"{threshold / level:.3f}): water cannot be told from air; the labels follow the nearest template place and the "
+            "spill-over verdicts are withheld"
+        ]
+    return perm, "undetermined", [
+        f"WARNING: {where} and cannot be told apart by level; the labels follow the nearest template place and the spill-over "
+        "verdicts are withheld"
+    ]
+
+
 def _find_chambers(
     volume: Volume,
     template: Template,
@@ -1034,196 +1163,89 @@ def _find_chambers(
     voi_mm: tuple[float, float] | None,
     noise_sd: float,
     overrides: dict[str, np.ndarray],
-    where: str,
 ) -> tuple[list[ChamberFinding], str, list[str]]:
     """The cold chambers as the image shows them, identified as the template's chambers.
 
     Returns (findings in template order, identity rule used, warnings); see
     :func:`locate_small_animal`, step 6.
     """
-    import itertools
-
     from .rois import cylinder_weights
 
     chambers = template.chambers
-    warnings: list[str] = []
-    predicted = {c.name: rot @ np.asarray(c.centre_mm, float) + face for c in chambers}
+    tpl_xy = [np.asarray(c.centre_mm[:2], float) for c in chambers]
     if not chambers:
-        return [], "template", warnings
+        return [], "template", []
     if all(c.name in overrides for c in chambers):
         out = []
-        for c in chambers:
+        for c, txy in zip(chambers, tpl_xy):
             xy = (overrides[c.name] - face) @ rot[:, :2]
-            out.append(ChamberFinding(c.name, True, overrides[c.name].copy(), xy, float(np.linalg.norm(xy - np.asarray(c.centre_mm[:2], float)))))
-        return out, "override", warnings
+            out.append(ChamberFinding(c.name, True, overrides[c.name].copy(), xy, float(np.linalg.norm(xy - txy))))
+        return out, "override", []
     fwhm = _FWHM_PER_SIGMA * sigma
     r_out = max(c.outer_diameter_mm for c in chambers) / 2
     r_in = min(c.diameter_mm for c in chambers) / 2
-    z_lo = max(float(c.centre_mm[2]) - float(c.length_mm) / 4 for c in chambers)
-    z_hi = min(float(c.centre_mm[2]) + float(c.length_mm) / 4 for c in chambers)
-    if z_hi < z_lo:
-        z_lo = z_hi = float(np.mean([c.centre_mm[2] for c in chambers]))
-    zs = np.arange(z_lo, z_hi + 1e-9, max(0.5, pix))
-    p = min(0.25, pix / 2)
-    half = body_r + 2 * fwhm + 2.0
-    xs = np.arange(-half, half + p / 2, p)
-    X, Y = np.meshgrid(xs, xs)
-    A = _slab_mean(volume, face, rot, zs, X, Y)
-    rho = np.hypot(X, Y)
-    D = np.where(np.isfinite(A), blurred_disc(rho, level, body_r, sigma) - A, 0.0)
-    Ds = ndimage.gaussian_filter(D, max(r_out / 2, fwhm / 2) / p, mode="constant")
-    avail = rho <= body_r
-    cands: list[np.ndarray] = []
-    for _ in chambers:
-        if not avail.any():
-            break
-        m = np.where(avail, Ds, -np.inf)
-        k = np.unravel_index(int(np.argmax(m)), m.shape)
-        if not m[k] > 0.1 * level:
-            break
-        cands.append(np.array([X[k], Y[k]]))
-        avail &= np.hypot(X - X[k], Y - Y[k]) > 2 * r_out
-    # refine: iterated deficit centroid in a window of the chamber's size, each in its own cell
-    win = r_out + 0.5 * fwhm
-    for _ in range(30):
-        moved = 0.0
-        for i, c in enumerate(cands):
-            dist = np.hypot(X - c[0], Y - c[1])
-            own = np.ones(X.shape, bool)
-            for j, o in enumerate(cands):
-                if j != i:
-                    own &= dist < np.hypot(X - o[0], Y - o[1])
-            w = np.clip((win - dist) / p + 0.5, 0.0, 1.0) * own * D
-            tot = float(w.sum())
-            if tot <= 0:
-                continue
-            new = np.array([float((w * X).sum()) / tot, float((w * Y).sum()) / tot])
-            moved = max(moved, float(np.linalg.norm(new - c)))
-            cands[i] = new
-        if moved < 0.002:
-            break
-    # size, depth and end of each candidate
-    L = min(float(c.length_mm) for c in chambers)
-    voi_d, voi_len = voi_mm if voi_mm is not None else (r_in, L / 2)
+    dm = _deficit_map(volume, chambers, face, rot, level, body_r, sigma, pix)
+    cands = _chamber_candidates(dm, len(chambers), r_out, fwhm, level, body_r)
+    voi_d, voi_len = voi_mm if voi_mm is not None else (r_in, min(float(c.length_mm) for c in chambers) / 2)
+    # noise of a VOI mean: the uniform region's voxel SD (an upper bound for a cold region) over
+    # the number of resolution cells in the VOI
+    se = noise_sd / math.sqrt(max(1.0, math.pi * (voi_d / 2) ** 2 * voi_len / max(fwhm, pix) ** 3))
     found: list[dict[str, Any]] = []
     for i, c in enumerate(cands):
-        dist = np.hypot(X - c[0], Y - c[1])
-        own = np.ones(X.shape, bool)
-        for j, o in enumerate(cands):
-            if j != i:
-                own &= dist < np.hypot(X - o[0], Y - o[1])
-        area = float(D[(dist <= r_out + 2 * fwhm) & own].sum()) * p * p / level
-        radius = math.sqrt(max(area, 0.0) / math.pi)
-        depth = float(D[dist <= max(r_out / 3, p)].mean()) / level
-        end = _chamber_end(volume, face, rot, c, level, body_r, sigma, r_in, z_lo, z_hi, _template_free_span(template), p)
-        found.append(dict(xy=c, radius=radius, depth=depth, end=end))
-    # identification: the template's arrangement when the image agrees, else the level
-    tpl_xy = [np.asarray(c.centre_mm[:2], float) for c in chambers]
-    n = min(len(found), len(chambers))
-    best: tuple[float, tuple[int, ...]] = (np.inf, ())
-    for perm in itertools.permutations(range(len(chambers)), n):  # found i -> chamber perm[i]
-        cost = sum(float(np.linalg.norm(found[i]["xy"] - tpl_xy[perm[i]])) for i in range(n))
-        if cost < best[0]:
-            best = (cost, perm)
-    perm = best[1]
-    offsets = [float(np.linalg.norm(found[i]["xy"] - tpl_xy[perm[i]])) for i in range(n)]
-    agree = all(offsets[i] <= chambers[perm[i]].diameter_mm / 2 for i in range(n))
-
-    def voi_centre(ch: Insert, f: dict[str, Any]) -> tuple[np.ndarray, tuple[float, float] | None]:
-        if f["end"] is None:
-            z_mid, inner = float(ch.centre_mm[2]), None
-        else:
-            z0 = f["end"] + ch.wall_mm
-            inner = (z0, z0 + float(ch.length_mm))
-            z_mid = z0 + float(ch.length_mm) / 2
-        return face + rot @ np.array([f["xy"][0], f["xy"][1], z_mid]), inner
-
-    for i, f in enumerate(found):
-        centre, _ = voi_centre(chambers[perm[i]] if i < n else chambers[0], f)
+        dist = np.hypot(dm.X - c[0], dm.Y - c[1])
+        area = float(dm.D[(dist <= r_out + 2 * fwhm) & dm.own_cell(cands, i)].sum()) * dm.pixel_mm**2 / level
+        end = _chamber_end(volume, face, rot, c, level, body_r, sigma, r_in, *dm.z_range_mm, _template_free_span(template), dm.pixel_mm)
+        centre, _ = _chamber_voi_centre(face, rot, chambers[0], c, end)
         try:
             roi = cylinder_weights(volume, centre, rot[:, 2], voi_d, voi_len)
-            vals = volume.data[roi.box][roi.weights >= 0.5].astype(np.float64)
+            vals = volume.data[roi.box][roi.weights >= 0.5]
         except PhantomNotFound:
             vals = np.array([])
-        f["mean"] = float(vals.mean()) if vals.size else None
-        # noise of the mean: the uniform region's voxel SD (an upper bound for a cold region)
-        # over the number of resolution cells in the VOI
-        n_eff = max(1.0, math.pi * (voi_d / 2) ** 2 * voi_len / max(fwhm, pix) ** 3)
-        f["se"] = noise_sd / math.sqrt(n_eff)
-    identity = "arrangement"
-    air = [k for k, c in enumerate(chambers) if _is_air(c)]
-    detail = ", ".join(f"{offsets[i]:.1f}" for i in range(n))
-    if not agree and n == len(chambers) == 2 and len(air) == 1 and all(f["mean"] is not None for f in found[:2]):
-        diff = found[0]["mean"] - found[1]["mean"]
-        se = math.hypot(found[0]["se"], found[1]["se"])
-        threshold = max(CHAMBER_LEVEL_DIFFERENCE * level, 3.0 * se)
-        if abs(diff) >= threshold:
-            colder = 0 if diff < 0 else 1
-            a, w_ = air[0], 1 - air[0]
-            perm = (a, w_) if colder == 0 else (w_, a)
-            identity = "level"
-            warnings.append(
-                f"WARNING: the cold chambers are not where template {template.name} places them relative to the rods "
-                f"({detail} mm away); water and air were told apart by their level: the colder one "
-                f"({min(found[0]['mean'], found[1]['mean']) / level:.3f} of the uniform level against "
-                f"{max(found[0]['mean'], found[1]['mean']) / level:.3f}) is taken as {chambers[a].name} "
-                "(air holds no water for activity and scatter to reach; common practice)"
-            )
-        else:
-            identity = "undetermined"
-            warnings.append(
-                f"WARNING: the cold chambers are not where template {template.name} places them relative to the rods "
-                f"({detail} mm away) and their levels agree within {abs(diff) / level:.3f} of the uniform level "
-                f"(less than {threshold / level:.3f}): water cannot be told from air; the labels follow the nearest "
-                "template place and the spill-over verdicts are withheld"
-            )
-    elif not agree and n:
-        identity = "undetermined"
-        warnings.append(
-            f"WARNING: the cold chambers are not where template {template.name} places them relative to the rods "
-            f"({detail} mm away) and cannot be told apart by level; the labels follow the nearest template place "
-            "and the spill-over verdicts are withheld"
-        )
+        found.append(dict(xy=c, radius=math.sqrt(max(area, 0.0) / math.pi), depth=float(dm.D[dist <= max(r_out / 3, dm.pixel_mm)].mean()) / level,
+                          end=end, mean=float(vals.mean()) if vals.size else None, se=se))
+    perm, identity, warnings = _identify_chambers(template, found, level)
+    if not found:
+        identity = "template"
+    by_chamber = {perm[i]: found[i] for i in range(min(len(found), len(chambers)))}
     out: list[ChamberFinding] = []
-    by_chamber = {perm[i]: found[i] for i in range(n)}
     for k, ch in enumerate(chambers):
         if ch.name in overrides:
             xy = (overrides[ch.name] - face) @ rot[:, :2]
             out.append(ChamberFinding(ch.name, True, overrides[ch.name].copy(), xy, float(np.linalg.norm(xy - tpl_xy[k]))))
             continue
         f = by_chamber.get(k)
-        ok = (
-            f is not None and f["depth"] >= 0.5 and 0.6 * ch.outer_diameter_mm / 2 <= f["radius"] <= 1.5 * ch.outer_diameter_mm / 2
-        )
-        if not ok:
+        r_cold = ch.outer_diameter_mm / 2
+        if f is None or f["depth"] < 0.5 or not 0.6 * r_cold <= f["radius"] <= 1.5 * r_cold:
             why = "no cold cylinder of its size" if f is None else (
                 f"the coldest place left ({f['depth']:.2f} of the level deep, {2 * f['radius']:.1f} mm across) does not look like it")
-            warnings.append(
-                f"WARNING: cold chamber {ch.name} was not found in the image ({why}); its VOI sits where the template places "
-                "it and is not confirmed"
-            )
-            out.append(ChamberFinding(ch.name, False, predicted[ch.name], tpl_xy[k].copy(), 0.0,
+            warnings.append(f"WARNING: cold chamber {ch.name} was not found in the image ({why}); its VOI sits where the template "
+                            "places it and is not confirmed")
+            out.append(ChamberFinding(ch.name, False, rot @ np.asarray(ch.centre_mm, float) + face, tpl_xy[k].copy(), 0.0,
                                       None if f is None else f["radius"], None if f is None else f["depth"]))
             continue
-        centre, inner = voi_centre(ch, f)
+        centre, inner = _chamber_voi_centre(face, rot, ch, f["xy"], f["end"])
         off = float(np.linalg.norm(f["xy"] - tpl_xy[k]))
         if identity == "arrangement" and off > 1.0:
             warnings.append(f"cold chamber {ch.name} found {off:.1f} mm from where template {template.name} places it; its VOI follows the image")
         if f["end"] is None:
             warnings.append(f"the end of cold chamber {ch.name} towards the rods was not seen; its VOI sits at the template's depth")
         out.append(ChamberFinding(ch.name, True, centre, f["xy"].copy(), off, f["radius"], f["depth"], f["end"], inner, f["mean"]))
-    if identity == "arrangement" and len(air) == 1 and len(chambers) == 2:
-        a = out[air[0]]
-        w_ = out[1 - air[0]]
-        if a.found and w_.found and a.mean_bq_ml is not None and w_.mean_bq_ml is not None:
-            se = math.hypot(found[0]["se"], found[1]["se"]) if len(found) >= 2 else 0.0
-            if a.mean_bq_ml - w_.mean_bq_ml > max(CHAMBER_LEVEL_DIFFERENCE * level, 3.0 * se):
-                warnings.append(
-                    f"chamber {a.name} (air by the template's arrangement) reads warmer than {w_.name} "
-                    f"({a.mean_bq_ml / level:.3f} against {w_.mean_bq_ml / level:.3f} of the uniform level); "
-                    "check which chamber holds water"
-                )
+    warnings += _air_warmer_warning(template, out, identity, level, se)
     return out, identity, warnings
+
+
+def _air_warmer_warning(template: Template, out: list[ChamberFinding], identity: str, level: float, se: float) -> list[str]:
+    """A warning when the chamber the arrangement calls air reads clearly warmer than water."""
+    air = [k for k, c in enumerate(template.chambers) if _is_air(c)]
+    if identity != "arrangement" or len(air) != 1 or len(out) != 2:
+        return []
+    a, w = out[air[0]], out[1 - air[0]]
+    if not (a.found and w.found and a.mean_bq_ml is not None and w.mean_bq_ml is not None):
+        return []
+    if a.mean_bq_ml - w.mean_bq_ml <= max(CHAMBER_LEVEL_DIFFERENCE * level, 3.0 * math.sqrt(2.0) * se):
+        return []
+    return [f"chamber {a.name} (air by the template's arrangement) reads warmer than {w.name} ({a.mean_bq_ml / level:.3f} against "
+            f"{w.mean_bq_ml / level:.3f} of the uniform level); check which chamber holds water"]
 
 
 #: Smallest difference of the two chambers' levels (fraction of the uniform level) that tells
@@ -1237,8 +1259,10 @@ def _chamber_end(volume: Volume, face: np.ndarray, rot: np.ndarray, xy: np.ndarr
     """Template-frame z where the deficit along a chamber's axis falls to half its plateau
     (the cold region's end towards the rods), or None."""
     zs = np.arange(max(0.5, z_free - 10.0), z_hi + 1e-9, p)
-    rr = np.linspace(0.0, max(r_in / 2, p), 4)
-    th = np.deg2rad(np.arange(0.0, 360.0, 30.0))
+    # over the chamber's interior: the deficit's axial shape is the same at every radius inside
+    # (a Gaussian blur is separable), and the wider disc averages more noise
+    rr = np.sqrt(np.linspace(0.0, max(r_in, p) ** 2, 6))
+    th = np.deg2rad(np.arange(0.0, 360.0, 20.0))
     R, T = np.meshgrid(rr, th, indexing="ij")
     X, Y = xy[0] + R * np.cos(T), xy[1] + R * np.sin(T)
     model = blurred_disc(np.hypot(X, Y), level, body_r, sigma)
@@ -1260,7 +1284,33 @@ def _chamber_end(volume: Volume, face: np.ndarray, rot: np.ndarray, xy: np.ndarr
     if i + 1 >= len(zs):
         return None
     d0, d1 = deficit[i], deficit[i + 1]
-    return float(zs[i] + (half - d0) / (d1 - d0) * (zs[i + 1] - zs[i])) if d1 != d0 else float(zs[i])
+    z0 = float(zs[i] + (half - d0) / (d1 - d0) * (zs[i + 1] - zs[i])) if d1 != d0 else float(zs[i])
+    return _fit_step(zs, deficit, z0, plateau, sigma, z_lo)
+
+
+def _fit_step(zs: np.ndarray, values: np.ndarray, z0: float, plateau: float, sigma: float, z_hi: float) -> float:
+    """Refine the position ``z0`` of a blurred step (0 below, ``plateau`` above) by a least-
+    squares fit of ``plateau * Phi((z - z_end) / sigma)`` (the end of a long cylinder blurred by
+    a Gaussian of ``sigma``, along its axis) over ``z0 - 3 sigma - 1`` to ``z_hi``; ``z0`` when
+    the fit fails or moves it by more than ``2 sigma + 1`` mm."""
+    from scipy.optimize import least_squares
+    from scipy.special import ndtr
+
+    s = max(float(sigma), 0.05)
+    sel = (zs >= z0 - 3 * s - 1.0) & (zs <= z_hi)
+    if sel.sum() < 4:
+        return z0
+    z, y = zs[sel], values[sel]
+
+    def resid(q: np.ndarray) -> np.ndarray:
+        return (q[1] * ndtr((z - q[0]) / s) - y) / max(plateau, 1e-12)
+
+    try:
+        fit = least_squares(resid, x0=[z0, plateau])
+    except (ValueError, np.linalg.LinAlgError):  # pragma: no cover - degenerate profile
+        return z0
+    z_end = float(fit.x[0])
+    return z_end if fit.success and abs(z_end - z0) <= 2 * s + 1.0 else z0
 
 
 def _rod_far_end(volume: Volume, template: Template, face: np.ndarray, rot: np.ndarray, solid_len: float, pix: float) -> float | None:
@@ -1301,9 +1351,11 @@ def _axial_profile(volume: Volume, point: np.ndarray, d: np.ndarray, s: np.ndarr
     return np.nan_to_num(vals, nan=0.0).mean(axis=(1, 2))
 
 
-def _refine_cylinder_axis(volume: Volume, face: np.ndarray, d: np.ndarray, z_from: float, z_to: float, body_r: float, bg: float, where: str) -> tuple[np.ndarray, np.ndarray]:
-    """Line through the centroids of the filled body cross-sections between ``z_from`` and
-    ``z_to`` mm along ``d`` from ``face``; returns (a point on the axis at the face, direction)."""
+def _refine_cylinder_axis(volume: Volume, face: np.ndarray, d: np.ndarray, z_from: float, z_to: float, body_r: float, bg: float, where: str,
+                          fraction: float = 0.5) -> tuple[np.ndarray, np.ndarray]:
+    """Line through the centroids of the filled body cross-sections (above ``fraction`` of
+    ``bg``) between ``z_from`` and ``z_to`` mm along ``d`` from ``face``; returns (a point on
+    the axis at the face, direction)."""
     from .rois import sample_plane
 
     u, v = _orthonormal_basis(d)
@@ -1311,7 +1363,7 @@ def _refine_cylinder_axis(volume: Volume, face: np.ndarray, d: np.ndarray, z_fro
     pts = []
     for z in np.arange(z_from, z_to + 1e-9, max(1.0, pix)):
         plane = sample_plane(volume, face + z * d, u, v, body_r + 4 * pix, pixel_mm=pix)
-        mask = ndimage.binary_fill_holes(np.nan_to_num(plane.values) > 0.5 * bg)
+        mask = ndimage.binary_fill_holes(np.nan_to_num(plane.values) > fraction * bg)
         if mask.sum() < 10:
             continue
         r_idx, c_idx = np.nonzero(mask)

@@ -19,7 +19,7 @@ from scipy import ndimage
 
 from ..errors import PhantomNotFound, TemplateError
 from ..fill import FillRecord
-from ..locate import ORIGINAL_SLICES_MAX_TILT_DEG, Placement, SmallAnimalPlacement, locate_small_animal, sample_world
+from ..locate import ORIGINAL_SLICES_MAX_TILT_DEG, Placement, SmallAnimalPlacement, locate_small_animal
 from ..metrics.nu4 import ratio_with_std, uniformity
 from ..rois import PlaneImage, cylinder_weights, sample_plane
 from ..templates import Template, Vec2
