@@ -319,7 +319,8 @@ def _rod_stack(volume: Volume, pl: Placement, z_range: tuple[float, float], half
     # a tilted phantom: planes perpendicular to its axis, trilinear, at the spacing along the axis
     dz = float(abs(volume.spacing_mm @ np.abs(volume.axes_world @ axis)))
     dz = min(dz, float(np.max(volume.spacing_mm)))
-    zs = np.arange(z0 + dz / 2, z1, dz) if (z1 - z0) > dz else np.array([zmid])
+    n = max(1, int(round((z1 - z0) / dz)))
+    zs = zmid + (np.arange(n) - (n - 1) / 2) * dz  # as many planes as slices would fit, centred
     offs = (zs - zmid)[:, None, None, None] * axis
     values = _spline_samples(volume, nodes[None] + offs)
     avg = values.mean(axis=0)
