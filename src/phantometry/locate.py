@@ -936,15 +936,116 @@ def body_frame_placement(placement: Placement, frame: BodyFrame) -> Placement:
 
 
 # =============================================================================== small animal
+#: Largest angle (degrees) between the phantom axis and the slice axis at which the NU 4 rod
+#: analysis reads the original slices and voxel columns; beyond it, planes are interpolated.
+ORIGINAL_SLICES_MAX_TILT_DEG = 1.0
+
+
+@dataclass
+class ChamberFinding:
+    """One cold chamber of the small-animal phantom as found in the image.
+
+    Attributes
+    ----------
+    name : the template chamber it was identified as.
+    found : the image shows a cold cylinder of about the template's size there.
+    centre_mm : world mm of the centre of the chamber's spill-over VOI (found axis, found end).
+    xy_template_mm : found (x, y) of its axis in the template frame (relative to the rods).
+    offset_mm : distance of the found axis from where the template places it.
+    radius_mm : radius of the cold disc found (wall included), from its deficit integral.
+    depth : deficit at its centre over the uniform level (1: fully cold, blur-free).
+    end_z_mm : template-frame z of the cold region's end towards the rods (outer wall face).
+    inner_z_mm : template-frame z range of the chamber's interior as found.
+    mean_bq_ml : mean in a VOI of spill-over size (the level rule of the identification).
+    """
+
+    name: str
+    found: bool
+    centre_mm: np.ndarray
+    xy_template_mm: np.ndarray
+    offset_mm: float
+    radius_mm: float | None = None
+    depth: float | None = None
+    end_z_mm: float | None = None
+    inner_z_mm: tuple[float, float] | None = None
+    mean_bq_ml: float | None = None
+
+    def as_dict(self) -> dict[str, Any]:
+        def r(v: float | None, n: int = 3) -> float | None:
+            return None if v is None else round(float(v), n)
+
+        return {
+            "name": self.name,
+            "found": self.found,
+            "voi_centre_mm": [round(float(v), 3) for v in self.centre_mm],
+            "axis_xy_template_mm": [round(float(v), 3) for v in self.xy_template_mm],
+            "offset_from_template_mm": r(self.offset_mm),
+            "cold_radius_mm": r(self.radius_mm),
+            "depth": r(self.depth, 4),
+            "end_z_mm": r(self.end_z_mm),
+            "interior_z_mm": None if self.inner_z_mm is None else [r(v) for v in self.inner_z_mm],
+            "mean_bq_ml": r(self.mean_bq_ml, 2),
+        }
+
+
+@dataclass
+class SmallAnimalPlacement(Placement):
+    """Placement of the small-animal phantom with what the image showed beyond the rigid fit.
+
+    The template frame's origin is on the phantom axis at the face between the solid section
+    and the uniform region (found in the image); +z runs into the uniform region.
+
+    Attributes
+    ----------
+    body_radius_mm : inner radius of the phantom found from its edge profile.
+    psf_fwhm_mm : FWHM of the image's point response found from the same edge profile (the
+        blurred-disc model), or a fallback (see ``psf_source``).
+    psf_source : ``body edge`` or ``fallback (...)``.
+    uniform_level_bq_ml : level of the uniform region used to find the cold chambers.
+    chambers : the cold chambers as found, in template order.
+    chamber_identity : how water and air were told apart: ``arrangement`` (the chambers sit
+        where the template has them relative to the rods), ``level`` (the colder one is air),
+        ``undetermined`` (neither: labels follow the nearest template position), ``override``
+        or ``template`` (chambers not searched).
+    rod_section_z_mm : template-frame z range of the rod section found (far end of the rods
+        to the face); None when the rods' far end was not seen.
+    """
+
+    body_radius_mm: float | None = None
+    psf_fwhm_mm: float | None = None
+    psf_source: str = "fallback"
+    uniform_level_bq_ml: float | None = None
+    chambers: list[ChamberFinding] = field(default_factory=list)
+    chamber_identity: str = "template"
+    rod_section_z_mm: tuple[float, float] | None = None
+
+    def chamber(self, name: str) -> ChamberFinding | None:
+        return next((c for c in self.chambers if c.name == name), None)
+
+    def as_dict(self) -> dict[str, Any]:
+        out = super().as_dict()
+        out["small_animal"] = {
+            "body_radius_mm": None if self.body_radius_mm is None else round(self.body_radius_mm, 3),
+            "psf_fwhm_mm": None if self.psf_fwhm_mm is None else round(self.psf_fwhm_mm, 3),
+            "psf_source": self.psf_source,
+            "uniform_level_bq_ml": None if self.uniform_level_bq_ml is None else round(self.uniform_level_bq_ml, 2),
+            "chamber_identity": self.chamber_identity,
+            "chambers": [c.as_dict() for c in self.chambers],
+            "rod_section_z_mm": None if self.rod_section_z_mm is None else [round(float(v), 3) for v in self.rod_section_z_mm],
+        }
+        return out
+
+
 def locate_small_animal(
     volume: Volume,
     template: Template,
     *,
     solid_section: str,
     rod_profile_z_mm: tuple[float, float],
+    spillover_voi_mm: tuple[float, float] | None = None,
     overrides: dict[str, np.ndarray] | None = None,
     where: str | None = None,
-) -> Placement:
+) -> SmallAnimalPlacement:
     """Find a small-animal image-quality phantom (rods, uniform region, cold chambers).
 
     Method (phantometry's own):
@@ -956,10 +1057,23 @@ def locate_small_animal(
        and a line fitted through the centroids (principal component).
     3. Direction and axial position: along the axis, the mean in a disc of 0.8 x the body radius
        drops at both ends of the uniform region; the end followed by hot rods is the solid
-       section. The interface is where the profile crosses halfway between the uniform and the
-       solid-section levels.
+       section (either lying direction). The interface is where the profile crosses halfway
+       between the uniform and the solid-section levels.
     4. Rotation: the slices over the rod profile range are averaged and the angular profile on
        the rod circle is matched (circular cross-correlation) against the rods' widths.
+    5. Point response and body radius: the radial profile of the free part of the uniform
+       region (averaged over angles) is fitted by a uniform disc blurred by a Gaussian
+       (``level * ncx2.cdf(R^2/s^2, 2, r^2/s^2)``, the closed form of the blurred disc).
+    6. Cold chambers, from the image: in the slices through the middle of the chambers, the
+       deficit ``D = blurred body disc - image`` holds only the chambers; its maxima (after a
+       light smoothing) are the chamber axes, refined by an iterated centroid of ``D`` in a
+       window of the chamber's size. A found chamber is a deficit of at least half the level
+       at its centre over a disc of 0.6-1.5 x the template's cold radius. Its end towards the
+       rods is where the deficit along its axis falls to half. Water and air: by the
+       template's arrangement when every chamber lies within its inner radius of its template
+       place; otherwise by level (the colder one is air), with a warning.
+    7. Rod section: the far end of the rods is where the largest rod's axial profile falls to
+       half its plateau.
     """
     where = where or (volume.source or "image")
     overrides = {k: np.asarray(v, float) for k, v in (overrides or {}).items()}
@@ -1014,7 +1128,7 @@ def locate_small_animal(
     # refine the axis on the full-resolution image: centroids of the filled cross-section of the
     # uniform region (rods excluded, chambers filled as holes), fitted by a line
     for _ in range(2):
-        centre, d = _refine_cylinder_axis(volume, centre + s_face_rough * d, d, 2.0, uniform_len - 2.0, body_r, bg, where)
+        centre, d = _refine_cylinder_axis(volume, centre + s_face_rough * d, d, 2.0, uniform_len - 2.0, body_r, bg, where, fraction=0.25)
         s_face_rough = 0.0
         s = np.arange(-10.0, 10.0 + step / 2, step)
         prof_face = _axial_profile(volume, centre, d, s, 0.8 * body_r)
@@ -1056,19 +1170,459 @@ def locate_small_animal(
     ey = -math.sin(theta0) * u + math.cos(theta0) * v
     rot = np.column_stack([ex, ey, d])
     t = face  # template origin: on the axis at the solid/uniform face
-    fits: dict[str, InsertFit] = {}
     warnings: list[str] = []
+    pix = float(np.min(np.abs(volume.spacing_mm)))
+    # ---- point response and body radius from the edge of the free part of the uniform region
+    free_z = _template_free_span(template)
+    mid = 0.5 * free_z
+    edge = _fit_disc_edge(volume, face, rot, np.linspace(mid - 1.5, mid + 1.5, 5), body_r, uniform_level, pix)
+    if edge is not None:
+        level_fit, radius_fit, sigma_fit = edge
+        psf_fwhm, psf_source = _FWHM_PER_SIGMA * sigma_fit, "body edge"
+    else:
+        level_fit, radius_fit = uniform_level, body_r
+        sigma_fit = max(2.0 * float(np.max(np.abs(volume.spacing_mm))), 1.0) / _FWHM_PER_SIGMA
+        psf_fwhm, psf_source = _FWHM_PER_SIGMA * sigma_fit, "fallback (two voxels): the body edge profile could not be fitted"
+    # ---- cold chambers from the image
+    noise_sd = _uniform_noise_sd(volume, face, rot, free_z, radius_fit, psf_fwhm)
+    chambers, identity, ch_warn = _find_chambers(
+        volume, template, face, rot, level_fit, radius_fit, sigma_fit, pix, spillover_voi_mm, noise_sd, overrides
+    )
+    warnings += ch_warn
+    # ---- rod section: the far end of the rods
+    rod_end = _rod_far_end(volume, template, face, rot, solid_len, pix)
+    fits: dict[str, InsertFit] = {}
     for ins in template.inserts:
         pred = rot @ np.asarray(ins.centre_mm, float) + t
         c = overrides.get(ins.name)
-        fits[ins.name] = InsertFit(ins.name, c if c is not None else pred, None, None, None, "override" if c is not None else "template")
+        ch = next((x for x in chambers if x.name == ins.name), None)
+        if c is not None:
+            fits[ins.name] = InsertFit(ins.name, c, None, None, None, "override")
+        elif ch is not None and ch.found:
+            fits[ins.name] = InsertFit(ins.name, ch.centre_mm.copy(), ch.centre_mm.copy(), float(np.linalg.norm(ch.centre_mm - pred)), None, "image")
+        else:
+            fits[ins.name] = InsertFit(ins.name, pred, None, None, None, "template")
     smallest = min(r.diameter_mm for r in rods)
     if float(np.max(np.abs(volume.spacing_mm))) > smallest / 2:
         warnings.append(
             f"voxel size {float(np.max(np.abs(volume.spacing_mm))):.2f} mm is coarse for the {smallest:g} mm rod "
             f"(more than half its diameter); its recovery is measured but poorly sampled"
         )
-    return Placement(template, rot, t, bg, body.noise_sd, fits, score, warnings)
+    return SmallAnimalPlacement(
+        template, rot, t, bg, body.noise_sd, fits, score, warnings,
+        body_radius_mm=radius_fit, psf_fwhm_mm=psf_fwhm, psf_source=psf_source, uniform_level_bq_ml=level_fit,
+        chambers=chambers, chamber_identity=identity,
+        rod_section_z_mm=None if rod_end is None else (rod_end, 0.0),
+    )
+
+
+_FWHM_PER_SIGMA = 2.0 * math.sqrt(2.0 * math.log(2.0))
+
+
+def _template_free_span(template: Template) -> float:
+    """Template-frame z (from the face at z = 0) of the nearest cold-chamber end: the free part
+    of the uniform region runs from 0 to here."""
+    ends = [float(c.centre_mm[2]) - float(c.length_mm) / 2 - c.wall_mm for c in template.chambers]
+    z_hi = template.body.z_range_mm[1]
+    return float(min(ends)) if ends else float(z_hi)
+
+
+def blurred_disc(rho_mm: np.ndarray, level: float, radius_mm: float, sigma_mm: float) -> np.ndarray:
+    """A uniform disc of ``radius_mm`` and value ``level`` blurred by an isotropic 2-D Gaussian
+    of ``sigma_mm``, at distance ``rho_mm`` from its centre: ``level * P(|X| <= R)`` with
+    ``X ~ N(rho, sigma^2 I)``, i.e. ``ncx2.cdf(R^2/s^2, 2, rho^2/s^2)`` (the non-central
+    chi-square distribution of scipy.stats)."""
+    from scipy.special import chndtr  # the non-central chi-square CDF (as scipy.stats.ncx2.cdf)
+
+    s = max(float(sigma_mm), 1e-6)
+    return level * chndtr((radius_mm / s) ** 2, 2, (np.asarray(rho_mm, float) / s) ** 2)
+
+
+def _slab_mean(volume: Volume, origin: np.ndarray, rot: np.ndarray, zs: np.ndarray, X: np.ndarray, Y: np.ndarray) -> np.ndarray:
+    """Mean over template-frame planes ``zs`` of the image at template (X, Y); NaN where no plane
+    has a sample inside the image."""
+    ex, ey, ez = rot[:, 0], rot[:, 1], rot[:, 2]
+    acc = np.zeros(X.shape)
+    n = np.zeros(X.shape)
+    plane = origin + X[..., None] * ex + Y[..., None] * ey
+    for z in np.atleast_1d(zs):  # a loop over planes, not voxels
+        vals = sample_world(volume, plane + float(z) * ez)
+        ok = np.isfinite(vals)
+        acc += np.where(ok, vals, 0.0)
+        n += ok
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(n > 0, acc / np.maximum(n, 1), np.nan)
+
+
+def _fit_disc_edge(volume: Volume, origin: np.ndarray, rot: np.ndarray, zs: np.ndarray, r_guess: float, level_guess: float,
+                   pix: float) -> tuple[float, float, float] | None:
+    """(level, radius, sigma) of the blurred uniform disc that best fits the angle-averaged radial
+    profile of the planes ``zs`` (template frame) around the axis; None when it cannot be fitted."""
+    from scipy.optimize import least_squares
+
+    dr = min(0.25, pix / 2)
+    r = np.arange(max(0.0, r_guess - 8.0), r_guess + 8.0 + dr / 2, dr)
+    th = np.deg2rad(np.arange(0.0, 360.0, 2.0))
+    R, T = np.meshgrid(r, th, indexing="ij")
+    prof_planes = _slab_mean(volume, origin, rot, zs, R * np.cos(T), R * np.sin(T))
+    ok = np.isfinite(prof_planes)
+    keep = ok.mean(axis=1) > 0.5
+    if keep.sum() < 10:
+        return None
+    prof = np.where(ok, prof_planes, 0.0).sum(axis=1)[keep] / ok.sum(axis=1)[keep]
+    rr = r[keep]
+
+    def resid(p: np.ndarray) -> np.ndarray:
+        return (blurred_disc(rr, p[0], p[1], p[2]) - prof) / max(level_guess, 1e-12)
+
+    try:
+        fit = least_squares(resid, x0=[level_guess, r_guess, max(1.0, pix)],
+                            bounds=([0.0, 0.5 * r_guess, 0.05], [np.inf, 1.5 * r_guess, r_guess / 2]))
+    except (ValueError, np.linalg.LinAlgError):  # pragma: no cover - degenerate profile
+        return None
+    level, radius, sigma = (float(x) for x in fit.x)
+    rms = float(np.sqrt(np.mean(fit.fun**2)))
+    if not fit.success or rms > 0.1 or sigma >= 0.49 * r_guess or abs(radius / r_guess - 1) > 0.3 or level <= 0:
+        return None
+    return level, radius, sigma
+
+
+def _uniform_noise_sd(volume: Volume, face: np.ndarray, rot: np.ndarray, free_z: float, body_r: float, fwhm: float) -> float:
+    """Voxel SD in a cylinder in the middle of the free part of the uniform region (0 when it
+    holds fewer than two voxels)."""
+    from .rois import cylinder_weights
+
+    length = max(free_z - 2 * fwhm, min(free_z / 2, 2.0))
+    try:
+        roi = cylinder_weights(volume, face + rot[:, 2] * (free_z / 2), rot[:, 2], 1.5 * max(body_r - fwhm, body_r / 2), length)
+    except PhantomNotFound:
+        return 0.0
+    vals = volume.data[roi.box][roi.weights >= 0.5]
+    return float(vals.std(ddof=1)) if vals.size > 1 else 0.0
+
+
+def _is_air(ins: Insert) -> bool:
+    """A chamber the template says holds air (its name or note has the word ``air``)."""
+    words = f"{ins.name} {ins.note or ''}".lower().replace("_", " ").replace("-", " ").split()
+    return "air" in words
+
+
+@dataclass
+class _DeficitMap:
+    """The cold chambers alone: the blurred body disc minus the image, averaged over the planes
+    through the chambers' middle, on a template-frame grid (X, Y) of ``pixel_mm``."""
+
+    X: np.ndarray
+    Y: np.ndarray
+    D: np.ndarray
+    pixel_mm: float
+    z_range_mm: tuple[float, float]
+
+    def own_cell(self, cands: list[np.ndarray], i: int) -> np.ndarray:
+        """Grid points nearer candidate ``i`` than any other candidate."""
+        dist = np.hypot(self.X - cands[i][0], self.Y - cands[i][1])
+        own = np.ones(self.X.shape, bool)
+        for j, o in enumerate(cands):
+            if j != i:
+                own &= dist < np.hypot(self.X - o[0], self.Y - o[1])
+        return own
+
+
+def _deficit_map(volume: Volume, chambers: list[Insert], face: np.ndarray, rot: np.ndarray, level: float, body_r: float,
+                 sigma: float, pix: float) -> _DeficitMap:
+    """:class:`_DeficitMap` over the central half of the chambers' length (template z)."""
+    fwhm = _FWHM_PER_SIGMA * sigma
+    z_lo = max(float(c.centre_mm[2]) - float(c.length_mm) / 4 for c in chambers)
+    z_hi = min(float(c.centre_mm[2]) + float(c.length_mm) / 4 for c in chambers)
+    if z_hi < z_lo:
+        z_lo = z_hi = float(np.mean([c.centre_mm[2] for c in chambers]))
+    p = min(0.25, pix / 2)
+    half = body_r + 2 * fwhm + 2.0
+    xs = np.arange(-half, half + p / 2, p)
+    X, Y = np.meshgrid(xs, xs)
+    A = _slab_mean(volume, face, rot, np.arange(z_lo, z_hi + 1e-9, max(0.5, pix)), X, Y)
+    D = np.where(np.isfinite(A), blurred_disc(np.hypot(X, Y), level, body_r, sigma) - A, 0.0)
+    return _DeficitMap(X, Y, D, p, (z_lo, z_hi))
+
+
+def _chamber_candidates(dm: _DeficitMap, n: int, r_out: float, fwhm: float, level: float, body_r: float) -> list[np.ndarray]:
+    """Up to ``n`` chamber axes (template x, y): maxima of the smoothed deficit inside the body,
+    at least two cold radii apart, each refined by an iterated deficit centroid in a window of
+    the chamber's size (within its own cell)."""
+    X, Y, p = dm.X, dm.Y, dm.pixel_mm
+    Ds = ndimage.gaussian_filter(dm.D, max(r_out / 2, fwhm / 2) / p, mode="constant")
+    avail = np.hypot(X, Y) <= body_r
+    cands: list[np.ndarray] = []
+    for _ in range(n):
+        m = np.where(avail, Ds, -np.inf)
+        k = np.unravel_index(int(np.argmax(m)), m.shape)
+        if not m[k] > 0.1 * level:
+            break
+        cands.append(np.array([X[k], Y[k]]))
+        avail &= np.hypot(X - X[k], Y - Y[k]) > 2 * r_out
+    win = r_out + 0.5 * fwhm
+    for _ in range(30):
+        moved = 0.0
+        for i, c in enumerate(cands):
+            dist = np.hypot(X - c[0], Y - c[1])
+            w = np.clip((win - dist) / p + 0.5, 0.0, 1.0) * dm.own_cell(cands, i) * dm.D
+            tot = float(w.sum())
+            if tot <= 0:
+                continue
+            new = np.array([float((w * X).sum()) / tot, float((w * Y).sum()) / tot])
+            moved = max(moved, float(np.linalg.norm(new - c)))
+            cands[i] = new
+        if moved < 0.002:
+            break
+    return cands
+
+
+def _chamber_voi_centre(face: np.ndarray, rot: np.ndarray, ch: Insert, xy: np.ndarray, end: float | None) -> tuple[np.ndarray, tuple[float, float] | None]:
+    """World centre of a chamber's spill-over VOI (half-way along its interior from the end
+    found, or at the template's depth) and the interior's template z range (None: end not seen)."""
+    if end is None:
+        z_mid, inner = float(ch.centre_mm[2]), None
+    else:
+        z0 = end + ch.wall_mm
+        inner = (z0, z0 + float(ch.length_mm))
+        z_mid = z0 + float(ch.length_mm) / 2
+    return face + rot @ np.array([xy[0], xy[1], z_mid]), inner
+
+
+def _identify_chambers(template: Template, found: list[dict[str, Any]], level: float) -> tuple[tuple[int, ...], str, list[str]]:
+    """Which template chamber each found one is: (found i -> chamber index, rule, warnings).
+
+    By the template's arrangement when every found chamber lies within its inner radius of its
+    template place (the nearest assignment); otherwise, for one air and one water chamber, by
+    level (the colder is air) when the levels differ by at least
+    :data:`CHAMBER_LEVEL_DIFFERENCE` of the uniform level and 3 standard errors; otherwise
+    undetermined (the nearest assignment, flagged).
+    """
+    import itertools
+
+    chambers = template.chambers
+    tpl_xy = [np.asarray(c.centre_mm[:2], float) for c in chambers]
+    n = min(len(found), len(chambers))
+    best: tuple[float, tuple[int, ...]] = (np.inf, tuple(range(n)))
+    for perm in itertools.permutations(range(len(chambers)), n):
+        cost = sum(float(np.linalg.norm(found[i]["xy"] - tpl_xy[perm[i]])) for i in range(n))
+        if cost < best[0]:
+            best = (cost, perm)
+    perm = best[1]
+    offsets = [float(np.linalg.norm(found[i]["xy"] - tpl_xy[perm[i]])) for i in range(n)]
+    if all(offsets[i] <= chambers[perm[i]].diameter_mm / 2 for i in range(n)):
+        return perm, "arrangement", []
+    where = f"the cold chambers are not where template {template.name} places them relative to the rods ({', '.join(f'{o:.1f}' for o in offsets)} mm away)"
+    air = [k for k, c in enumerate(chambers) if _is_air(c)]
+    if n == len(chambers) == 2 and len(air) == 1 and all(f["mean"] is not None for f in found[:2]):
+        diff = found[0]["mean"] - found[1]["mean"]
+        threshold = max(CHAMBER_LEVEL_DIFFERENCE * level, 3.0 * math.hypot(found[0]["se"], found[1]["se"]))
+        if abs(diff) >= threshold:
+            a, w = air[0], 1 - air[0]
+            colder, warmer = sorted((found[0]["mean"], found[1]["mean"]))
+            return ((a, w) if diff < 0 else (w, a)), "level", [
+                f"WARNING: {where}; water and air were told apart by their level: the colder one ({colder / level:.3f} of the "
+                f"uniform level against {warmer / level:.3f}) is taken as {chambers[a].name} (air holds no water for activity and "
+                "scatter to reach; common practice)"
+            ]
+        return perm, "undetermined", [
+            f"WARNING: {where} and their levels agree within {abs(diff) / level:.3f} of the uniform level (less than "
+            f"{threshold / level:.3f}): water cannot be told from air; the labels follow the nearest template place and the "
+            "spill-over verdicts are withheld"
+        ]
+    return perm, "undetermined", [
+        f"WARNING: {where} and cannot be told apart by level; the labels follow the nearest template place and the spill-over "
+        "verdicts are withheld"
+    ]
+
+
+def _find_chambers(
+    volume: Volume,
+    template: Template,
+    face: np.ndarray,
+    rot: np.ndarray,
+    level: float,
+    body_r: float,
+    sigma: float,
+    pix: float,
+    voi_mm: tuple[float, float] | None,
+    noise_sd: float,
+    overrides: dict[str, np.ndarray],
+) -> tuple[list[ChamberFinding], str, list[str]]:
+    """The cold chambers as the image shows them, identified as the template's chambers.
+
+    Returns (findings in template order, identity rule used, warnings); see
+    :func:`locate_small_animal`, step 6.
+    """
+    from .rois import cylinder_weights
+
+    chambers = template.chambers
+    tpl_xy = [np.asarray(c.centre_mm[:2], float) for c in chambers]
+    if not chambers:
+        return [], "template", []
+    if all(c.name in overrides for c in chambers):
+        out = []
+        for c, txy in zip(chambers, tpl_xy):
+            xy = (overrides[c.name] - face) @ rot[:, :2]
+            out.append(ChamberFinding(c.name, True, overrides[c.name].copy(), xy, float(np.linalg.norm(xy - txy))))
+        return out, "override", []
+    fwhm = _FWHM_PER_SIGMA * sigma
+    r_out = max(c.outer_diameter_mm for c in chambers) / 2
+    r_in = min(c.diameter_mm for c in chambers) / 2
+    dm = _deficit_map(volume, chambers, face, rot, level, body_r, sigma, pix)
+    cands = _chamber_candidates(dm, len(chambers), r_out, fwhm, level, body_r)
+    voi_d, voi_len = voi_mm if voi_mm is not None else (r_in, min(float(c.length_mm) for c in chambers) / 2)
+    # noise of a VOI mean: the uniform region's voxel SD (an upper bound for a cold region) over
+    # the number of resolution cells in the VOI
+    se = noise_sd / math.sqrt(max(1.0, math.pi * (voi_d / 2) ** 2 * voi_len / max(fwhm, pix) ** 3))
+    found: list[dict[str, Any]] = []
+    for i, c in enumerate(cands):
+        dist = np.hypot(dm.X - c[0], dm.Y - c[1])
+        area = float(dm.D[(dist <= r_out + 2 * fwhm) & dm.own_cell(cands, i)].sum()) * dm.pixel_mm**2 / level
+        end = _chamber_end(volume, face, rot, c, level, body_r, sigma, r_in, *dm.z_range_mm, _template_free_span(template), dm.pixel_mm)
+        centre, _ = _chamber_voi_centre(face, rot, chambers[0], c, end)
+        try:
+            roi = cylinder_weights(volume, centre, rot[:, 2], voi_d, voi_len)
+            vals = volume.data[roi.box][roi.weights >= 0.5]
+        except PhantomNotFound:
+            vals = np.array([])
+        found.append(dict(xy=c, radius=math.sqrt(max(area, 0.0) / math.pi), depth=float(dm.D[dist <= max(r_out / 3, dm.pixel_mm)].mean()) / level,
+                          end=end, mean=float(vals.mean()) if vals.size else None, se=se))
+    perm, identity, warnings = _identify_chambers(template, found, level)
+    if not found:
+        identity = "template"
+    by_chamber = {perm[i]: found[i] for i in range(min(len(found), len(chambers)))}
+    out: list[ChamberFinding] = []
+    for k, ch in enumerate(chambers):
+        if ch.name in overrides:
+            xy = (overrides[ch.name] - face) @ rot[:, :2]
+            out.append(ChamberFinding(ch.name, True, overrides[ch.name].copy(), xy, float(np.linalg.norm(xy - tpl_xy[k]))))
+            continue
+        f = by_chamber.get(k)
+        r_cold = ch.outer_diameter_mm / 2
+        if f is None or f["depth"] < 0.5 or not 0.6 * r_cold <= f["radius"] <= 1.5 * r_cold:
+            why = "no cold cylinder of its size" if f is None else (
+                f"the coldest place left ({f['depth']:.2f} of the level deep, {2 * f['radius']:.1f} mm across) does not look like it")
+            warnings.append(f"WARNING: cold chamber {ch.name} was not found in the image ({why}); its VOI sits where the template "
+                            "places it and is not confirmed")
+            out.append(ChamberFinding(ch.name, False, rot @ np.asarray(ch.centre_mm, float) + face, tpl_xy[k].copy(), 0.0,
+                                      None if f is None else f["radius"], None if f is None else f["depth"]))
+            continue
+        centre, inner = _chamber_voi_centre(face, rot, ch, f["xy"], f["end"])
+        off = float(np.linalg.norm(f["xy"] - tpl_xy[k]))
+        if identity == "arrangement" and off > 1.0:
+            warnings.append(f"cold chamber {ch.name} found {off:.1f} mm from where template {template.name} places it; its VOI follows the image")
+        if f["end"] is None:
+            warnings.append(f"the end of cold chamber {ch.name} towards the rods was not seen; its VOI sits at the template's depth")
+        out.append(ChamberFinding(ch.name, True, centre, f["xy"].copy(), off, f["radius"], f["depth"], f["end"], inner, f["mean"]))
+    warnings += _air_warmer_warning(template, out, identity, level, se)
+    return out, identity, warnings
+
+
+def _air_warmer_warning(template: Template, out: list[ChamberFinding], identity: str, level: float, se: float) -> list[str]:
+    """A warning when the chamber the arrangement calls air reads clearly warmer than water."""
+    air = [k for k, c in enumerate(template.chambers) if _is_air(c)]
+    if identity != "arrangement" or len(air) != 1 or len(out) != 2:
+        return []
+    a, w = out[air[0]], out[1 - air[0]]
+    if not (a.found and w.found and a.mean_bq_ml is not None and w.mean_bq_ml is not None):
+        return []
+    if a.mean_bq_ml - w.mean_bq_ml <= max(CHAMBER_LEVEL_DIFFERENCE * level, 3.0 * math.sqrt(2.0) * se):
+        return []
+    return [f"chamber {a.name} (air by the template's arrangement) reads warmer than {w.name} ({a.mean_bq_ml / level:.3f} against "
+            f"{w.mean_bq_ml / level:.3f} of the uniform level); check which chamber holds water"]
+
+
+#: Smallest difference of the two chambers' levels (fraction of the uniform level) that tells
+#: water from air when the arrangement does not (phantometry's choice: published NU 4 results
+#: differ by a few hundredths between water and air).
+CHAMBER_LEVEL_DIFFERENCE = 0.01
+
+
+def _chamber_end(volume: Volume, face: np.ndarray, rot: np.ndarray, xy: np.ndarray, level: float, body_r: float, sigma: float,
+                 r_in: float, z_lo: float, z_hi: float, z_free: float, p: float) -> float | None:
+    """Template-frame z where the deficit along a chamber's axis falls to half its plateau
+    (the cold region's end towards the rods), or None."""
+    zs = np.arange(max(0.5, z_free - 10.0), z_hi + 1e-9, p)
+    # over the chamber's interior: the deficit's axial shape is the same at every radius inside
+    # (a Gaussian blur is separable), and the wider disc averages more noise
+    rr = np.sqrt(np.linspace(0.0, max(r_in, p) ** 2, 6))
+    th = np.deg2rad(np.arange(0.0, 360.0, 20.0))
+    R, T = np.meshgrid(rr, th, indexing="ij")
+    X, Y = xy[0] + R * np.cos(T), xy[1] + R * np.sin(T)
+    model = blurred_disc(np.hypot(X, Y), level, body_r, sigma)
+    ex, ey, ez = rot[:, 0], rot[:, 1], rot[:, 2]
+    pts = face + zs[:, None, None, None] * ez + X[..., None] * ex + Y[..., None] * ey
+    vals = sample_world(volume, pts)
+    deficit = np.nanmean(np.where(np.isfinite(vals), model - vals, np.nan).reshape(len(zs), -1), axis=1)
+    plateau_sel = zs >= z_lo
+    if not plateau_sel.any() or not np.isfinite(deficit).all():
+        return None
+    plateau = float(np.median(deficit[plateau_sel]))
+    if plateau < 0.3 * level:
+        return None
+    half = 0.5 * plateau
+    below = np.nonzero((deficit < half) & (zs < z_lo))[0]
+    if len(below) == 0:
+        return None
+    i = int(below[-1])  # the last point below half before the plateau
+    if i + 1 >= len(zs):
+        return None
+    d0, d1 = deficit[i], deficit[i + 1]
+    z0 = float(zs[i] + (half - d0) / (d1 - d0) * (zs[i + 1] - zs[i])) if d1 != d0 else float(zs[i])
+    return _fit_step(zs, deficit, z0, plateau, sigma, z_lo)
+
+
+def _fit_step(zs: np.ndarray, values: np.ndarray, z0: float, plateau: float, sigma: float, z_hi: float) -> float:
+    """Refine the position ``z0`` of a blurred step (0 below, ``plateau`` above) by a least-
+    squares fit of ``plateau * Phi((z - z_end) / sigma)`` (the end of a long cylinder blurred by
+    a Gaussian of ``sigma``, along its axis) over ``z0 - 3 sigma - 1`` to ``z_hi``; ``z0`` when
+    the fit fails or moves it by more than ``2 sigma + 1`` mm."""
+    from scipy.optimize import least_squares
+    from scipy.special import ndtr
+
+    s = max(float(sigma), 0.05)
+    sel = (zs >= z0 - 3 * s - 1.0) & (zs <= z_hi)
+    if sel.sum() < 4:
+        return z0
+    z, y = zs[sel], values[sel]
+
+    def resid(q: np.ndarray) -> np.ndarray:
+        return (q[1] * ndtr((z - q[0]) / s) - y) / max(plateau, 1e-12)
+
+    try:
+        fit = least_squares(resid, x0=[z0, plateau])
+    except (ValueError, np.linalg.LinAlgError):  # pragma: no cover - degenerate profile
+        return z0
+    z_end = float(fit.x[0])
+    return z_end if fit.success and abs(z_end - z0) <= 2 * s + 1.0 else z0
+
+
+def _rod_far_end(volume: Volume, template: Template, face: np.ndarray, rot: np.ndarray, solid_len: float, pix: float) -> float | None:
+    """Template-frame z of the rods' far end (where the largest rod's axial profile falls to half
+    its plateau), or None."""
+    rod = max(template.rods, key=lambda r: r.diameter_mm)
+    p = min(0.25, pix / 2)
+    zs = np.arange(-(solid_len + 10.0), -2.0 + 1e-9, p)
+    rr = np.linspace(0.0, rod.diameter_mm / 4, 3)
+    th = np.deg2rad(np.arange(0.0, 360.0, 45.0))
+    R, T = np.meshgrid(rr, th, indexing="ij")
+    X, Y = rod.centre_mm[0] + R * np.cos(T), rod.centre_mm[1] + R * np.sin(T)
+    pts = face + zs[:, None, None, None] * rot[:, 2] + X[..., None] * rot[:, 0] + Y[..., None] * rot[:, 1]
+    prof = np.nan_to_num(sample_world(volume, pts), nan=0.0).reshape(len(zs), -1).mean(axis=1)
+    sel = (zs >= -0.75 * solid_len) & (zs <= -0.25 * solid_len)
+    plateau = float(np.median(prof[sel]))
+    if not plateau > 0:
+        return None
+    half = 0.5 * plateau
+    below = np.nonzero((prof < half) & (zs < -0.5 * solid_len))[0]
+    if len(below) == 0:
+        return None
+    i = int(below[-1])
+    if i + 1 >= len(zs):
+        return None
+    a, b = prof[i], prof[i + 1]
+    return float(zs[i] + (half - a) / (b - a) * (zs[i + 1] - zs[i])) if b != a else float(zs[i])
 
 
 def _axial_profile(volume: Volume, point: np.ndarray, d: np.ndarray, s: np.ndarray, radius: float) -> np.ndarray:
@@ -1082,9 +1636,11 @@ def _axial_profile(volume: Volume, point: np.ndarray, d: np.ndarray, s: np.ndarr
     return np.nan_to_num(vals, nan=0.0).mean(axis=(1, 2))
 
 
-def _refine_cylinder_axis(volume: Volume, face: np.ndarray, d: np.ndarray, z_from: float, z_to: float, body_r: float, bg: float, where: str) -> tuple[np.ndarray, np.ndarray]:
-    """Line through the centroids of the filled body cross-sections between ``z_from`` and
-    ``z_to`` mm along ``d`` from ``face``; returns (a point on the axis at the face, direction)."""
+def _refine_cylinder_axis(volume: Volume, face: np.ndarray, d: np.ndarray, z_from: float, z_to: float, body_r: float, bg: float, where: str,
+                          fraction: float = 0.5) -> tuple[np.ndarray, np.ndarray]:
+    """Line through the centroids of the filled body cross-sections (above ``fraction`` of
+    ``bg``) between ``z_from`` and ``z_to`` mm along ``d`` from ``face``; returns (a point on
+    the axis at the face, direction)."""
     from .rois import sample_plane
 
     u, v = _orthonormal_basis(d)
@@ -1092,7 +1648,7 @@ def _refine_cylinder_axis(volume: Volume, face: np.ndarray, d: np.ndarray, z_fro
     pts = []
     for z in np.arange(z_from, z_to + 1e-9, max(1.0, pix)):
         plane = sample_plane(volume, face + z * d, u, v, body_r + 4 * pix, pixel_mm=pix)
-        mask = ndimage.binary_fill_holes(np.nan_to_num(plane.values) > 0.5 * bg)
+        mask = ndimage.binary_fill_holes(np.nan_to_num(plane.values) > fraction * bg)
         if mask.sum() < 10:
             continue
         r_idx, c_idx = np.nonzero(mask)
@@ -1137,7 +1693,8 @@ def locate_generic(
     concentrations: dict[str, float],
     overrides: dict[str, np.ndarray] | None = None,
     where: str | None = None,
-) -> Placement:
+    edge_z_mm: tuple[float, float] | None = None,
+) -> "GenericPlacement":
     """Find a user-defined phantom (cylindrical or body-shaped, inserts anywhere).
 
     Method (phantometry's own): body and axis as for the small-animal phantom (coarse slice
@@ -1148,9 +1705,16 @@ def locate_generic(
     for both directions; finally each insert with enough signal is refined by a signed centroid
     and a weighted Kabsch fit when at least three inserts qualify.
 
+    Last, for a cylindrical body, the radius and the point-response width are fitted to the
+    angle-averaged radial profile of its edge over ``edge_z_mm`` (template frame; a uniform
+    part, e.g. the reference VOI's range) by the blurred-disc model, and the body's length is
+    taken from where its axial profile crosses half the background.
+
     Parameters
     ----------
     concentrations : dict insert name -> expected Bq/mL (from the fill record).
+    edge_z_mm : template-frame z range where the body edge is fitted (default: 10 mm about the
+        body's middle).
     """
     where = where or (volume.source or "image")
     overrides = {k: np.asarray(v, float) for k, v in (overrides or {}).items()}
@@ -1188,6 +1752,7 @@ def locate_generic(
     if len(high) == 0:
         raise PhantomNotFound(f"{where}: no phantom body found along its axis")
     centre = centre + 0.5 * (s[high[0]] + s[high[-1]]) * d
+    length_found = float(s[high[-1]] - s[high[0]])
     body_centre_t = template.body_centre_mm
     # rotation and direction: correlation on a cylindrical grid
     n_t = 180
@@ -1263,4 +1828,54 @@ def locate_generic(
             fits[ins.name] = InsertFit(ins.name, pred, c, float(np.linalg.norm(c - pred)), snr, "fit")
         else:
             fits[ins.name] = InsertFit(ins.name, pred, None, None, None, "template")
-    return Placement(template, rot, t, bg, body.noise_sd, fits, score, [])
+    # what the image shows of the body: its length along the axis, and for a cylinder its
+    # radius and the point-response width from the blurred edge (reference part of the body)
+    z_mid = float(body_centre_t[2])
+    found_z = (z_mid - length_found / 2, z_mid + length_found / 2)
+    radius = psf = None
+    psf_source = "not measured (the body is not a cylinder)"
+    if body_t.shape == "cylinder":
+        origin = rot @ np.array([*body_t.centre_xy_mm, 0.0]) + t
+        z_lo, z_hi = edge_z_mm if edge_z_mm is not None else (z_mid - 5.0, z_mid + 5.0)
+        edge = _fit_disc_edge(volume, origin, rot, np.linspace(z_lo, z_hi, 5), body_r, bg, float(np.min(np.abs(volume.spacing_mm))))
+        if edge is not None:
+            radius, psf, psf_source = edge[1], _FWHM_PER_SIGMA * edge[2], "body edge"
+        else:
+            psf_source = "not measured (the body edge profile could not be fitted)"
+    return GenericPlacement(template, rot, t, bg, body.noise_sd, fits, score, [], body_radius_mm=radius, psf_fwhm_mm=psf,
+                            psf_source=psf_source, body_z_range_mm=found_z)
+
+
+@dataclass
+class GenericPlacement(Placement):
+    """Placement of a user-defined phantom with what the image showed of its body.
+
+    Attributes
+    ----------
+    body_radius_mm : radius of a cylindrical body from its blurred edge (None otherwise).
+    psf_fwhm_mm : FWHM of the point response from the same edge (None when not measured).
+    psf_source : how the point response was found, or why not.
+    body_z_range_mm : template-frame z range of the body found along the axis (where the
+        mean over a disc of half the body radius crosses half the background level).
+    """
+
+    body_radius_mm: float | None = None
+    psf_fwhm_mm: float | None = None
+    psf_source: str = "not measured"
+    body_z_range_mm: tuple[float, float] | None = None
+
+    def as_dict(self) -> dict[str, Any]:
+        out = super().as_dict()
+        out["body_found"] = {
+            "radius_mm": None if self.body_radius_mm is None else round(self.body_radius_mm, 3),
+            "z_range_mm": None if self.body_z_range_mm is None else [round(float(v), 3) for v in self.body_z_range_mm],
+            "psf_fwhm_mm": None if self.psf_fwhm_mm is None else round(self.psf_fwhm_mm, 3),
+            "psf_source": self.psf_source,
+        }
+        return out
+
+
+def expected_concentration(template: Template, points_template_mm: np.ndarray, concentrations: dict[str, float], background: float) -> np.ndarray:
+    """The concentration a template and fill predict at template-frame points (Bq/mL; point
+    samples of the body and every insert, painted in the synthesizer's order)."""
+    return _template_value_at(template, np.asarray(points_template_mm, float), concentrations, background)

@@ -8,21 +8,31 @@ reference VOI mean. The reference VOI (a cylinder along the axis in a uniform pa
 background mean, its uniformity (%STD) and the activity recovery against the fill record.
 The definitions follow the recovery coefficient and spill-over ratio of the standards
 (NEMA NU 2 / NU 4) applied to the user's geometry.
+
+Every insert is confirmed in the image: its contrast at the placed position (VOI mean over
+the reference mean, minus 1) is compared with the contrast the template and fill record
+predict there at the image's resolution (the template's concentrations blurred by the point
+response found at the body edge, averaged over the same VOI). The ratio is the row
+``contrast_confirmation``; an insert whose ratio is below :data:`CONFIRMATION_MIN` (or whose
+contrast does not stand out of the noise) is not confirmed: a loud warning, and its band
+verdicts are withheld.
 """
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field
+from scipy import ndimage
 
 from ..errors import PhantomNotFound
 from ..fill import FillRecord
-from ..locate import locate_generic
+from ..locate import GenericPlacement, expected_concentration, locate_generic
 from ..metrics.nu4 import uniformity
 from ..rois import RoiWeights, cylinder_weights, sample_plane, sphere_weights
-from ..templates import Template
+from ..templates import Insert, Template
 from ..volume import Volume
 from .base import (
     Analysis,
@@ -30,6 +40,7 @@ from .base import (
     KindOptions,
     Overlay,
     PhantomKind,
+    RoiSetCheck,
     RowBuilder,
     Shape,
     SummaryTable,
@@ -38,10 +49,21 @@ from .base import (
     check_scan_time,
     fmt_number,
 )
+from ._placement import ball_overlap_fraction, disc_overlap_fraction, outside_warning
 
 #: Hot / cold limits: an insert counts as hot above 1.05 x the background, cold below 0.95 x.
 HOT_FACTOR = 1.05
 COLD_FACTOR = 0.95
+#: An insert is confirmed when its measured contrast is at least this fraction of the
+#: contrast predicted at the image's resolution (phantometry's choice: a VOI half off its
+#: insert, or on the wrong insert, falls well below it; a correctly placed one reads near 1).
+CONFIRMATION_MIN = 0.5
+#: ... and stands out of the noise by this many standard errors of the VOI mean.
+CONFIRMATION_SIGMAS = 3.0
+#: Below this expected contrast (fraction of the background) an insert cannot be confirmed by
+#: contrast (e.g. filled like the background); it is then reported as such, not flagged.
+CONFIRMATION_MIN_EXPECTED = 0.05
+FWHM_PER_SIGMA = 2.0 * math.sqrt(2.0 * math.log(2.0))
 
 
 class ReferenceVoi(BaseModel):
@@ -139,7 +161,8 @@ class InsertsKind(PhantomKind):
         out: dict[str, tuple[str, ...]] = {"reference": ("mean_bq_ml", "uniformity_std_pct", "activity_recovery")}
         for ins in template.inserts:
             if ins.fill != "solid":
-                out[ins.name] = ("mean_bq_ml", "rc_mean", "rc_max", "spillover_ratio", "centre_x_mm", "centre_y_mm", "centre_z_mm")
+                out[ins.name] = ("mean_bq_ml", "rc_mean", "rc_max", "spillover_ratio", "contrast_confirmation",
+                                 "centre_x_mm", "centre_y_mm", "centre_z_mm")
         return out
 
     def analyse(
@@ -152,23 +175,28 @@ class InsertsKind(PhantomKind):
         where: str,
         settings: AnalysisSettings,
     ) -> InsertsAnalysis:
-        """Locate a user-defined phantom and measure every insert."""
+        """Locate a user-defined phantom, measure every insert and confirm it in the image."""
         check_scan_time(volume, fill, where)
         at = volume.acquired_at
         a = self.options(template)
         true_bg = fill.background_bq_ml(at)
         conc = insert_concentrations(template, fill, at)
-        pl = locate_generic(volume, template, concentrations=conc, overrides=overrides, where=where)
+        ref = a.reference_voi
+        pl = locate_generic(volume, template, concentrations=conc, overrides=overrides, where=where,
+                            edge_z_mm=(ref.centre_z_mm - ref.length_mm / 2, ref.centre_z_mm + ref.length_mm / 2))
         out = RowBuilder(volume, template)
         add = out.add
-        ref = a.reference_voi
         ref_roi = cylinder_weights(volume, pl.to_world([*template.body.centre_xy_mm, ref.centre_z_mm]), pl.axis_world, ref.diameter_mm, ref.length_mm)
-        uni = uniformity(_values(volume, ref_roi, "reference VOI", where))
+        ref_vals = _values(volume, ref_roi, "reference VOI", where)
+        uni = uniformity(ref_vals)
         add("reference", "mean_bq_ml", uni["mean_bq_ml"], "Bq/mL")
         add("reference", "uniformity_std_pct", uni["uniformity_std_pct"], "%")
         add("reference", "activity_recovery", uni["mean_bq_ml"] / true_bg, "1")
         warnings = list(pl.warnings)
+        checks = [_reference_check(volume, pl, template, ref_roi, a)]
         f = a.insert_voi_fraction
+        sigma = (pl.psf_fwhm_mm or 0.0) / FWHM_PER_SIGMA
+        fwhm_noise = pl.psf_fwhm_mm or 2.0 * float(np.max(volume.spacing_mm))
         for ins in template.inserts:
             if ins.fill == "solid":
                 continue
@@ -180,17 +208,149 @@ class InsertsKind(PhantomKind):
             vals = _values(volume, roi, f"{ins.name} VOI", where)
             mean = float(np.average(volume.data[roi.box], weights=roi.weights))
             add(ins.name, "mean_bq_ml", mean, "Bq/mL")
+            metrics = ["mean_bq_ml"]
             if conc[ins.name] > true_bg * HOT_FACTOR:
                 add(ins.name, "rc_mean", mean / conc[ins.name], "1")
                 add(ins.name, "rc_max", float(vals.max()) / conc[ins.name], "1")
+                metrics += ["rc_mean", "rc_max"]
             elif conc[ins.name] < true_bg * COLD_FACTOR:
                 add(ins.name, "spillover_ratio", mean / uni["mean_bq_ml"], "1")
+                metrics.append("spillover_ratio")
+            # confirmation: measured contrast against the template's expectation at this resolution
+            expected = expected_voi_mean(template, ins, conc, true_bg, sigma, f) / true_bg - 1.0
+            measured = mean / uni["mean_bq_ml"] - 1.0
+            voi_ml = float(roi.weights.sum()) * volume.voxel_volume_ml
+            n_cells = max(1.0, voi_ml * 1000.0 / fwhm_noise**3)
+            se = uni["sd_bq_ml"] / uni["mean_bq_ml"] / math.sqrt(n_cells)
+            if abs(expected) >= CONFIRMATION_MIN_EXPECTED:
+                ratio = measured / expected
+                add(ins.name, "contrast_confirmation", ratio, "1")
+                metrics.append("contrast_confirmation")
+                confirmed = ratio >= CONFIRMATION_MIN and abs(measured) >= CONFIRMATION_SIGMAS * se
+                why = (f"contrast {measured:+.3f} against {expected:+.3f} expected at this resolution "
+                       f"({100 * ratio:.0f} %; confirmed from {100 * CONFIRMATION_MIN:.0f} % and {CONFIRMATION_SIGMAS:g} standard errors, "
+                       f"{se:.3f})")
+            else:
+                ratio, confirmed = None, True
+                why = f"no contrast expected ({expected:+.3f} of the background): not confirmable by contrast"
             for ax_name, val in zip("xyz", c):
                 add(ins.name, f"centre_{ax_name}_mm", val, "mm")
+            chk = _insert_check(pl, ins, f, confirmed, why, [(ins.name, m) for m in metrics])
+            checks.append(chk)
+            if not confirmed:
+                warnings.append(
+                    f"WARNING: insert {ins.name} is not confirmed in the image: {why}; misplaced, another phantom, or not filled "
+                    "as the fill record says? Its band verdicts are withheld"
+                )
+            w = outside_warning(chk, f"insert {ins.name}")
+            if w:
+                warnings.append(w)
+        w = outside_warning(checks[0], "reference VOI")
+        if w:
+            warnings.append(w)
         note = calibration_warning(uni["mean_bq_ml"], true_bg, "reference mean")
         if note:
             warnings.append(note)
-        return InsertsAnalysis(volume, template, fill, pl, out.rows, true_bg, conc, warnings)
+        return InsertsAnalysis(volume, template, fill, pl, out.rows, true_bg, conc, warnings, placement_checks=checks)
+
+
+def expected_voi_mean(template: Template, ins: Insert, conc: dict[str, float], background: float, sigma_mm: float, fraction: float) -> float:
+    """Mean over an insert's VOI (``fraction`` of its size, at its template place) of the
+    concentrations the template and fill predict, blurred by an isotropic Gaussian of
+    ``sigma_mm`` (0: unblurred).
+
+    The template is point-sampled (:func:`phantometry.locate.expected_concentration`) on a
+    template-frame grid around the insert (spacing at most an eighth of its diameter, half
+    the sigma and 1 mm, coarser only to bound the grid at about a million points), blurred
+    (``scipy.ndimage.gaussian_filter``) and averaged over the grid points inside the VOI.
+    """
+    r_out = ins.outer_diameter_mm / 2
+    centre = np.asarray(ins.centre_mm, float)
+    margin = 4.0 * sigma_mm + 1.0
+    if ins.shape == "sphere":
+        half = np.full(3, r_out + margin)
+    else:
+        ax = np.abs(ins.axis_unit)
+        half = ax * (float(ins.length_mm) / 2 + ins.wall_mm) + r_out * np.sqrt(np.clip(1 - ax**2, 0, 1)) + margin
+    h = min(ins.diameter_mm / 8, sigma_mm / 2 if sigma_mm > 0 else np.inf, 1.0)
+    h = max(h, float((np.prod(2 * half) / 1e6) ** (1 / 3)))
+    axes = [np.arange(-hw, hw + h / 2, h) for hw in half]
+    X, Y, Z = np.meshgrid(*axes, indexing="ij")
+    rel = np.stack([X, Y, Z], axis=-1)
+    field = expected_concentration(template, centre + rel, conc, background)
+    if sigma_mm > 0:
+        field = ndimage.gaussian_filter(field, sigma_mm / h, mode="nearest")
+    if ins.shape == "sphere":
+        inside = np.linalg.norm(rel, axis=-1) <= fraction * ins.diameter_mm / 2
+    else:
+        along = rel @ ins.axis_unit
+        radial = np.linalg.norm(rel - along[..., None] * ins.axis_unit, axis=-1)
+        inside = (radial <= fraction * ins.diameter_mm / 2) & (np.abs(along) <= fraction * float(ins.length_mm) / 2)
+    if not inside.any():
+        inside = np.linalg.norm(rel, axis=-1) <= np.linalg.norm(rel, axis=-1).min()
+    return float(field[inside].mean())
+
+
+def _insert_check(pl: GenericPlacement, ins: Insert, fraction: float, confirmed: bool, why: str, rows: list[tuple[str, str]]) -> RoiSetCheck:
+    """Placement quality of one insert's VOI: inside the insert where the image shows it (its
+    refined centre when it stands out of the noise, else where it was placed)."""
+    fit = pl.fits.get(ins.name)
+    placed = pl.insert_centre(ins.name)
+    seen = fit is not None and fit.refined_mm is not None and (fit.signal_to_noise or 0) > 5
+    off = float(np.linalg.norm(placed - fit.refined_mm)) if seen else 0.0
+    r, r_voi = ins.diameter_mm / 2, fraction * ins.diameter_mm / 2
+    if ins.shape == "sphere":
+        inside = ball_overlap_fraction(off, r_voi, r)
+        edge = r - (off + r_voi)
+    else:
+        inside = disc_overlap_fraction(off, r_voi, r)
+        edge = min(r - (off + r_voi), (1 - fraction) * float(ins.length_mm) / 2)
+    where = f"{off:.2f} mm from its centre found in the image" if seen else "its centre not refined in the image (too little signal)"
+    ok = bool(confirmed and inside >= 1 - 1e-6)
+    return RoiSetCheck(ins.name, 1, 1, inside, edge, ok, f"{why}; VOI {where}", rows)
+
+
+def _reference_check(volume: Volume, pl: GenericPlacement, template: Template, roi: RoiWeights, a: Options) -> RoiSetCheck:
+    """Placement quality of the reference VOI: the fraction of its voxels inside the body found
+    in the image (radius and ends along the axis) and outside every insert."""
+    ref = a.reference_voi
+    sel = roi.weights >= 0.5
+    xyz = volume.box_coordinates(roi.box, rotation=pl.rotation, origin_mm=pl.translation_mm, dtype=np.float64)
+    pts = np.stack([x[sel] for x in np.broadcast_arrays(*xyz)], axis=-1)  # template frame
+    body = template.body
+    cx, cy = body.centre_xy_mm
+    z_lo, z_hi = pl.body_z_range_mm or body.z_range_mm
+    radial = np.hypot(pts[:, 0] - cx, pts[:, 1] - cy)
+    if body.shape == "cylinder":
+        r_body = pl.body_radius_mm or body.diameter_mm / 2
+        in_body = radial <= r_body
+        edge = [r_body - ref.diameter_mm / 2]
+    else:
+        in_body = template.body_inside(pts)
+        edge = []
+    in_body &= (pts[:, 2] >= z_lo) & (pts[:, 2] <= z_hi)
+    edge += [ref.centre_z_mm - ref.length_mm / 2 - z_lo, z_hi - (ref.centre_z_mm + ref.length_mm / 2)]
+    free = in_body.copy()
+    hits = []
+    for ins in template.inserts:
+        rel = pts - np.asarray(ins.centre_mm, float)
+        if ins.shape == "sphere":
+            inside = np.linalg.norm(rel, axis=1) <= ins.outer_diameter_mm / 2
+        else:
+            along = rel @ ins.axis_unit
+            rad = np.linalg.norm(rel - along[:, None] * ins.axis_unit, axis=1)
+            inside = (rad <= ins.outer_diameter_mm / 2) & (np.abs(along) <= float(ins.length_mm) / 2 + ins.wall_mm)
+        if inside.any():
+            hits.append(ins.name)
+        free &= ~inside
+    frac = float(free.mean()) if free.size else 0.0
+    found = pl.body_z_range_mm is not None and (body.shape != "cylinder" or pl.body_radius_mm is not None)
+    note = (f"{100 * frac:.1f} % of its voxels inside the body found in the image (z {z_lo:.1f} to {z_hi:.1f} mm"
+            + (f", radius {pl.body_radius_mm:.1f} mm" if pl.body_radius_mm is not None else "") + ") and outside the inserts"
+            + (f"; overlaps {', '.join(hits)}" if hits else ""))
+    rows = [("reference", m) for m in ("mean_bq_ml", "uniformity_std_pct", "activity_recovery")]
+    rows += [(i.name, "spillover_ratio") for i in template.inserts]
+    return RoiSetCheck("reference_voi", 1, 1, frac, min(edge), bool(found and frac >= 1 - 1e-6), note, rows)
 
 
 KIND = InsertsKind()
