@@ -1064,4 +1064,5 @@ def load_dicom(
         sop_instance_uids=tuple(_ascii(e.ds, "SOPInstanceUID") or "" for e in entries),
         frame_of_reference_uid=frames.pop(),
         study_uid=_ascii(first.ds, "StudyInstanceUID"),
+        bq_ml_per_suv=tuple(float(f) for f in quantity.to_bqml) if quantity.units == "GML" else (),
     )
