@@ -108,6 +108,7 @@ _ROLE_STYLE = {
     "search": dict(color="#c03000", lw=1.0, ls="--"),
     "peak": dict(color="#0050c0", lw=1.5, ls="-"),
     "guide": dict(color="#808080", lw=0.8, ls="--"),
+    "outline": dict(color="#e07000", lw=1.2, ls="--"),  # an object's measured outline (e.g. a cylinder's wall)
 }
 _LABEL_BOX = dict(boxstyle="round,pad=0.15", fc="white", ec="none", alpha=0.8)
 
@@ -162,7 +163,8 @@ def overlay_picture(overlay: "Overlay", path: str | os.PathLike) -> Path:
             bar.set_label(view.colorbar, fontsize=8)
             bar.ax.tick_params(labelsize=7)
     fig.suptitle(overlay.title, fontsize=10)
-    return _finish(fig, path, dpi=110, margins=dict(left=0.01, right=0.99, bottom=0.05, top=0.9, wspace=0.04))
+    bars = any(view.colorbar for view in overlay.views)  # colour bars need room for their ticks and label
+    return _finish(fig, path, dpi=110, margins=dict(left=0.01, right=0.93 if bars else 0.99, bottom=0.05, top=0.9, wspace=0.3 if bars else 0.04))
 
 
 def diagnostic_picture(volume: "Volume", path: str | os.PathLike) -> Path:

@@ -103,7 +103,7 @@ def compare_cmd(
             progress=progress,
         )
     print_ranking(result, report)
-    files = "comparison.csv, ranking.csv, summary.json, contrast_noise.png, recovery_curves.png" + (", report.html" if report else "")
+    files = ", ".join(["comparison.csv", "ranking.csv", "summary.json", *(name for name, _ in result.charts)] + (["report.html"] if report else []))
     console.print(f"wrote {out}/ ({files}); {len(result.succeeded)} of {len(result.outcomes)} series measured", markup=False)
     if result.exit_code:
         raise typer.Exit(result.exit_code)

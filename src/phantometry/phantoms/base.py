@@ -60,7 +60,7 @@ class KindOptions(BaseModel):
 
 
 # ===================================================================================== outputs
-ShapeRole = Literal["hot", "cold", "background", "insert", "voi", "peak", "search", "guide"]
+ShapeRole = Literal["hot", "cold", "background", "insert", "voi", "peak", "search", "guide", "outline"]
 
 
 @dataclass
