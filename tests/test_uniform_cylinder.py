@@ -110,6 +110,8 @@ GEOMETRY_CASES = [
     (200.0, 200.0, (5.0, -3.0, 0.0), (12.0, -8.0, 6.0), 3.0, 1.07),
     (330.0, 290.0, (0.0, 4.0, 0.0), (-20.0, 10.0, -5.0), 4.0, 0.93),
     (160.0, 250.0, (-6.0, 0.0, 30.0), (0.0, 25.0, 0.0), 3.0, 1.00),
+    (300.0, 100.0, (0.0, 20.0, 0.0), (0.0, 0.0, 0.0), 3.0, 1.00),  # at the length range's lower limit, 20 degrees tilt
+    (200.0, 173.0, (45.0, 0.0, 0.0), (5.0, 5.0, 5.0), 3.0, 1.00),  # any tilt; L = 0.87 D: equal principal spreads
 ]
 
 
@@ -173,10 +175,10 @@ def test_radial_term_matches_closed_form(diameter, radial_pct, rotation):
 
 
 # ============================================================================ noise
-@pytest.mark.parametrize("cv", [0.05, 0.15])
-def test_voxel_cv_equals_imposed_noise(cv):
+@pytest.mark.parametrize("cv,voxel,fwhm", [(0.05, 3.0, 6.0), (0.15, 3.0, 6.0), (0.25, 4.0, 10.0)])
+def test_voxel_cv_equals_imposed_noise(cv, voxel, fwhm):
     # the synthesizer's background voxel SD is cv x background (phantometry.synth, step 3)
-    res = synthesize(_spec(noise_cv=cv, seed=int(cv * 100)))
+    res = synthesize(_spec(noise_cv=cv, seed=int(cv * 100), voxel_mm=(voxel,) * 3, psf_fwhm_mm=fwhm))
     a = _measure(res)
     assert a.value("uniform_volume", "voxel_cv_pct") == pytest.approx(100 * cv, rel=0.05)
     assert a.value("uniform_volume", "activity_recovery") == pytest.approx(1.0, abs=0.01)

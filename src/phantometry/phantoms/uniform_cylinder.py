@@ -13,9 +13,13 @@ Geometry, from the image (phantometry's own method)
 ---------------------------------------------------
 1. **Body.** :func:`phantometry.locate.find_body` (Otsu threshold on a block-mean copy, the
    largest connected part). Its principal extents must fit the template's size ranges, and
-   its central cross-sections must be round (area / (pi r_max^2) >= :data:`MIN_ROUNDNESS`,
-   r_max the farthest block from the section's centroid): a body phantom's D shape is not.
-2. **Axis and diameter.** Centroids of the body's coarse slices give a first axis. Then, on
+   it must look round: its central image slices (area / (pi r_max^2) >= :data:`MIN_ROUNDNESS`,
+   r_max the farthest block from the slice's centroid), or else two of its three principal
+   extents within 10 % (a short tilted cylinder's slices are clipped by its ends). A body
+   phantom's D shape is neither.
+2. **Axis and diameter.** First guesses of the axis: a line through the centroids of the
+   body's coarse image slices, and the mask's three principal axes; the one whose
+   cross-sections (below) are the most circular is kept. Then, on
    the full image, up to 24 cross-sections perpendicular to the axis (each the mean of three
    planes one voxel apart, kept :data:`SECTION_END_CLEARANCE_MM` from the ends) are sampled
    along :data:`N_RAYS` radial rays; on each ray the edge is where the profile crosses half
@@ -31,10 +35,12 @@ Geometry, from the image (phantometry's own method)
    where the profile crosses half way between the levels 12-25 mm inside and outside it.
    An end that reaches the image's first or last slice (a cylinder longer than the axial
    field of view) is taken at that slice, flagged, and the length is then the visible part.
-4. **Sanity.** Measured sizes outside ``diameter_range_mm`` / ``length_range_mm``, sections
+4. **Sanity.** Measured sizes outside ``diameter_range_mm`` / ``length_range_mm`` (by more
+   than :data:`RANGE_TOLERANCE` of the limit), sections
    that are not circles (RMS departure above :data:`MAX_CIRCLE_RMS_FRACTION` of the radius or
    :data:`MAX_CIRCLE_RMS_MM`), or an interior holding hot or cold structures (more than
-   :data:`MAX_NONUNIFORM_FRACTION` of its coarse blocks beyond +-35 % of the median) are
+   :data:`MAX_NONUNIFORM_FRACTION` of its coarse blocks, averaged over 12 mm, beyond +-35 % of
+   the median or four robust SDs, whichever is larger) are
    refused, naming the template that fits (:func:`phantometry.phantoms.suggest_template`).
    The edge's 10-90 % width, converted to a Gaussian FWHM (x 0.9188), is reported; a margin
    less than twice it warns.
@@ -137,8 +143,14 @@ MIN_ROUNDNESS = 0.85
 #: radius, or :data:`MAX_CIRCLE_RMS_MM`, whichever is larger.
 MAX_CIRCLE_RMS_FRACTION = 0.03
 MAX_CIRCLE_RMS_MM = 3.0
-#: Largest fraction of the interior's coarse blocks beyond +-35 % of its median.
+#: Largest fraction of the interior's (smoothed) coarse blocks departing from its median.
 MAX_NONUNIFORM_FRACTION = 0.02
+#: Smallest departure from the median that counts (fraction), and the averaging length (mm)
+#: of the coarse image for the content check.
+CONTENT_DEPARTURE = 0.35
+CONTENT_SMOOTH_MM = 12.0
+#: Relative tolerance of the size ranges (a cylinder of exactly a limit's size is accepted).
+RANGE_TOLERANCE = 0.02
 #: Monte Carlo draws of the uncertainties of maxima and SDs of slice and sector means.
 MC_DRAWS = 4000
 #: FWHM of a Gaussian per its SD.
@@ -277,29 +289,43 @@ def _roundness(volume: Volume, body) -> float:
     return float(np.median(out)) if out else 0.0
 
 
-def _coarse_axis(volume: Volume, body) -> tuple[np.ndarray, np.ndarray, float, float]:
-    """(centre, axis, rough radius, rough half-length) from the coarse body mask."""
+def _axis_candidates(volume: Volume, body) -> list[tuple[np.ndarray, np.ndarray, float, float]]:
+    """First guesses (centre, axis, radius, half-length) from the coarse body mask: a line
+    through the centroids of the image slices (right for a cylinder along the scanner axis),
+    then the principal axes of the mask (the one of smallest spread is right for a short
+    cylinder, of largest spread for a long one, at any tilt; when the spreads are alike any one
+    may be). The cross-section fit chooses among them."""
     mask = body.mask
+    f = np.asarray(body.factors, float)
+    sp = np.abs(volume.spacing_mm) * f
+    block = float(np.max(sp))
+    pts = volume.index_to_world(np.argwhere(mask) * f + (f - 1) / 2.0)
+    c = pts.mean(axis=0)
+    dirs = []
     counts = mask.sum(axis=(1, 2))
     use = counts >= max(3, 0.8 * counts.max())
-    jj, ii = np.meshgrid(np.arange(mask.shape[1]), np.arange(mask.shape[2]), indexing="ij")
-    cj = (mask * jj).sum(axis=(1, 2))[use] / counts[use]
-    ci = (mask * ii).sum(axis=(1, 2))[use] / counts[use]
-    f = np.asarray(body.factors, float)
-    pts = volume.index_to_world(np.c_[np.nonzero(use)[0], cj, ci] * f + (f - 1) / 2.0)
-    centre = pts.mean(axis=0)
-    d = volume.axes_world[0]
-    if len(pts) >= 3:
-        _, _, vt = np.linalg.svd(pts - centre, full_matrices=False)
-        if abs(vt[0] @ volume.axes_world[0]) > 0.5:
-            d = vt[0]
-    sp = np.abs(volume.spacing_mm) * f
-    radius = math.sqrt(float(np.median(counts[use])) * sp[1] * sp[2] / math.pi) * abs(float(d @ volume.axes_world[0]))
-    blocks = np.argwhere(mask)
-    proj = (volume.index_to_world(blocks * f + (f - 1) / 2.0) - centre) @ d
-    half = 0.5 * float(proj.max() - proj.min() + sp[0])
-    centre = centre + 0.5 * float(proj.max() + proj.min()) * d
-    return centre, d / np.linalg.norm(d), radius, half
+    if use.sum() >= 3:
+        jj, ii = np.meshgrid(np.arange(mask.shape[1]), np.arange(mask.shape[2]), indexing="ij")
+        cj = (mask * jj).sum(axis=(1, 2))[use] / counts[use]
+        ci = (mask * ii).sum(axis=(1, 2))[use] / counts[use]
+        cen = volume.index_to_world(np.c_[np.nonzero(use)[0], cj, ci] * f + (f - 1) / 2.0)
+        _, _, vt = np.linalg.svd(cen - cen.mean(axis=0), full_matrices=False)
+        dirs.append(vt[0] if abs(vt[0] @ volume.axes_world[0]) > 0.5 else volume.axes_world[0])
+    else:
+        dirs.append(volume.axes_world[0])
+    _, evecs = np.linalg.eigh(np.cov((pts - c).T))
+    for d in (evecs[:, 0], evecs[:, 2], evecs[:, 1]):  # the middle one matters when the spreads are alike (L ~ 0.87 D)
+        if all(abs(float(d @ e)) < 0.99 for e in dirs):
+            dirs.append(d)
+    out = []
+    for d in dirs:
+        d = d / np.linalg.norm(d)
+        proj = (pts - c) @ d
+        radial = np.linalg.norm((pts - c) - proj[:, None] * d, axis=1)
+        half = 0.5 * float(np.ptp(proj) + block)
+        radius = float(np.percentile(radial, 99.5)) + 0.5 * block
+        out.append((c + 0.5 * float(proj.max() + proj.min()) * d, d, radius, half))
+    return out
 
 
 def _kasa_circle(u: np.ndarray, v: np.ndarray) -> tuple[float, float, float]:
@@ -322,8 +348,16 @@ class _Sections:
     level: float
 
 
-def _sections(volume: Volume, centre: np.ndarray, axis: np.ndarray, r_guess: float, half_len: float, where: str) -> _Sections:
-    """One round of the cross-section fit (module notes, step 2)."""
+def _two_equal_extents(extent_mm: Sequence[float], tolerance: float = 0.1) -> bool:
+    """Two of the three sorted principal extents agree within ``tolerance`` (a cylinder's do)."""
+    e = sorted(float(v) for v in extent_mm)
+    return min(e[1] / e[0], e[2] / e[1]) <= 1.0 + tolerance if e[0] > 0 else False
+
+
+def _sections(volume: Volume, centre: np.ndarray, axis: np.ndarray, r_guess: float, half_len: float, where: str,
+              not_round: Callable[[str], PhantomNotFound]) -> _Sections:
+    """One round of the cross-section fit (module notes, step 2); ``not_round(reason)`` makes
+    the error for an object without circular cross-sections."""
     d, ex, ey = _frame(axis, volume)
     pix = float(np.min(np.abs(volume.spacing_mm)))
     clear = min(SECTION_END_CLEARANCE_MM, 0.3 * half_len)
@@ -337,11 +371,6 @@ def _sections(volume: Volume, centre: np.ndarray, axis: np.ndarray, r_guess: flo
     pts = (centre + (s[:, None] + offs[None, :])[:, :, None, None, None] * d
            + r[None, None, None, :, None] * dirs[None, None, :, None, :])
     prof = sample_world(volume, pts).mean(axis=1)  # (sections, rays, radii); NaN outside the image
-    near = r <= r_guess + 5.0
-    outside = np.isnan(prof[:, :, near]).any(axis=-1)
-    if outside.mean() > 0.05:
-        raise PhantomNotFound(f"{where}: the cylinder reaches beyond the image's transverse field of view; "
-                              "reconstruct a larger field of view or centre the phantom")
     win_in = (r >= r_guess - 25.0) & (r <= r_guess - 12.0)
     if not win_in.any():
         win_in = r <= r_guess - 12.0
@@ -351,8 +380,15 @@ def _sections(volume: Volume, centre: np.ndarray, axis: np.ndarray, r_guess: flo
     level_out = np.where(np.isfinite(level_out), level_out, 0.0)
     thr = 0.5 * (level_in + level_out)
     i0 = int(np.searchsorted(r, r_guess - 10.0))
-    below = prof[:, :, i0:] < thr[:, None, None]
-    first = np.argmax(below, axis=-1)
+    tail = prof[:, :, i0:]
+    below = tail < thr[:, None, None]
+    first = np.argmax(below | np.isnan(tail), axis=-1)
+    # a ray that leaves the image before its edge: the object reaches the image's border
+    starts = np.isfinite(tail[..., 0])
+    outside = starts & np.isnan(np.take_along_axis(tail, first[..., None], axis=-1)[..., 0])
+    if outside.sum() > 0.05 * max(int(starts.sum()), 1):
+        raise PhantomNotFound(f"{where}: the cylinder reaches beyond the image's transverse field of view; "
+                              "reconstruct a larger field of view or centre the phantom")
     valid = below.any(axis=-1) & (first > 0)
     idx = np.clip(i0 + first, 1, len(r) - 1)
     p1 = np.take_along_axis(prof, idx[..., None] - 1, axis=-1)[..., 0]
@@ -360,7 +396,7 @@ def _sections(volume: Volume, centre: np.ndarray, axis: np.ndarray, r_guess: flo
     with np.errstate(invalid="ignore", divide="ignore"):
         frac = np.clip((p1 - thr[:, None]) / (p1 - p2), 0.0, 1.0)
     r_edge = r[idx - 1] + frac * dr
-    valid &= np.isfinite(r_edge) & ~outside
+    valid &= np.isfinite(r_edge) & starts & ~outside
     centres, radii, rms = [], [], []
     for k in range(len(s)):  # a loop over cross-sections (at most 24), not voxels
         ok = valid[k]
@@ -377,7 +413,7 @@ def _sections(volume: Volume, centre: np.ndarray, axis: np.ndarray, r_guess: flo
         radii.append(rad)
         rms.append(float(np.sqrt(np.mean(res**2))))
     if len(centres) < 3:
-        raise PhantomNotFound(f"{where}: no circular cross-section found along the phantom")
+        raise not_round("no circular cross-section was found along its axis")
     pts_c = np.array(centres)
     c = pts_c.mean(axis=0)
     new_d = d
@@ -500,19 +536,36 @@ def locate_cylinder(volume: Volume, template: Template, options: Options, where:
     body = find_body(volume, where, max(float(np.min(np.abs(volume.spacing_mm))), min(6.0, d_lo / 15)))
     extent = [float(e) for e in body.extent_mm]
     roundness = _roundness(volume, body)
-    is_round = roundness >= MIN_ROUNDNESS
+    # round: the image slices' sections, or else two equal principal extents (a tilted short
+    # cylinder's image slices are clipped by its ends); the circle fits below check again
+    is_round = roundness >= MIN_ROUNDNESS or _two_equal_extents(extent)
     if KIND.size_mismatch(template, extent) is None:
         raise _not_a_cylinder(where, f"its size is outside the template's ranges (diameter {d_lo:g}-{d_hi:g} mm, length "
                                      f"{options.length_range_mm[0]:g}-{options.length_range_mm[1]:g} mm)", extent, template, is_round)
     if not is_round:
         raise _not_a_cylinder(where, f"its cross-section is not round (area / circumscribed circle {roundness:.2f} < {MIN_ROUNDNESS:g})",
                               extent, template)
-    centre, axis, radius, half = _coarse_axis(volume, body)
-    for _ in range(2):
-        sec = _sections(volume, centre, axis, radius, half, where)
-        centre, axis, radius = sec.centre, sec.axis, sec.radius
+    def not_round(reason: str) -> PhantomNotFound:
+        return _not_a_cylinder(where, reason, extent, template)
+
+    best: tuple[float, _Sections, float] | None = None
+    first_error: PhantomNotFound | None = None
+    for centre, axis, radius, half in _axis_candidates(volume, body):
+        try:
+            sec = _sections(volume, centre, axis, radius, half, where, not_round)
+        except PhantomNotFound as exc:
+            first_error = first_error or exc
+            continue
+        if best is None or sec.rms / sec.radius < best[0]:
+            best = (sec.rms / sec.radius, sec, half)
+    if best is None:
+        assert first_error is not None
+        raise first_error
+    _, sec, half = best
+    sec = _sections(volume, sec.centre, sec.axis, sec.radius, half, where, not_round)
+    centre, axis, radius = sec.centre, sec.axis, sec.radius
     centre, length, truncated = _ends(volume, centre, axis, radius, half, where)
-    sec = _sections(volume, centre, axis, radius, 0.5 * length, where)
+    sec = _sections(volume, centre, axis, radius, 0.5 * length, where, not_round)
     centre, axis, radius = sec.centre, sec.axis, sec.radius
     centre, length, truncated = _ends(volume, centre, axis, radius, 0.5 * length, where)
     axis, ex, ey = _frame(axis, volume)
@@ -522,11 +575,12 @@ def locate_cylinder(volume: Volume, template: Template, options: Options, where:
     if fit.circle_rms_mm > limit:
         raise _not_a_cylinder(where, f"its cross-sections depart from a circle by {fit.circle_rms_mm:.1f} mm RMS (limit {limit:.1f} mm)",
                               extent, template)
-    if not (d_lo <= fit.diameter_mm <= d_hi):
+    tol = 1.0 + RANGE_TOLERANCE
+    if not (d_lo / tol <= fit.diameter_mm <= d_hi * tol):
         raise _not_a_cylinder(where, f"its diameter {fit.diameter_mm:.1f} mm is outside the template's range {d_lo:g}-{d_hi:g} mm",
                               extent, template, True)
     l_lo, l_hi = options.length_range_mm
-    if fit.length_mm > l_hi or (fit.length_mm < l_lo and not any(truncated)):
+    if fit.length_mm > l_hi * tol or (fit.length_mm < l_lo / tol and not any(truncated)):
         raise _not_a_cylinder(where, f"its length {fit.length_mm:.1f} mm is outside the template's range {l_lo:g}-{l_hi:g} mm",
                               extent, template, True)
     _check_uniform_content(volume, body, fit, options, where, extent, template)
@@ -534,24 +588,39 @@ def locate_cylinder(volume: Volume, template: Template, options: Options, where:
 
 
 def _check_uniform_content(volume: Volume, body, fit: CylinderFit, options: Options, where: str, extent, template: Template) -> None:
-    """Refuse an interior with hot or cold structures (module notes, step 4)."""
+    """Refuse an interior with hot or cold structures (module notes, step 4).
+
+    The coarse image is averaged over about :data:`CONTENT_SMOOTH_MM` (noise would otherwise
+    pass for structure); a block counts as departing when it is more than the larger of
+    :data:`CONTENT_DEPARTURE` and four robust SDs (1.4826 x MAD) of the interior from the
+    median.
+    """
+    from scipy import ndimage
+
     f = np.asarray(body.factors, float)
-    block = float(np.max(np.abs(volume.spacing_mm) * f))
+    sp = np.abs(volume.spacing_mm) * f
+    block = float(np.max(sp))
     r_in = fit.radius_mm - max(options.wall_margin_mm, 2 * block)
     h_in = 0.5 * fit.length_mm - max(options.end_margin_mm, 2 * block)
     if r_in <= block or h_in <= block:
         return
+    size = tuple(int(max(1, round(CONTENT_SMOOTH_MM / s))) for s in sp)
+    smooth = ndimage.uniform_filter(np.nan_to_num(body.coarse.astype(np.float64)), size=size, mode="nearest")
     idx = np.argwhere(body.mask)
     p = (volume.index_to_world(idx * f + (f - 1) / 2.0) - fit.centre_mm) @ fit.rotation
     inside = (p[:, 0] ** 2 + p[:, 1] ** 2 <= r_in**2) & (np.abs(p[:, 2]) <= h_in)
-    vals = body.coarse[tuple(idx[inside].T)]
+    vals = smooth[tuple(idx[inside].T)]
     if vals.size < 20:
         return
     med = float(np.median(vals))
-    frac = float(np.mean(np.abs(vals / med - 1.0) > 0.35)) if med > 0 else 1.0
+    if not med > 0:
+        return
+    rel = vals / med - 1.0
+    limit = max(CONTENT_DEPARTURE, 4 * 1.4826 * float(np.median(np.abs(rel - np.median(rel)))))
+    frac = float(np.mean(np.abs(rel) > limit))
     if frac > MAX_NONUNIFORM_FRACTION:
-        raise _not_a_cylinder(where, f"it holds hot or cold structures ({100 * frac:.0f} % of its interior is more than 35 % from "
-                                     "the median level)", extent, template)
+        raise _not_a_cylinder(where, f"it holds hot or cold structures ({100 * frac:.0f} % of its interior is more than "
+                                     f"{100 * limit:.0f} % from the median level)", extent, template)
 
 
 # ===================================================================================== regions
