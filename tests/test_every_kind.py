@@ -21,6 +21,7 @@ KINDS = {
     "iec-body": (4.0, {"roi": "sphere_37mm", "metric": "rc_max", "low": 0.0, "high": 10.0}),
     "small-animal": (0.6, {"roi": "uniform_region", "metric": "activity_recovery", "low": 0.5, "high": 1.5}),
     "site-rod-cylinder": (4.0, {"roi": "reference", "metric": "activity_recovery", "low": 0.5, "high": 1.5}),
+    "uniform-cylinder": (4.0, {"roi": "uniform_volume", "metric": "activity_recovery", "low": 0.5, "high": 1.5}),
 }
 
 

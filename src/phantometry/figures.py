@@ -48,18 +48,30 @@ def _finish(fig, path: str | os.PathLike, dpi: int, margins: dict[str, float] | 
     return out
 
 
-def _show_plane(ax, plane, vmax: float, title: str) -> None:
+#: Public names of the figure helpers, for the kinds' own pictures (:mod:`phantometry.phantoms`).
+def pyplot():
+    """matplotlib.pyplot with the Agg backend (no screen needed)."""
+    return _plt()
+
+
+def finish_figure(fig, path: str | os.PathLike, dpi: int = 110, margins: dict[str, float] | None = None) -> Path:
+    """Add the caution line, lay out, save as PNG and close (as every picture of phantometry)."""
+    return _finish(fig, path, dpi, margins)
+
+
+def _show_plane(ax, plane, vmax: float, title: str):
     """A resampled plane in inverted greyscale (0 white, ``vmax`` black), in plane mm.
 
     Drawn as a mesh of pixel squares: Agg fills the squares directly, so no canvas-sized
     floating-point copy of the image is made (an ``imshow`` resamples the image to the
     canvas in floating point first, which costs more memory than a small volume).
+    Returns the mesh (for a colour bar).
     """
     nv, nu = plane.values.shape
     p = plane.pixel_mm
     u_edges = (np.arange(nu + 1) - 0.5) * p
     v_edges = (np.arange(nv + 1) - 0.5) * p
-    ax.pcolormesh(u_edges, v_edges, np.nan_to_num(plane.values), cmap="gray_r", vmin=0, vmax=vmax, shading="flat", antialiased=False,
+    mesh = ax.pcolormesh(u_edges, v_edges, np.nan_to_num(plane.values), cmap="gray_r", vmin=0, vmax=vmax, shading="flat", antialiased=False,
                   edgecolors="none", linewidth=0)
     ax.set_xlim(u_edges[0], u_edges[-1])
     ax.set_ylim(v_edges[0], v_edges[-1])
@@ -67,6 +79,16 @@ def _show_plane(ax, plane, vmax: float, title: str) -> None:
     ax.set_xticks([])
     ax.set_yticks([])
     ax.set_aspect("equal")
+    return mesh
+
+
+def _scale_bar(ax, plane, length_mm: float) -> None:
+    """A scale bar of ``length_mm`` in the lower left corner of a plane view, labelled in mm."""
+    nv, nu = plane.values.shape
+    p = plane.pixel_mm
+    u0, v0 = 0.05 * nu * p, 0.05 * nv * p
+    ax.plot([u0, u0 + length_mm], [v0, v0], color="black", lw=3, solid_capstyle="butt")
+    ax.text(u0 + length_mm / 2, v0 + 0.015 * nv * p, f"{length_mm:g} mm", ha="center", va="bottom", fontsize=8, bbox=_LABEL_BOX)
 
 
 def _circle(ax, uv, diameter, **kw) -> None:
@@ -86,6 +108,7 @@ _ROLE_STYLE = {
     "search": dict(color="#c03000", lw=1.0, ls="--"),
     "peak": dict(color="#0050c0", lw=1.5, ls="-"),
     "guide": dict(color="#808080", lw=0.8, ls="--"),
+    "outline": dict(color="#e07000", lw=1.2, ls="--"),  # an object's measured outline (e.g. a cylinder's wall)
 }
 _LABEL_BOX = dict(boxstyle="round,pad=0.15", fc="white", ec="none", alpha=0.8)
 
@@ -129,12 +152,19 @@ def overlay_picture(overlay: "Overlay", path: str | os.PathLike) -> Path:
     fig, axes = plt.subplots(1, n, figsize=(5.4 * sum(ratios), 5.8), gridspec_kw={"width_ratios": ratios}, squeeze=False)
     for ax, view in zip(axes[0], overlay.views):
         vmax = view.vmax if view.vmax else (float(np.nanpercentile(view.plane.values, 99.5)) or 1.0)
-        _show_plane(ax, view.plane, vmax, view.title)
+        mesh = _show_plane(ax, view.plane, vmax, view.title)
         width = view.plane.values.shape[1] * view.plane.pixel_mm
         for shape in view.shapes:
             _draw_shape(ax, shape, width)
+        if view.scale_bar_mm:
+            _scale_bar(ax, view.plane, view.scale_bar_mm)
+        if view.colorbar:
+            bar = fig.colorbar(mesh, ax=ax, fraction=0.046, pad=0.02)
+            bar.set_label(view.colorbar, fontsize=8)
+            bar.ax.tick_params(labelsize=7)
     fig.suptitle(overlay.title, fontsize=10)
-    return _finish(fig, path, dpi=110, margins=dict(left=0.01, right=0.99, bottom=0.05, top=0.9, wspace=0.04))
+    bars = any(view.colorbar for view in overlay.views)  # colour bars need room for their ticks and label
+    return _finish(fig, path, dpi=110, margins=dict(left=0.01, right=0.93 if bars else 0.99, bottom=0.05, top=0.9, wspace=0.3 if bars else 0.04))
 
 
 def diagnostic_picture(volume: "Volume", path: str | os.PathLike) -> Path:

@@ -328,6 +328,7 @@ def size_mismatch_message(where: str, extent_mm: np.ndarray, template: Template)
 
     expected = _template_extent(template)
     suggestion = ""
+    best = np.inf  # the closest template (largest |ln(found / nominal)|), not the first that fits
     for name, path in list_templates().items():
         try:
             other = load_template_file(path)
@@ -336,9 +337,9 @@ def size_mismatch_message(where: str, extent_mm: np.ndarray, template: Template)
         if other.name == template.name:
             continue
         rel = extent_mm / _template_extent(other)
-        if np.all((rel > 0.6) & (rel < 1.6)):
+        if np.all((rel > 0.6) & (rel < 1.6)) and float(np.max(np.abs(np.log(rel)))) < best:
+            best = float(np.max(np.abs(np.log(rel))))
             suggestion = f"; it looks like the {other.name} phantom: try --template {other.name}"
-            break
     return (
         f"{where}: the object found measures {' x '.join(f'{e:.0f}' for e in extent_mm)} mm but template "
         f"{template.name} describes {' x '.join(f'{e:.0f}' for e in expected)} mm{suggestion or '; use the template for this phantom (phantometry templates list)'}"

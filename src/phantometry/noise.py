@@ -410,6 +410,7 @@ def estimate_noise(
     clearance_mm: float | None = None,
     variance_power: float = 1.0,
     where: str | None = None,
+    slab_mm: tuple[float, float] | None = None,
 ) -> NoiseModel:
     """Estimate the noise autocovariance from the uniform background (module notes, step 1).
 
@@ -417,10 +418,13 @@ def estimate_noise(
     ----------
     volume : Volume in Bq/mL.
     placement : where the template sits in the image.
-    template : the body phantom template (body, inserts, background slice offsets).
+    template : the phantom template (body, inserts, background slice offsets); a kind
+        that measures the body from the image passes a copy with the measured body.
     clearance_mm : distance kept from the body edge and the inserts, mm (default the
         template's background ``min_clearance_mm``).
     variance_power : ``p`` of the level law ``var(L) = C(0) (L / b)^p``.
+    slab_mm : template z range (mm) the voxels are taken from (default: the background
+        slice offsets +- 50 mm, :func:`background_mask`).
 
     Raises
     ------
@@ -428,7 +432,7 @@ def estimate_noise(
         When fewer than 500 background voxels remain (phantom mostly outside the image).
     """
     where = where or volume.source or "image"
-    box, mask = background_mask(volume, placement, template, clearance_mm=clearance_mm)
+    box, mask = background_mask(volume, placement, template, clearance_mm=clearance_mm, slab_mm=slab_mm)
     n = int(mask.sum())
     if n < 500:
         raise PhantomNotFound(f"{where}: only {n} background voxels away from the inserts and edges; cannot estimate the noise (is the phantom in the field of view?)")

@@ -320,7 +320,7 @@ def measure_report_html(analysis: "Analysis", *, folder: str | os.PathLike | Non
         + _figure(overlay, "ROI overlay", "Every ROI as placed, drawn on the image planes named above each view.")
         + fit_table + "</section>"
         '<section id="results"><h2>Results</h2>' + "".join(_grid_table(rows, g) for g in analysis.result_grids())
-        + "".join(_figure(png, name, _PICTURE_CAPTIONS.get(name, name)) for name, png in extra)
+        + "".join(_figure(png, name, analysis.picture_captions().get(name) or _PICTURE_CAPTIONS.get(name, name)) for name, png in extra)
         + f"<h2>All measurements</h2>{_measurements_table(rows)}</section>"
         + (f'<section id="warnings"><h2>Warnings</h2><ul class="warnings">{warn}</ul></section>' if warn else "")
     )

@@ -22,6 +22,17 @@ Model (documented in the README, "Synthetic scans")
    concentration, ``cv`` the requested coefficient of variation of a background voxel, and
    ``n`` white Gaussian noise smoothed by a Gaussian of ``noise_fwhm_mm`` and rescaled to unit
    variance. A background voxel then has SD ``cv * b``; air stays noise-free.
+4. **Known imperfections** (optional; :func:`imperfection_gains`): the noisy image is
+   multiplied voxel by voxel by a gain, as a calibration or normalisation error scales the
+   reconstructed image, noise included:
+   ``g = k (1 + s z / 100 mm) (1 + a [slice k*]) (1 + c (r / R)^2)`` with ``k`` the
+   calibration factor, ``s`` an axial slope (fraction per 100 mm; ``z`` the voxel centre's
+   offset from the phantom centre along the image's slice axis), ``a`` the gain error of one
+   image slice ``k*`` (a slice artefact, e.g. one detector ring's normalisation), and ``c``
+   a radial term about the phantom axis (``r`` the voxel centre's distance from it, ``R``
+   the body radius): ``c > 0`` raises the rim (cupping, a low centre), ``c < 0`` lowers it
+   (capping). Closed forms of what they do to the uniform-cylinder metrics are in
+   :mod:`phantometry.phantoms.uniform_cylinder`.
 
 Everything about the scenario (site, scanner, dates) is invented.
 """
@@ -88,6 +99,19 @@ class SynthSpec:
         around the ring appears mirrored in transverse slices.
     seed : int
         Random seed of the noise.
+    diameter_mm, length_mm : float or None
+        A cylindrical body of this diameter / length instead of the template's (about the
+        same centre; e.g. the ``uniform-cylinder`` template, whose phantoms come in many sizes).
+    calibration_factor : float
+        Gain ``k`` of the whole image (1: a calibrated scanner).
+    axial_slope_pct_per_100mm : float
+        Axial gain slope ``100 s``: per cent per 100 mm along the image's slice axis.
+    slice_artefact : (z_mm, gain_pct) or None
+        One image slice, the one whose centre is nearest ``z_mm`` from the phantom centre
+        along the slice axis, scaled by ``1 + gain_pct / 100``.
+    radial_gain_pct : float
+        ``100 c``: the gain at the body's wall relative to the axis, minus one, in per cent
+        (positive: cupping; negative: capping).
     """
 
     phantom: str = "iec-body"
@@ -108,6 +132,17 @@ class SynthSpec:
     series_description: str = "QC phantom (synthetic)"
     reconstruction_method: str = "OSEM (synthetic)"
     templates_dirs: list[str] = field(default_factory=list)
+    diameter_mm: float | None = None
+    length_mm: float | None = None
+    calibration_factor: float = 1.0
+    axial_slope_pct_per_100mm: float = 0.0
+    slice_artefact: tuple[float, float] | None = None
+    radial_gain_pct: float = 0.0
+
+    @property
+    def has_imperfections(self) -> bool:
+        return (self.calibration_factor != 1.0 or self.axial_slope_pct_per_100mm != 0.0 or self.slice_artefact is not None
+                or self.radial_gain_pct != 0.0)
 
     def validate(self) -> None:
         if any(v <= 0 for v in self.voxel_mm):
@@ -118,6 +153,16 @@ class SynthSpec:
             raise InputError("sphere ratio must be >= 0 and background concentration > 0")
         if self.acquired_at.tzinfo is None:
             raise InputError("acquired_at must be timezone-aware")
+        for what, v in (("--diameter", self.diameter_mm), ("--length", self.length_mm)):
+            if v is not None and not (math.isfinite(v) and v > 0):
+                raise InputError(f"{what} must be a positive number of mm, got {v:g}")
+        if not (math.isfinite(self.calibration_factor) and self.calibration_factor > 0):
+            raise InputError(f"--calibration-factor must be positive, got {self.calibration_factor:g}")
+        if not math.isfinite(self.axial_slope_pct_per_100mm) or not math.isfinite(self.radial_gain_pct) or self.radial_gain_pct <= -100:
+            raise InputError("--axial-slope and --radial must be finite numbers (--radial above -100 %)")
+        if self.slice_artefact is not None and (len(self.slice_artefact) != 2 or not all(math.isfinite(v) for v in self.slice_artefact)
+                                                or self.slice_artefact[1] <= -100):
+            raise InputError("--slice-artefact needs Z_MM,GAIN_PCT: two finite numbers, a gain above -100 %")
 
 
 def synth_template_source(phantom: str, template_file: str | os.PathLike | None, *, phantom_given: bool = False) -> str:
@@ -331,11 +376,73 @@ def correlated_unit_noise(shape: tuple[int, ...], fwhm_mm: float, spacing_zyx_mm
     return out / math.sqrt(var)
 
 
+# ------------------------------------------------------------------------------- imperfections
+def resized_template(template: Template, diameter_mm: float | None = None, length_mm: float | None = None) -> Template:
+    """A copy of a template with a cylindrical body of another diameter and/or length (about
+    the same centre).
+
+    Raises
+    ------
+    InputError
+        The body is not a cylinder, or the inserts no longer fit (each problem named).
+    """
+    if diameter_mm is None and length_mm is None:
+        return template
+    body = template.body
+    if body.shape != "cylinder":
+        raise InputError(f"--diameter and --length apply to cylindrical phantoms; template {template.name} has a {body.shape} body")
+    z0, z1 = body.z_range_mm
+    zc = 0.5 * (z0 + z1)
+    length = float(length_mm) if length_mm is not None else z1 - z0
+    new_body = body.model_copy(update={"diameter_mm": float(diameter_mm) if diameter_mm is not None else body.diameter_mm,
+                                       "z_range_mm": (zc - length / 2, zc + length / 2)})
+    out = template.model_copy(update={"body": new_body})
+    from .templates import check_template
+
+    problems = check_template(out)
+    if problems:
+        raise InputError(f"template {template.name} resized to {new_body.diameter_mm:g} x {length:g} mm does not hold its inserts: "
+                         + "; ".join(problems))
+    return out
+
+
+def imperfection_gains(spec: SynthSpec, template: Template, volume: Volume, rot: np.ndarray, t: np.ndarray) -> np.ndarray | None:
+    """The gain of every voxel for the spec's imperfections (module notes, step 4), or None.
+
+    Built slab by slab along the slice axis (the radial term needs every voxel's distance
+    from the phantom axis), in float32.
+    """
+    if not spec.has_imperfections:
+        return None
+    nz = volume.shape[0]
+    centre = rot @ template.body_centre_mm + t
+    slice_dir = volume.axes_world[0]
+    z_slice = (volume.index_to_world(np.c_[np.arange(nz), np.zeros((nz, 2))]) - centre) @ slice_dir  # mm, per slice
+    per_slice = spec.calibration_factor * (1.0 + spec.axial_slope_pct_per_100mm / 100.0 * z_slice / 100.0)
+    if spec.slice_artefact is not None:
+        z_a, gain_pct = spec.slice_artefact
+        k_star = int(np.argmin(np.abs(z_slice - z_a)))
+        per_slice[k_star] *= 1.0 + gain_pct / 100.0
+    gains = np.empty(volume.shape, np.float32)
+    gains[...] = per_slice.astype(np.float32)[:, None, None]
+    if spec.radial_gain_pct != 0.0:
+        body = template.body
+        radius = body.diameter_mm / 2 if body.shape == "cylinder" else body.arc_radius_mm
+        c = np.float32(spec.radial_gain_pct / 100.0)
+        origin = rot @ np.array([*body.centre_xy_mm, 0.0]) + t  # a point on the phantom axis
+        step = max(1, int(2_000_000 // max(1, volume.shape[1] * volume.shape[2])))
+        for k0 in range(0, nz, step):
+            box = (slice(k0, min(nz, k0 + step)), slice(0, volume.shape[1]), slice(0, volume.shape[2]))
+            x, y, _ = volume.box_coordinates(box, rot, origin)
+            gains[box] *= np.float32(1.0) + c * (x * x + y * y) / np.float32(radius * radius)
+    return gains
+
+
 # ------------------------------------------------------------------------------- main entry
 def synthesize(spec: SynthSpec) -> SynthResult:
     """Make a synthetic phantom scan (noise-free truth, blurred, with noise) and its truth."""
     spec.validate()
-    template = load_template(spec.phantom, spec.templates_dirs)
+    template = resized_template(load_template(spec.phantom, spec.templates_dirs), spec.diameter_mm, spec.length_mm)
     rot, t = phantom_pose(spec, template)
     matrix = spec.matrix or auto_matrix(spec, template, rot, t)
     shape = (int(matrix[2]), int(matrix[1]), int(matrix[0]))
@@ -353,6 +460,10 @@ def synthesize(spec: SynthSpec) -> SynthResult:
         noise = correlated_unit_noise(shape, noise_fwhm, spacing, rng)
         img += spec.noise_cv * np.sqrt(np.clip(img, 0, None) * bg) * noise
         del noise
+    gains = imperfection_gains(spec, template, grid, rot, t)
+    if gains is not None:
+        img *= gains
+        del gains
     recon = Reconstruction(
         method=spec.reconstruction_method,
         iterations=3,
@@ -394,6 +505,9 @@ def _truth(spec: SynthSpec, template: Template, rot: np.ndarray, t: np.ndarray, 
         "noise_cv": spec.noise_cv,
         "rotation": rot.tolist(),
         "translation_mm": t.tolist(),
+        "body": {"centre_mm": (rot @ template.body_centre_mm + t).tolist(), "axis": rot[:, 2].tolist(),
+                 "length_mm": template.body_length_mm,
+                 **({"diameter_mm": template.body.diameter_mm} if template.body.shape == "cylinder" else {})},
         "inserts": {
             ins.name: {
                 "centre_mm": (rot @ np.asarray(ins.centre_mm, float) + t).tolist(),

@@ -100,6 +100,10 @@ class Volume:
         Units of the source pixel data before conversion (e.g. ``"BQML"``, ``"GML"``).
     decay_correction : str or None
         DICOM DecayCorrection of the source (``"START"``, ``"ADMIN"``, ``"NONE"``) if known.
+    bq_ml_per_suv : tuple of float
+        For a series stored as body-weight SUV (``original_units == "GML"``): the Bq/mL of one
+        SUV unit in each slice (array order), the factor the loader converted with, so that
+        ``data[k] / bq_ml_per_suv[k]`` is the SUV the scanner stored; empty otherwise.
     """
 
     data: np.ndarray
@@ -122,6 +126,7 @@ class Volume:
     #: what the loader noticed about the image and worked around (e.g. a header half-life
     #: replaced by the table value); measure puts these in measurements.json ``warnings``
     warnings: tuple[str, ...] = ()
+    bq_ml_per_suv: tuple[float, ...] = ()
 
     def __post_init__(self) -> None:
         data = np.asarray(self.data)

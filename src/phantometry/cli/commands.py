@@ -118,8 +118,9 @@ def measure_cmd(
     _print_resolution_and_verdicts(analysis, bool(bands))
     print_written(analysis.written)
     console.print(f"wrote {out}/measurements.csv, measurements.json, overlay.png", markup=False)
-    if (Path(out) / "recovery_curve.png").exists():
-        console.print(f"wrote {out}/recovery_curve.png", markup=False)
+    pictures = [name for name in analysis.pictures() if (Path(out) / name).exists()]
+    if pictures:
+        console.print(f"wrote {out}/" + ", ".join(pictures), markup=False)
     if report or seg:
         console.print(f"wrote {out}/" + ", ".join(n for n, on in (("report.html", report), ("rois_seg.dcm", seg)) if on), markup=False)
     if record:
@@ -207,6 +208,12 @@ def synth_cmd(
     rotate: str = typer.Option("0,0,0", "--rotate", help="Rotation about x,y,z, degrees."),
     flip: bool = typer.Option(False, "--flip", help="Phantom lying the other way along the bed."),
     seed: int = typer.Option(0, "--seed", help="Noise seed."),
+    diameter: Optional[float] = typer.Option(None, "--diameter", help="Cylindrical body diameter, mm (e.g. uniform-cylinder; default: the template's)."),
+    length: Optional[float] = typer.Option(None, "--length", help="Cylindrical body length, mm (default: the template's)."),
+    calibration_factor: float = typer.Option(1.0, "--calibration-factor", help="Imperfection: gain of the whole image (1 = calibrated)."),
+    axial_slope: float = typer.Option(0.0, "--axial-slope", help="Imperfection: axial gain slope, % per 100 mm along the slice axis."),
+    slice_artefact: Optional[str] = typer.Option(None, "--slice-artefact", help="Imperfection: Z_MM,GAIN_PCT: the image slice nearest Z_MM from the phantom centre scaled by 1 + GAIN_PCT/100."),
+    radial: float = typer.Option(0.0, "--radial", help="Imperfection: radial gain at the wall relative to the axis, % (positive: cupping, negative: capping)."),
 ) -> None:
     """Synthesise a phantom scan with known truth (image, fill.yaml, truth.json)."""
     from ..outputs import KIND_SCAN, check_output_folder, existing_inputs
@@ -244,6 +251,12 @@ def synth_cmd(
         rotation_deg=vec(rotate, 3, "--rotate"),
         flip=flip,
         seed=seed,
+        diameter_mm=diameter,
+        length_mm=length,
+        calibration_factor=calibration_factor,
+        axial_slope_pct_per_100mm=axial_slope,
+        slice_artefact=vec(slice_artefact, 2, "--slice-artefact") if slice_artefact else None,
+        radial_gain_pct=radial,
     )
     paths = write_synthetic(synthesize(spec), out, fmt, overwrite=overwrite, inputs=inputs)
     print_written(paths["written"])

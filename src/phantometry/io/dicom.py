@@ -1291,4 +1291,5 @@ def _load_dicom(
         frame_of_reference_uid=frames.pop(),
         study_uid=_ascii(first.ds, "StudyInstanceUID"),
         warnings=tuple(quantity.warnings),
+        bq_ml_per_suv=tuple(float(f) for f in quantity.to_bqml) if quantity.units == "GML" else (),
     )

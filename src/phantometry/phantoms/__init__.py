@@ -17,7 +17,7 @@ import importlib
 import os
 import pkgutil
 from functools import lru_cache
-from typing import Sequence
+from typing import Callable, Sequence
 
 from ..bands import BandSet, check_band_set
 from ..bands import load_band_set as load_band_set_unchecked
@@ -39,6 +39,7 @@ __all__ = [
     "known_metrics",
     "check_band_file",
     "load_band_set",
+    "suggest_template",
 ]
 
 
@@ -132,3 +133,32 @@ def load_band_set(name_or_path: str | os.PathLike | BandSet, extra_dirs: Sequenc
     bs = load_band_set_unchecked(name_or_path, extra_dirs)
     check_band_file(bs, templates_dirs)
     return bs
+
+
+def suggest_template(extent_mm: Sequence[float], exclude: str | None = None,
+                     extra_dirs: Sequence[str | os.PathLike] | None = None,
+                     accept: Callable[[Template], bool] | None = None) -> str | None:
+    """The name of the template whose phantom an object of principal extents ``extent_mm``
+    (mm) most likely is, or None.
+
+    Every template found by name (:func:`phantometry.templates.list_templates`) is asked
+    through its kind (:meth:`PhantomKind.size_mismatch`); the closest one wins. ``exclude``
+    (a template name) is left out, and templates ``accept`` refuses (e.g. those whose body is
+    not round, for a round object); templates that do not load are skipped.
+    """
+    from ..templates import list_templates, load_template_file
+
+    best: tuple[float, str] | None = None
+    for name, path in list_templates(list(extra_dirs or [])).items():
+        if name == exclude:
+            continue
+        try:
+            tpl = load_template_file(path)
+            if tpl.name == exclude or (accept is not None and not accept(tpl)):
+                continue
+            score = kind_of(tpl).size_mismatch(tpl, extent_mm)
+        except PhantometryError:
+            continue
+        if score is not None and (best is None or score < best[0]):
+            best = (score, tpl.name)
+    return None if best is None else best[1]

@@ -60,7 +60,7 @@ class KindOptions(BaseModel):
 
 
 # ===================================================================================== outputs
-ShapeRole = Literal["hot", "cold", "background", "insert", "voi", "peak", "search", "guide"]
+ShapeRole = Literal["hot", "cold", "background", "insert", "voi", "peak", "search", "guide", "outline"]
 
 
 @dataclass
@@ -94,6 +94,10 @@ class View:
     shapes: list[Shape] = field(default_factory=list)
     #: display range upper limit (Bq/mL); None: a high percentile of the plane
     vmax: float | None = None
+    #: label of a colour bar beside the view (the grey scale in Bq/mL); None: no colour bar
+    colorbar: str | None = None
+    #: length (mm) of a scale bar drawn in the view's lower left corner; None: no scale bar
+    scale_bar_mm: float | None = None
 
 
 @dataclass
@@ -292,6 +296,11 @@ class Analysis(ABC):
         """Extra pictures of the result folder: file name -> function drawing it to a path."""
         return {}
 
+    def picture_captions(self) -> dict[str, str]:
+        """Captions of the extra pictures in the report (file name -> caption); the report
+        falls back on the file name."""
+        return {}
+
     def json_extras(self) -> dict[str, Any]:
         """Kind-specific sections of ``measurements.json`` (added after the common ones)."""
         return {"noise": self.noise.as_dict() if self.noise is not None else None}
@@ -400,6 +409,21 @@ class PhantomKind(ABC):
     ) -> Analysis:
         """Locate the phantom and compute every metric of this kind."""
 
+    def size_mismatch(self, template: Template, extent_mm: Sequence[float]) -> float | None:
+        """How far an object of sorted principal extents ``extent_mm`` (mm) is from this
+        template's phantom, or None when it cannot be one.
+
+        The default compares with the template's nominal body (:func:`nominal_extent_mm`):
+        the largest ``|ln(found / nominal)|`` over the three extents, None beyond a factor
+        0.6-1.6 (the tolerance of the size checks of :mod:`phantometry.locate`). Kinds whose
+        phantoms come in a range of sizes override it. Used to name the template that fits
+        an object refused by another (:func:`phantometry.phantoms.suggest_template`).
+        """
+        rel = np.asarray(sorted(float(e) for e in extent_mm)) / nominal_extent_mm(template)
+        if np.any(rel <= 0.6) or np.any(rel >= 1.6):
+            return None
+        return float(np.max(np.abs(np.log(rel))))
+
     # ---------------------------------------------------------------- comparison
     def comparison_charts(self, template: Template, fill: FillRecord, settings: Sequence[ComparedSetting]) -> list[Chart]:
         """Charts of a comparison of settings (none by default)."""
@@ -457,6 +481,16 @@ def fill_error_hint(volume: Volume, template: Template, where: str) -> None:
     check_body_size(volume, template, where)
 
 
+def nominal_extent_mm(template: Template) -> np.ndarray:
+    """Sorted extents (mm) of a template's body: width, height (or diameter twice) and length."""
+    body = template.body
+    if body.shape == "cylinder":
+        xy = (body.diameter_mm, body.diameter_mm)
+    else:
+        xy = (2 * body.arc_radius_mm, body.arc_radius_mm + body.corner_radius_mm)
+    return np.sort(np.array([*xy, template.body_length_mm], float))
+
+
 def fmt_number(value: float | None, unit: str | None = None, digits: int | None = None) -> str:
     """A value for tables: ``-`` when missing or not a number, digits by unit."""
     if value is None or not math.isfinite(value):
@@ -488,5 +522,6 @@ __all__ = [
     "check_scan_time",
     "fill_error_hint",
     "fmt_number",
+    "nominal_extent_mm",
     "FillRecordError",
 ]
