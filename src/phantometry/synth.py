@@ -187,7 +187,7 @@ def synth_template_source(phantom: str, template_file: str | os.PathLike | None,
     path = Path(template_file)
     if not path.is_file():
         raise InputError(f"{path}: no such template file")
-    load_template(path)  # validates (raises TemplateError naming the file)
+    load_template(path, check=False)  # validates the schema (raises TemplateError naming the file)
     return str(path)
 
 
@@ -195,7 +195,7 @@ def default_scan_settings(phantom: str, templates_dirs: list[str] | None = None)
     """Typical voxel size (mm), PSF FWHM (mm) and background (kBq/mL) for a phantom kind:
     clinical scanners for body phantoms, preclinical ones for the small-animal phantom
     (common practice; about 3.7 MBq in the ~20 mL small-animal phantom, recalled)."""
-    kind = load_template(phantom, templates_dirs).analysis.kind
+    kind = load_template(phantom, templates_dirs, check=False).analysis.kind
     if kind == "small_animal_image_quality":
         return {"voxel_mm": 0.5, "psf_fwhm_mm": 1.8, "background_kbq_ml": 150.0}
     return {"voxel_mm": 2.0, "psf_fwhm_mm": 6.0, "background_kbq_ml": 5.3}
@@ -442,7 +442,7 @@ def imperfection_gains(spec: SynthSpec, template: Template, volume: Volume, rot:
 def synthesize(spec: SynthSpec) -> SynthResult:
     """Make a synthetic phantom scan (noise-free truth, blurred, with noise) and its truth."""
     spec.validate()
-    template = resized_template(load_template(spec.phantom, spec.templates_dirs), spec.diameter_mm, spec.length_mm)
+    template = resized_template(load_template(spec.phantom, spec.templates_dirs, check=False), spec.diameter_mm, spec.length_mm)
     rot, t = phantom_pose(spec, template)
     matrix = spec.matrix or auto_matrix(spec, template, rot, t)
     shape = (int(matrix[2]), int(matrix[1]), int(matrix[0]))
@@ -658,7 +658,7 @@ def write_synthetic_family(
                      shift_mm=shift_mm, sphere_ratio=sphere_ratio, cold=list(cold))
     if matrix is None:  # leave room for the widest PSF of the family
         widest = SynthSpec(**{**spec.__dict__, "psf_fwhm_mm": max(float(s["fwhm_mm"]) for s in settings)})
-        tpl = load_template(spec.phantom)
+        tpl = load_template(spec.phantom, check=False)
         spec.matrix = auto_matrix(widest, tpl, *phantom_pose(widest, tpl))
     base = synthesize(spec)
     out = Path(out_dir)

@@ -425,10 +425,10 @@ def template_from_dict(data: Any, source: str = "<template>", *, check: bool = T
     return tpl
 
 
-def load_template_file(path: str | os.PathLike) -> Template:
-    """Load and validate one template YAML file."""
+def load_template_file(path: str | os.PathLike, *, check: bool = True) -> Template:
+    """Load and validate one template YAML file (``check``: also its geometric checks)."""
     p = Path(path)
-    return template_from_dict(read_yaml_file(p, TemplateError, "template"), source=str(p))
+    return template_from_dict(read_yaml_file(p, TemplateError, "template"), source=str(p), check=check)
 
 
 def builtin_template_dir() -> Path:
@@ -463,20 +463,24 @@ def list_templates(extra_dirs: list[str | os.PathLike] | None = None) -> dict[st
     return found
 
 
-def load_template(name_or_path: str | os.PathLike, extra_dirs: list[str | os.PathLike] | None = None) -> Template:
-    """Load a template by name (searched as :func:`template_search_path` says) or by file path."""
+def load_template(name_or_path: str | os.PathLike, extra_dirs: list[str | os.PathLike] | None = None, *, check: bool = True) -> Template:
+    """Load a template by name (searched as :func:`template_search_path` says) or by file path.
+
+    ``check=False`` skips the geometric checks (:func:`check_template`): the synthesizer paints
+    variants of a phantom whose background ROI positions need not fit it.
+    """
     p = Path(name_or_path)
     if p.suffix in (".yaml", ".yml") or p.exists():
         if not p.exists():
             raise TemplateError(f"{p}: template file not found")
-        return load_template_file(p)
+        return load_template_file(p, check=check)
     available = list_templates(extra_dirs)
     if str(name_or_path) not in available:
         raise TemplateError(
             f"unknown template {str(name_or_path)!r}; available: {', '.join(sorted(available)) or 'none'}"
             f" (add a folder with --templates DIR or ${TEMPLATE_PATH_ENV})"
         )
-    return load_template_file(available[str(name_or_path)])
+    return load_template_file(available[str(name_or_path)], check=check)
 
 
 # ------------------------------------------------------------------------------------ checks
