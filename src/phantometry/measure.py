@@ -383,6 +383,7 @@ def measure(
     report: bool = False,
     seg: bool = False,
     bands: Sequence[Any] | None = None,
+    record: Any = None,
 ) -> BodyAnalysis:
     """Measure a phantom scan from files and write ``out/`` (CSV, JSON, overlay picture).
 
@@ -393,6 +394,10 @@ def measure(
     ``bands`` (names or files of acceptance band sets, :mod:`phantometry.bands`) fill the
     rows' verdicts; they are loaded and checked against the template before measuring. Body
     phantoms also get ``recovery_curve.png`` (measured RC, fitted model curves, bands).
+
+    ``record`` (a :class:`phantometry.ledger.measure_record.RecordRequest`) records the
+    analysis in the trend ledger once the folder is written; a duplicate is refused before the
+    image is read and before anything is written.
 
     The folder appears only when everything succeeded; if localisation fails, a diagnostic
     picture is written to ``out.failed.png`` beside it and :class:`PhantomNotFound` is raised.
@@ -407,8 +412,12 @@ def measure(
         band_sets = [load_band_set(b, templates_dirs=list(templates_dirs or [])) for b in bands]
         for b in band_sets:
             check_band_set(b, tpl)
+    if record is not None:  # a duplicate is refused before the pixels are read
+        record.check_inputs(inputs, series=series, acquired_at=acquired_at, template=tpl.name, fill=fill_record)
     volume = load_image(inputs, series=series, units=units, acquired_at=acquired_at, nuclide=nuclide, calibration_factor=calibration_factor)
     where = str(inputs if isinstance(inputs, (str, os.PathLike)) else ", ".join(map(str, inputs)))
+    if record is not None:
+        record.check_volume(volume, template=tpl.name, fill=fill_record)
     if seg:
         from .seg import check_seg_request
 
@@ -451,6 +460,8 @@ def measure(
             from .report import write_measure_report
 
             write_measure_report(analysis, tmp / "report.html", folder=tmp)
+    if record is not None:
+        record.record(analysis)
     return analysis
 
 

@@ -113,6 +113,11 @@ def measure_cmd(
         raise InputError("--site, --scanner, --protocol and --replace apply with --record; add --record")
     from ..measure import measure
 
+    request = None
+    if record:
+        from .ledger import record_request
+
+        request = record_request(db, site=site, scanner=scanner, protocol=protocol, replace=replace)
     analysis = measure(
         [str(p) for p in inputs],
         template=template,
@@ -128,6 +133,7 @@ def measure_cmd(
         report=report,
         seg=seg,
         bands=list(bands or []),
+        record=request,
     )
     print_sphere_table(analysis)
     _print_resolution_and_verdicts(analysis, bool(bands))
@@ -136,10 +142,10 @@ def measure_cmd(
         console.print(f"wrote {out}/recovery_curve.png", markup=False)
     if report or seg:
         console.print(f"wrote {out}/" + ", ".join(n for n, on in (("report.html", report), ("rois_seg.dcm", seg)) if on), markup=False)
-    if record:
-        from .ledger import record_after_measure
+    if request is not None:
+        from .ledger import print_recorded
 
-        record_after_measure(analysis, db, site=site, scanner=scanner, protocol=protocol, replace=replace)
+        print_recorded(request)
     if strict:
         from ..bands import any_failed
 
