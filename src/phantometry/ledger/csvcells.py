@@ -1,4 +1,4 @@
-"""Spreadsheet-safe text cells for the ledger CSV, reversibly (CSV formula injection).
+r"""Spreadsheet-safe text cells for the ledger CSV, reversibly (CSV formula injection).
 
 A spreadsheet opening a CSV file runs a cell that starts with ``=``, ``+``, ``-`` or ``@``
 (and, in some programs, one starting with a tab or a carriage return) as a formula. The
@@ -17,6 +17,11 @@ it is, so ``restore(neutralise(s)) == s`` for all ``s`` and a cell such as ``'s-
 Numbers are not text cells: the numeric columns (``value``, ``uncertainty``, ``band_low``,
 ``band_high``) keep their sign (``-0.25``) and the times are ISO 8601, which never start with a
 trigger.
+
+:func:`format_row` writes a CSV line (RFC 4180 quoting, ``\n`` line ends). Python's
+:func:`csv.writer` with ``lineterminator="\n"`` leaves a cell holding a lone carriage return
+unquoted, which splits the row when the file is read back; here every cell holding a comma, a
+double quote, ``\n`` or ``\r`` is quoted.
 """
 
 from __future__ import annotations
@@ -54,4 +59,21 @@ def restore(cell: str) -> str:
     return cell[1:] if cell.startswith(QUOTE) and _needs_quote(cell) else cell
 
 
-__all__ = ["QUOTE", "TRIGGERS", "neutralise", "restore"]
+def _quoted(cell: str) -> str:
+    if any(ch in cell for ch in ',"\r\n'):
+        return '"' + cell.replace('"', '""') + '"'
+    return cell
+
+
+def format_row(cells: list[str]) -> str:
+    r'''One CSV line: cells joined by commas, quoted where needed, ending in ``\n``.
+
+    Examples
+    --------
+    >>> format_row(["a", "b,c", 'say "hi"', "x\ry", ""])
+    'a,"b,c","say ""hi""","x\ry",\n'
+    '''
+    return ",".join(_quoted(c) for c in cells) + "\n"
+
+
+__all__ = ["QUOTE", "TRIGGERS", "format_row", "neutralise", "restore"]

@@ -36,7 +36,7 @@ from sqlalchemy.exc import DBAPIError, IntegrityError, OperationalError
 
 from ..errors import InputError, LedgerError
 from ..results import CSV_COLUMNS, Measurement
-from .csvcells import neutralise, restore
+from .csvcells import format_row, neutralise, restore
 from .outfiles import check_output_file, write_text_atomically
 from .rules import ControlLimits, control_limits, drift_flags
 from .schema import (
@@ -62,7 +62,7 @@ T = TypeVar("T")
 #: columns are only ever appended. One row per measurement (long format); times are ISO 8601
 #: in UTC; numbers are written with full precision (Python ``repr``), empty when missing; text
 #: cells are spreadsheet-safe (:func:`phantometry.ledger.csvcells.neutralise`). ``baselines``
-#: (appended in 0.2) lists the baselines the analysis belongs to as compact JSON,
+#: (the newest column) lists the baselines the analysis belongs to as compact JSON,
 #: ``[{"created_at": ISO time, "note": text or null}, ...]`` oldest first, empty for none.
 LEDGER_CSV_COLUMNS = [
     "analysis_uid",
@@ -1183,9 +1183,7 @@ class Ledger:
         text_index = [LEDGER_CSV_COLUMNS.index(c) for c in TEXT_CSV_COLUMNS]
 
         def write(fh) -> None:
-            nonlocal n_rows
-            w = csv.writer(fh, lineterminator="\n")
-            w.writerow(LEDGER_CSV_COLUMNS)
+            fh.write(format_row(LEDGER_CSV_COLUMNS))
 
             def q(conn: Connection) -> None:
                 nonlocal n_rows
@@ -1196,7 +1194,7 @@ class Ledger:
                     cells = [_csv_cell(v) for v in tuple(r)[:-1]] + [membership.get(r.analysis_id, "")]
                     for i in text_index:
                         cells[i] = neutralise(cells[i])
-                    w.writerow(cells)
+                    fh.write(format_row(cells))
                     n_rows += 1
 
             self._read(q)
