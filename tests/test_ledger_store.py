@@ -983,7 +983,8 @@ def _fresh_pg_schema(server_url: str) -> tuple[str, str]:
 
 @pytest.mark.parametrize("backend", ["sqlite", "postgresql"])
 def test_eight_processes_create_a_new_store_at_once_repeatedly(backend, request, tmp_path):
-    rounds, n_workers, per_worker = 4, 8, 2
+    # a few rounds, each a brand-new store (the failure this guards against struck about 1 in 100 openings)
+    rounds, n_workers, per_worker = (3 if backend == "sqlite" else 2), 8, 1
     server = request.getfixturevalue("pg_server_url") if backend == "postgresql" else None
     for r in range(rounds):
         work = tmp_path / f"round{r}"
@@ -1023,8 +1024,9 @@ CHILD_REPLACE = textwrap.dedent(
     import sys, time
     from pathlib import Path
     from phantometry.ledger import Ledger
-    url, doc, go = sys.argv[1], sys.argv[2], Path(sys.argv[3])
+    url, doc, go, worker = sys.argv[1], sys.argv[2], Path(sys.argv[3]), sys.argv[4]
     with Ledger(url) as ledger:
+        (go.parent / f"ready-{worker}").touch()
         while not go.exists():
             time.sleep(0.001)
         for _ in range(3):
@@ -1040,9 +1042,12 @@ def test_concurrent_replace_is_quiet_and_consistent(store_url, tmp_path):
     with Ledger(store_url) as led:
         first = led.add_from_result_dir(doc)
     go = tmp_path / "go"
-    procs = [subprocess.Popen([sys.executable, "-c", CHILD_REPLACE, store_url, str(doc), str(go)],
-                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True) for _ in range(6)]
-    time.sleep(2.0)
+    n = 5
+    procs = [subprocess.Popen([sys.executable, "-c", CHILD_REPLACE, store_url, str(doc), str(go), str(w)],
+                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True) for w in range(n)]
+    deadline = time.time() + 120
+    while len(list(tmp_path.glob("ready-*"))) < n and time.time() < deadline:
+        time.sleep(0.01)
     go.touch()
     outs = [p.communicate(timeout=300) for p in procs]
     for p, (out, err) in zip(procs, outs):
