@@ -822,6 +822,10 @@ def test_text_limits_are_the_same_on_every_backend(ledger, tmp_path):
     with pytest.raises(LedgerError, match=r"template name .* is 201 characters long"):
         ledger.record_document(long_template)
     assert [a.id for a in ledger.analyses()] == [ok.analysis_id]
+    ledger.record_document(make_doc(5), scanner="S" * 200, protocol="P" * 200, site="X" * 200)
+    with pytest.raises(LedgerError, match=r"baseline note holds a NUL character"):
+        ledger.set_baseline("S" * 200, "P" * 200, since=T0 - timedelta(days=1), note="a\x00b")
+    assert ledger.baseline("S" * 200, "P" * 200) is None
     # the same limit on import, before any row is written
     ledger.export_csv(tmp_path / "ok.csv")
     with open(tmp_path / "ok.csv", newline="", encoding="utf-8") as fh:

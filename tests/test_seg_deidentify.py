@@ -37,7 +37,7 @@ IDENTIFYING = {
     "PatientWeight": "73.913",
     "PatientSize": "1.6677",
     "PatientComments": "ZQX-PATIENT-COMMENT",
-    "Occupation": "ZQX-LIGHTHOUSE-KEEPER",
+    "Occupation": "ZQX-LIGHTKEEPER",
     "AdditionalPatientHistory": "ZQX-HISTORY-OF-SOMETHING",
     "IssuerOfPatientID": "ZQX-ISSUER",
     "OtherPatientIDs": "ZQX-OTHER-ID",

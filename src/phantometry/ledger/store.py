@@ -1036,6 +1036,7 @@ class Ledger:
             raise LedgerError("ledger baseline: give analysis ids or a date range (--from/--to)")
         since_utc = _aware(since, "from", "ledger baseline") if since is not None else None
         until_utc = _aware(until, "to", "ledger baseline") if until is not None else None
+        check_text(baselines, {"note": note}, "ledger baseline --note")
 
         def txn(conn: Connection) -> int:
             scanner_id, _site, _scanner, proto = self._resolve(conn, scanner, protocol, site)
