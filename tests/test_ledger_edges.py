@@ -311,3 +311,36 @@ def test_driver_log_records_stay_off_stderr():
     quiet = subprocess.run([sys.executable, "-c", code.format(setup="from phantometry.cli.ledger import quiet_driver_logs; quiet_driver_logs()")],
                            capture_output=True, text=True)
     assert quiet.returncode == 0 and quiet.stderr == ""
+
+
+# ------------------------------------------------------------------------------ many writers, as users run them
+@pytest.mark.parametrize("backend", ["sqlite", "postgresql"])
+def test_eight_console_scripts_record_into_a_brand_new_store(backend, request, tmp_path):
+    db = str(tmp_path / "new" / "ledger.sqlite3") if backend == "sqlite" else request.getfixturevalue("pg_url")
+    dirs = results(tmp_path / "res", 8)
+    env = dict(os.environ, MPLBACKEND="Agg", COLUMNS="200")
+    procs = [subprocess.Popen([str(SCRIPT), "ledger", "add", str(d), "--db", db], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                              text=True, env=env) for d in dirs]
+    outs = [p.communicate(timeout=600) for p in procs]
+    for p, (out, err) in zip(procs, outs):
+        assert p.returncode == 0 and err == "", err
+        assert "recorded analysis #" in out
+    with Ledger(db, create=False) as led:
+        got = [a.series_uid for a in led.analyses()]
+    want = [json.loads((d / "measurements.json").read_text())["series"]["series_uid"] for d in dirs]
+    assert sorted(got) == sorted(want)  # all stored, none twice
+
+
+def test_concurrent_replace_on_postgresql_prints_no_driver_noise(pg_url, tmp_path):
+    [res] = results(tmp_path / "res", 1)
+    assert run("ledger", "add", res, "--db", pg_url).returncode == 0
+    env = dict(os.environ, MPLBACKEND="Agg", COLUMNS="200")
+    procs = [subprocess.Popen([str(SCRIPT), "ledger", "add", str(res), "--replace", "--db", pg_url], stdout=subprocess.PIPE,
+                              stderr=subprocess.PIPE, text=True, env=env) for _ in range(5)]
+    outs = [p.communicate(timeout=600) for p in procs]
+    for p, (out, err) in zip(procs, outs):
+        assert p.returncode == 0 and err == "", err  # formerly "error ignored terminating <psycopg.Pipeline ...>"
+        assert "replaced analysis #1" in out
+    with Ledger(pg_url, create=False) as led:
+        [a] = led.analyses()
+        assert len(led.measurements(a.id)) == 51
