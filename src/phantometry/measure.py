@@ -233,6 +233,7 @@ def measure(
     seg: bool = False,
     bands: Sequence[BandSet | str | os.PathLike] | None = None,
     overwrite: bool = False,
+    record: Any = None,
 ) -> Analysis:
     """Measure a phantom scan from files and write ``out/`` (CSV, JSON, pictures).
 
@@ -242,6 +243,10 @@ def measure(
 
     ``bands`` (names or files of acceptance band sets, :mod:`phantometry.bands`) fill the
     rows' verdicts; they are loaded and checked against the template before measuring.
+
+    ``record`` (a :class:`phantometry.ledger.measure_record.RecordRequest`) records the
+    analysis in the trend ledger once the folder is written; a duplicate is refused before the
+    image is read and before anything is written.
 
     The folder appears only when everything succeeded; if localisation fails, a diagnostic
     picture is written to ``out.failed.png`` beside it (unless a file phantometry did not
@@ -275,8 +280,12 @@ def measure(
         band_sets = [load_band_set(b) for b in bands]
         for b in band_sets:
             check_band_set(b, tpl.name, known)
+    if record is not None:  # a duplicate is refused before the pixels are read
+        record.check_inputs(inputs, series=series, acquired_at=acquired_at, template=tpl.name, fill=fill_record)
     volume = load_image(inputs, series=series, units=units, acquired_at=acquired_at, nuclide=nuclide, calibration_factor=calibration_factor)
     where = str(inputs if isinstance(inputs, (str, os.PathLike)) else ", ".join(map(str, inputs)))
+    if record is not None:
+        record.check_volume(volume, template=tpl.name, fill=fill_record)
     if seg:
         from .seg import check_seg_request
 
@@ -300,6 +309,8 @@ def measure(
         write_results(analysis, staging.path, overlay=overlay, pictures=overlay, report=report, seg=seg,
                       source_paths=[inputs] if isinstance(inputs, (str, os.PathLike)) else list(inputs))
     analysis.written = staging.written
+    if record is not None:
+        record.record(analysis)
     return analysis
 
 

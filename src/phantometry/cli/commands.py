@@ -97,6 +97,11 @@ def measure_cmd(
         raise InputError("--site, --scanner, --protocol and --replace apply with --record; add --record")
     from ..measure import measure
 
+    request = None
+    if record:
+        from .ledger import record_request
+
+        request = record_request(db, site=site, scanner=scanner, protocol=protocol, replace=replace)
     analysis = measure(
         [str(p) for p in inputs],
         template=template,
@@ -113,6 +118,7 @@ def measure_cmd(
         seg=seg,
         bands=list(bands or []),
         overwrite=overwrite,
+        record=request,
     )
     print_summary_table(analysis)
     _print_resolution_and_verdicts(analysis, bool(bands))
@@ -123,10 +129,10 @@ def measure_cmd(
         console.print(f"wrote {out}/" + ", ".join(pictures), markup=False)
     if report or seg:
         console.print(f"wrote {out}/" + ", ".join(n for n, on in (("report.html", report), ("rois_seg.dcm", seg)) if on), markup=False)
-    if record:
-        from .ledger import record_after_measure
+    if request is not None:
+        from .ledger import print_recorded
 
-        record_after_measure(analysis, db, site=site, scanner=scanner, protocol=protocol, replace=replace)
+        print_recorded(request)
     if strict:
         from ..bands import any_failed
 

@@ -6,12 +6,13 @@ lists and filters them, trends one metric with control limits from a baseline an
 rules of :mod:`phantometry.ledger.rules`, and exports/imports long-format CSV for a lab
 database. The store is SQLite by default (a file in the user data directory) or any
 SQLAlchemy URL (``--db URL`` / ``$PHANTOMETRY_DB``), PostgreSQL being the shared option.
-No patient identity is ever stored.
+No patient identity is ever stored. Reading never creates a store (``Ledger(url, create=False)``
+raises :class:`NoLedgerStore`).
 """
 
 from ..errors import LedgerError
 from .rules import RULES, ControlLimits, Flag, control_limits, drift_flags
-from .schema import DB_ENV, default_url, head_revision
+from .schema import DB_ENV, NoLedgerStore, default_url, head_revision
 from .store import (
     LEDGER_CSV_COLUMNS,
     UNTRENDED_UNITS,
@@ -21,6 +22,7 @@ from .store import (
     ExportReport,
     ImportReport,
     Ledger,
+    LedgerCsv,
     RecordResult,
     ScannerInfo,
     Trend,
@@ -30,6 +32,7 @@ from .store import (
     default_protocol_label,
     default_scanner_label,
     default_site_label,
+    read_ledger_csv,
     settings_hash,
 )
 
@@ -46,7 +49,9 @@ __all__ = [
     "Flag",
     "ImportReport",
     "Ledger",
+    "LedgerCsv",
     "LedgerError",
+    "NoLedgerStore",
     "RecordResult",
     "ScannerInfo",
     "Trend",
@@ -60,5 +65,6 @@ __all__ = [
     "default_url",
     "drift_flags",
     "head_revision",
+    "read_ledger_csv",
     "settings_hash",
 ]

@@ -85,15 +85,17 @@ def trend_figure(trend: "Trend") -> "Figure":
     return fig
 
 
-def save_trend_chart(trend: "Trend", path: str | os.PathLike) -> Path:
-    """Write the control chart of ``trend`` as PNG to ``path`` (written to a temporary name, then moved)."""
+def save_trend_chart(trend: "Trend", path: str | os.PathLike, *, overwrite: bool = False) -> Path:
+    """Write the control chart of ``trend`` as PNG to ``path`` (written to a temporary name, then moved).
+
+    Raises
+    ------
+    InputError
+        ``path`` exists and ``overwrite`` is False, is a folder, or cannot be written.
+    """
+    from .outfiles import check_output_file, save_figure_atomically
+
     target = Path(path)
-    target.parent.mkdir(parents=True, exist_ok=True)
-    fig = trend_figure(trend)
-    tmp = target.with_name(f".{target.name}.tmp-{os.getpid()}.png")
-    try:
-        fig.savefig(tmp, format="png")
-        os.replace(tmp, target)
-    finally:
-        tmp.unlink(missing_ok=True)
+    check_output_file(target, overwrite, "ledger trend --chart")
+    save_figure_atomically(trend_figure(trend), target)
     return target

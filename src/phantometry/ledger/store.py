@@ -8,6 +8,10 @@ Privacy by construction: only named, non-identifying fields are taken from a ser
 (series UID, acquisition time, nuclide, reconstruction label, scanner make, model, station
 and serial). Patient name, ID, birth date and accession number are never read, stored or
 exported; neither is the source file path nor the series description (free text).
+
+Text is limited the same way on every backend (:func:`phantometry.ledger.schema.check_text`,
+checked before any SQL runs), and the CSV export writes spreadsheet-safe text cells that the
+import reads back exactly (:mod:`phantometry.ledger.csvcells`).
 """
 
 from __future__ import annotations
@@ -18,7 +22,6 @@ import json
 import math
 import os
 import random
-import tempfile
 import time
 import uuid
 from collections import OrderedDict, defaultdict
@@ -33,11 +36,15 @@ from sqlalchemy.exc import DBAPIError, IntegrityError, OperationalError
 
 from ..errors import InputError, LedgerError
 from ..results import CSV_COLUMNS, Measurement
+from .csvcells import format_row, neutralise, restore
+from .outfiles import check_output_file, write_text_atomically
 from .rules import ControlLimits, control_limits, drift_flags
 from .schema import (
     analyses,
     baseline_members,
     baselines,
+    check_store_exists,
+    check_text,
     display_url,
     ensure_schema,
     make_engine,
@@ -45,6 +52,7 @@ from .schema import (
     resolve_url,
     scanners,
     sites,
+    transient,
     writing,
 )
 
@@ -52,7 +60,10 @@ T = TypeVar("T")
 
 #: Columns of ``ledger export`` / ``ledger import`` CSV files, in order. A stable contract:
 #: columns are only ever appended. One row per measurement (long format); times are ISO 8601
-#: in UTC; numbers are written with full precision (Python ``repr``), empty when missing.
+#: in UTC; numbers are written with full precision (Python ``repr``), empty when missing; text
+#: cells are spreadsheet-safe (:func:`phantometry.ledger.csvcells.neutralise`). ``baselines``
+#: (the newest column) lists the baselines the analysis belongs to as compact JSON,
+#: ``[{"created_at": ISO time, "note": text or null}, ...]`` oldest first, empty for none.
 LEDGER_CSV_COLUMNS = [
     "analysis_uid",
     "recorded_at",
@@ -67,8 +78,14 @@ LEDGER_CSV_COLUMNS = [
     "settings_hash",
     # then the measurement columns of measurements.csv, from roi on, in the same order
     *CSV_COLUMNS[CSV_COLUMNS.index("roi") :],
+    "baselines",
 ]
+#: Columns an import accepts missing (appended after the first exports were written).
+OPTIONAL_CSV_COLUMNS = ("baselines",)
 _FLOAT_COLUMNS = ("value", "uncertainty", "band_low", "band_high")
+_TIME_COLUMNS = ("recorded_at", "acquired_at")
+#: Columns whose cells are text (neutralised on export, restored on import).
+TEXT_CSV_COLUMNS = tuple(c for c in LEDGER_CSV_COLUMNS if c not in _FLOAT_COLUMNS + _TIME_COLUMNS)
 _ANALYSIS_COLUMNS = (
     "recorded_at", "site", "scanner", "protocol", "series_uid", "template", "acquired_at",
     "reconstruction", "tool_version", "settings_hash",
@@ -81,7 +98,6 @@ UNTRENDED_UNITS = ("mm", "Bq/mL")
 #: Verdict order, worst first, for the analysis-level verdict.
 VERDICT_ORDER = ("fail", "pass", "n/a")
 
-_LABEL_MAX = 200
 _RETRIES = 12
 
 
@@ -194,11 +210,14 @@ class Trend:
         """The flags sitting on one analysis."""
         return [f for f in self.flags if f.analysis_id == analysis_id]
 
-    def chart(self, path: str | os.PathLike) -> Path:
-        """Write the control chart PNG (see :func:`phantometry.ledger.chart.save_trend_chart`)."""
+    def chart(self, path: str | os.PathLike, *, overwrite: bool = False) -> Path:
+        """Write the control chart PNG (see :func:`phantometry.ledger.chart.save_trend_chart`).
+
+        An existing file is replaced only with ``overwrite`` (else :class:`InputError`).
+        """
         from .chart import save_trend_chart
 
-        return save_trend_chart(self, path)
+        return save_trend_chart(self, path, overwrite=overwrite)
 
 
 @dataclass(frozen=True)
@@ -228,12 +247,13 @@ class ExportReport:
 
 @dataclass(frozen=True)
 class ImportReport:
-    """What :meth:`Ledger.import_csv` did, counted in analyses."""
+    """What :meth:`Ledger.import_csv` did, counted in analyses (and baselines created)."""
 
     added: int
     replaced: int
     skipped: int
     rows: int
+    baselines: int = 0
 
 
 @dataclass(frozen=True)
@@ -268,12 +288,22 @@ def _aware(value: Any, what: str, where: str) -> datetime:
 
 
 def _label(value: Any, what: str, where: str) -> str:
+    """A label with its white space collapsed; refused when empty (its length: check_text)."""
     text = " ".join(str(value).split()) if value is not None else ""
     if not text:
         raise LedgerError(f"{where}: the {what} label is empty; give --{what} NAME")
-    if len(text) > _LABEL_MAX:
-        raise LedgerError(f"{where}: the {what} label is longer than {_LABEL_MAX} characters; shorten it")
     return text
+
+
+def _check_analysis_text(site: str, scanner: str, make: Mapping[str, Any] | None, analysis: Mapping[str, Any],
+                         rows: Sequence[Mapping[str, Any]], where: str) -> None:
+    """Every text of one analysis within the ledger's limits (before any SQL runs)."""
+    check_text(sites, {"name": site}, where)
+    make = make or {}
+    check_text(scanners, {"name": scanner, **{k: make.get(k) for k in ("manufacturer", "model", "serial")}}, where)
+    check_text(analyses, dict(analysis), where)
+    for r in rows:
+        check_text(measurements, dict(r), f"{where}: {str(r.get('roi'))[:40]} {str(r.get('metric'))[:40]}")
 
 
 def _canonical_json(obj: Any) -> str:
@@ -316,6 +346,10 @@ def _row_dict(row: Measurement | Mapping[str, Any], where: str) -> dict[str, Any
     for key in ("roi", "metric", "unit"):
         if not d.get(key):
             raise LedgerError(f"{where}: a measurement row has no {key}; every row needs roi, metric, unit")
+    verdict = d.get("verdict") or None
+    if verdict is not None and verdict not in VERDICT_ORDER:
+        raise LedgerError(f"{where}: measurement {d.get('roi')} {d.get('metric')} has verdict {str(verdict)[:40]!r}; "
+                          f"expected {', '.join(VERDICT_ORDER)} or none")
     try:
         return {
             "roi": str(d["roi"]),
@@ -376,15 +410,6 @@ def _one_line(exc: BaseException) -> str:
     return " ".join(str(orig).split())[:300]
 
 
-def _transient(exc: DBAPIError) -> bool:
-    """A lock, deadlock or serialisation conflict worth retrying."""
-    text = str(getattr(exc, "orig", exc)).lower()
-    if "database is locked" in text or "database table is locked" in text or "busy" in text:
-        return True
-    sqlstate = getattr(getattr(exc, "orig", None), "sqlstate", None)
-    return sqlstate in ("40001", "40P01", "55P03")
-
-
 # ------------------------------------------------------------------------------ ledger
 class Ledger:
     """A trend ledger in a SQL database (SQLite by default, PostgreSQL for a shared lab store).
@@ -398,11 +423,16 @@ class Ledger:
     upgrade : bool
         Bring an older schema to the newest revision on open (default). With False an
         out-of-date store raises :class:`LedgerError`.
+    create : bool
+        Create the store when it does not exist yet (default). With False (read-only use) a
+        missing SQLite file, or a database without the ledger's tables, raises
+        :class:`LedgerError` and nothing is created: no folder, no file, no table.
 
     Raises
     ------
     LedgerError
-        The database cannot be reached, or its schema is newer than this phantometry.
+        The database cannot be reached, its schema is newer than this phantometry, or (with
+        ``create=False``) there is no store.
 
     Examples
     --------
@@ -411,12 +441,14 @@ class Ledger:
     ...     trend = ledger.trend("PET-CT 1", "EARL1", "sphere_10mm", "rc_max")
     """
 
-    def __init__(self, url: str | os.PathLike | None = None, *, upgrade: bool = True) -> None:
+    def __init__(self, url: str | os.PathLike | None = None, *, upgrade: bool = True, create: bool = True) -> None:
         self.url = resolve_url(url)
         self.display_url = display_url(self.url)
-        self.engine = make_engine(self.url)
+        if not create:
+            check_store_exists(self.url)
+        self.engine = make_engine(self.url, create=create)
         try:
-            self.revision = ensure_schema(self.engine, self.display_url, allow_upgrade=upgrade)
+            self.revision = ensure_schema(self.engine, self.display_url, allow_upgrade=upgrade, create=create)
         except BaseException:
             self.engine.dispose()
             raise
@@ -459,7 +491,7 @@ class Ledger:
                     raise on_integrity(exc) from None
                 raise LedgerError(f"ledger {self.display_url}: refused by the database ({_one_line(exc)})") from None
             except OperationalError as exc:
-                if _transient(exc) and attempt < _RETRIES - 1:
+                if transient(exc) and attempt < _RETRIES - 1:
                     time.sleep(delay * (1.0 + random.random()))
                     delay = min(delay * 2.0, 1.0)
                     continue
@@ -510,8 +542,11 @@ class Ledger:
     # ------------------------------------------------------------------ recording
     def _store(self, conn: Connection, a: dict[str, Any], rows: list[dict[str, Any]], replace: bool, where: str) -> tuple[int, bool]:
         """Insert (or replace) one analysis and its rows inside the caller's transaction."""
+        # FOR UPDATE (PostgreSQL; SQLite already holds the write lock): a concurrent replacement
+        # of the same analysis waits here, and its DELETE below then sees the rows the other one
+        # committed, so the two never collide on the measurement rows.
         existing = conn.execute(
-            sa.select(analyses.c.id, analyses.c.acquired_at).where(analyses.c.record_key == a["record_key"])
+            sa.select(analyses.c.id, analyses.c.acquired_at).where(analyses.c.record_key == a["record_key"]).with_for_update()
         ).first()
         if existing is not None and not replace:
             raise LedgerError(
@@ -607,11 +642,7 @@ class Ledger:
         if not template:
             raise LedgerError(f"{where}: no template name")
         series_uid = series.get("series_uid") or None
-        fill = None
-        if fill_record:  # validated: only the fill record's known keys are kept (no personal data)
-            from ..fill import FillRecord
-
-            fill = FillRecord.from_dict(dict(fill_record), source=f"{where}: fill_record").to_dict()
+        fill = _validated_fill(fill_record, where)
         s_hash = settings_hash(fill, settings)
         rec = series.get("reconstruction") or {}
         if tool_version is None:
@@ -634,6 +665,7 @@ class Ledger:
             "tool_version": str(tool_version),
             "verdict": analysis_verdict(r["verdict"] for r in row_dicts),
         }
+        _check_analysis_text(site_label, scanner_label, series.get("scanner"), analysis, row_dicts, where)
 
         def txn(conn: Connection) -> tuple[int, bool]:
             analysis["scanner_id"] = self._scanner_id(conn, site_label, scanner_label, series.get("scanner"))
@@ -644,6 +676,33 @@ class Ledger:
             txn, on_integrity=self._duplicate_error(where, series_uid, template), retry_integrity=replace
         )
         return RecordResult(analysis_id, analysis["uid"], site_label, scanner_label, protocol_label, len(row_dicts), replaced)
+
+    def recorded_id(self, *, series_uid: str | None, acquired_at: datetime | str | None, template: str,
+                    fill_record: Mapping[str, Any] | None = None, settings: Mapping[str, Any] | None = None,
+                    where: str = "ledger") -> int | None:
+        """The id of the analysis of the same series + template + settings, or None.
+
+        The identity is the one :meth:`record` uses (series UID, else acquisition time; the
+        template name; the settings hash of the validated fill record and ``settings``), so
+        a duplicate can be refused before any work (``measure --record``).
+        """
+        when = _aware(acquired_at, "acquisition time", where) if (acquired_at is not None or not series_uid) else None
+        key = _record_key(series_uid or None, when, template, settings_hash(_validated_fill(fill_record, where), settings))  # type: ignore[arg-type]
+        found = self._read(lambda c: c.execute(sa.select(analyses.c.id).where(analyses.c.record_key == key)).scalar())
+        return None if found is None else int(found)
+
+    def check_not_recorded(self, *, series_uid: str | None, acquired_at: datetime | str | None, template: str,
+                           fill_record: Mapping[str, Any] | None = None, settings: Mapping[str, Any] | None = None,
+                           where: str = "ledger") -> None:
+        """Refuse (:class:`LedgerError`) an analysis that :meth:`record` would refuse as a duplicate."""
+        found = self.recorded_id(series_uid=series_uid, acquired_at=acquired_at, template=template, fill_record=fill_record,
+                                 settings=settings, where=where)
+        if found is not None:
+            shown = series_uid or _aware(acquired_at, "acquisition time", where).isoformat()
+            raise LedgerError(
+                f"{where}: series {shown} with template {template} and the same settings is already recorded "
+                f"(analysis #{found}) in {self.display_url}; use --replace to replace it"
+            )
 
     def record_document(self, doc: Mapping[str, Any], *, site: str | None = None, scanner: str | None = None,
                         protocol: str | None = None, replace: bool = False, where: str = "measurements.json") -> RecordResult:
@@ -670,15 +729,8 @@ class Ledger:
     def add_from_result_dir(self, path: str | os.PathLike, *, site: str | None = None, scanner: str | None = None,
                             protocol: str | None = None, replace: bool = False) -> RecordResult:
         """Record the analysis in a result folder of ``phantometry measure`` (or its measurements.json)."""
-        p = Path(path)
-        json_path = p / "measurements.json" if p.is_dir() else p
-        if not json_path.is_file():
-            raise InputError(f"{json_path}: no such file; give a result folder of phantometry measure or its measurements.json")
-        try:
-            doc = json.loads(json_path.read_text(encoding="utf-8"))
-        except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
-            raise InputError(f"{json_path}: cannot be read as JSON ({exc}); give the measurements.json phantometry wrote") from None
-        return self.record_document(doc, site=site, scanner=scanner, protocol=protocol, replace=replace, where=str(json_path))
+        doc, where = read_result_document(path)
+        return self.record_document(doc, site=site, scanner=scanner, protocol=protocol, replace=replace, where=where)
 
     def record_analysis(self, analysis, *, site: str | None = None, scanner: str | None = None,
                         protocol: str | None = None, replace: bool = False, where: str | None = None) -> RecordResult:
@@ -984,6 +1036,7 @@ class Ledger:
             raise LedgerError("ledger baseline: give analysis ids or a date range (--from/--to)")
         since_utc = _aware(since, "from", "ledger baseline") if since is not None else None
         until_utc = _aware(until, "to", "ledger baseline") if until is not None else None
+        check_text(baselines, {"note": note}, "ledger baseline --note")
 
         def txn(conn: Connection) -> int:
             scanner_id, _site, _scanner, proto = self._resolve(conn, scanner, protocol, site)
@@ -1097,13 +1150,22 @@ class Ledger:
         return results
 
     # ------------------------------------------------------------------ CSV
-    def export_csv(self, path: str | os.PathLike, *, since: datetime | None = None) -> ExportReport:
+    def export_csv(self, path: str | os.PathLike, *, since: datetime | None = None, overwrite: bool = False) -> ExportReport:
         """Write measurements as long-format CSV (:data:`LEDGER_CSV_COLUMNS`), atomically.
 
         ``since`` (aware) keeps analyses *recorded* at or after that time, for incremental
         exports to a lab database; pass the previous report's ``started_at``. Overlapping
-        windows are harmless: :meth:`import_csv` skips analyses it already holds.
+        windows are harmless: :meth:`import_csv` skips analyses it already holds. Text cells
+        are spreadsheet-safe (:mod:`phantometry.ledger.csvcells`); the ``baselines`` column
+        carries baseline membership, so an import into another store keeps the baselines.
+
+        Raises
+        ------
+        InputError
+            ``path`` exists and ``overwrite`` is False, is a folder, or cannot be written.
         """
+        target = Path(path)
+        check_output_file(target, overwrite, "ledger export")
         started = _utc_now()
         since_utc = _aware(since, "since", "ledger export") if since is not None else None
         m, a = measurements, analyses
@@ -1111,54 +1173,78 @@ class Ledger:
             sa.select(a.c.uid, a.c.recorded_at, sites.c.name.label("site"), scanners.c.name.label("scanner"), a.c.protocol,
                       a.c.series_uid, a.c.template, a.c.acquired_at, a.c.reconstruction, a.c.tool_version, a.c.settings_hash,
                       m.c.roi, m.c.metric, m.c.value, m.c.unit, m.c.uncertainty, m.c.band, m.c.band_low, m.c.band_high,
-                      m.c.verdict, m.c.note)
+                      m.c.verdict, m.c.note, a.c.id.label("analysis_id"))
             .select_from(m.join(a, a.c.id == m.c.analysis_id).join(scanners, scanners.c.id == a.c.scanner_id).join(sites, sites.c.id == scanners.c.site_id))
             .order_by(a.c.recorded_at, a.c.uid, m.c.id)
         )
         if since_utc is not None:
             stmt = stmt.where(a.c.recorded_at >= since_utc)
-        target = Path(path)
-        target.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp_name = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
         n_rows = 0
         uids: set[str] = set()
-        try:
-            with os.fdopen(fd, "w", newline="", encoding="utf-8") as fh:
-                w = csv.writer(fh, lineterminator="\n")
-                w.writerow(LEDGER_CSV_COLUMNS)
+        text_index = [LEDGER_CSV_COLUMNS.index(c) for c in TEXT_CSV_COLUMNS]
 
-                def q(conn: Connection) -> None:
-                    nonlocal n_rows
-                    result = conn.execution_options(stream_results=True, yield_per=5000).execute(stmt)
-                    for r in result:
-                        uids.add(r.uid)
-                        w.writerow([_csv_cell(v) for v in r])
-                        n_rows += 1
+        def write(fh) -> None:
+            fh.write(format_row(LEDGER_CSV_COLUMNS))
 
-                self._read(q)
-            os.replace(tmp_name, target)
-        except BaseException:
-            Path(tmp_name).unlink(missing_ok=True)
-            raise
+            def q(conn: Connection) -> None:
+                nonlocal n_rows
+                membership = self._baseline_membership(conn, since_utc)
+                result = conn.execution_options(stream_results=True, yield_per=5000).execute(stmt)
+                for r in result:
+                    uids.add(r.uid)
+                    cells = [_csv_cell(v) for v in tuple(r)[:-1]] + [membership.get(r.analysis_id, "")]
+                    for i in text_index:
+                        cells[i] = neutralise(cells[i])
+                    fh.write(format_row(cells))
+                    n_rows += 1
+
+            self._read(q)
+
+        write_text_atomically(target, write)
         return ExportReport(target, n_rows, len(uids), started)
 
-    def import_csv(self, path: str | os.PathLike, *, replace: bool = False) -> ImportReport:
+    @staticmethod
+    def _baseline_membership(conn: Connection, since_utc: datetime | None) -> dict[int, str]:
+        """analysis id -> the ``baselines`` cell (compact JSON, oldest baseline first)."""
+        stmt = (
+            sa.select(baseline_members.c.analysis_id, baselines.c.created_at, baselines.c.note)
+            .select_from(baseline_members.join(baselines, baselines.c.id == baseline_members.c.baseline_id)
+                         .join(analyses, analyses.c.id == baseline_members.c.analysis_id))
+            .order_by(baseline_members.c.analysis_id, baselines.c.created_at, baselines.c.id)
+        )
+        if since_utc is not None:
+            stmt = stmt.where(analyses.c.recorded_at >= since_utc)
+        out: dict[int, list[dict[str, Any]]] = defaultdict(list)
+        for r in conn.execute(stmt):
+            out[int(r.analysis_id)].append({"created_at": _csv_cell(r.created_at), "note": r.note})
+        return {k: json.dumps(v, ensure_ascii=False, separators=(",", ":")) for k, v in out.items()}
+
+    def import_csv(self, path: "str | os.PathLike | LedgerCsv", *, replace: bool = False) -> ImportReport:
         """Read a CSV written by :meth:`export_csv` back, in one transaction.
 
         Analyses whose ``analysis_uid`` is already present are skipped (so overlapping
         incremental exports import cleanly). Another analysis of the same series + template
         + settings is refused unless ``replace``. The fill record is not part of the CSV.
+        Text cells are restored exactly (:func:`phantometry.ledger.csvcells.restore`), and
+        the baselines of the ``baselines`` column are created (once: a baseline of the same
+        scanner, protocol and creation time is reused) with their members, which makes
+        export then import into a fresh store keep baseline membership.
 
         Raises
         ------
         InputError
             Missing columns, unparsable numbers or times (named with file and line).
         LedgerError
-            Duplicates without ``replace``.
+            Duplicates without ``replace``; text beyond the ledger's limits.
         """
-        p = Path(path)
-        groups = _read_ledger_csv(p)
-        where = str(p)
+        parsed = path if isinstance(path, LedgerCsv) else read_ledger_csv(path)
+        groups, wanted = parsed.groups, parsed.baselines
+        where = str(parsed.path)
+        for uid_, (head, rows) in groups.items():
+            rec = {k: head[k] for k in ("uid", "series_uid", "template", "protocol", "reconstruction", "settings_hash", "tool_version")}
+            _check_analysis_text(head["site"], head["scanner"], None, rec, rows, f"{where} (analysis {uid_})")
+        for (site_, scanner_, proto, _created), (note, _m) in wanted.items():
+            check_text(baselines, {"protocol": proto, "note": note}, f"{where} (baseline of {scanner_} / {proto})")
 
         def txn(conn: Connection) -> ImportReport:
             added = replaced = skipped = 0
@@ -1191,12 +1277,98 @@ class Ledger:
                 _id, was = self._store(conn, record, rows, replace, f"{where} (analysis {uid_})")
                 replaced += int(was)
                 added += int(not was)
-            return ImportReport(added, replaced, skipped, sum(len(r) for _h, r in groups.values()))
+            created = self._import_baselines(conn, wanted, cache, where)
+            return ImportReport(added, replaced, skipped, sum(len(r) for _h, r in groups.values()), created)
 
         return self._write(txn)
 
+    def _import_baselines(self, conn: Connection, wanted: Mapping[tuple, tuple[str | None, list[str]]], cache: dict,
+                          where: str) -> int:
+        """Create the baselines named in an imported CSV (once) and add their members; returns the number created."""
+        created = 0
+        for (site_, scanner_, proto, created_at), (note, member_uids) in wanted.items():
+            scanner_id = self._scanner_id(conn, site_, scanner_, None, cache)
+            found = conn.execute(
+                sa.select(analyses.c.id, analyses.c.uid, analyses.c.scanner_id, analyses.c.protocol).where(analyses.c.uid.in_(member_uids))
+            ).all()
+            for r in found:
+                if (r.scanner_id, r.protocol) != (scanner_id, proto):
+                    raise LedgerError(
+                        f"{where}: analysis {r.uid} of a baseline of {scanner_} / {proto} is held in this ledger under another "
+                        "scanner or protocol; the baseline cannot be imported"
+                    )
+            baseline_id = conn.execute(
+                sa.select(baselines.c.id).where(baselines.c.scanner_id == scanner_id, baselines.c.protocol == proto,
+                                                baselines.c.created_at == created_at).order_by(baselines.c.id).limit(1)
+            ).scalar()
+            if baseline_id is None:
+                baseline_id = int(conn.execute(
+                    baselines.insert().values(scanner_id=scanner_id, protocol=proto, created_at=created_at, note=note)
+                ).inserted_primary_key[0])
+                created += 1
+            have = set(conn.execute(sa.select(baseline_members.c.analysis_id).where(baseline_members.c.baseline_id == baseline_id)).scalars())
+            new = sorted({int(r.id) for r in found} - have)
+            if new:
+                conn.execute(baseline_members.insert(), [{"baseline_id": baseline_id, "analysis_id": i} for i in new])
+        return created
+
 
 # ------------------------------------------------------------------------------ helpers
+def read_result_document(path: str | os.PathLike) -> tuple[dict[str, Any], str]:
+    """The measurements.json of a result folder (or that file itself) and its path for messages.
+
+    Raises
+    ------
+    InputError
+        No such file, or not JSON.
+    """
+    p = Path(path)
+    json_path = p / "measurements.json" if p.is_dir() else p
+    if not json_path.is_file():
+        raise InputError(f"{json_path}: no such file; give a result folder of phantometry measure or its measurements.json")
+    try:
+        doc = json.loads(json_path.read_text(encoding="utf-8"))
+    except UnicodeDecodeError as exc:
+        raise InputError(f"{json_path}: is not UTF-8 text (byte {exc.start}); give the measurements.json phantometry wrote") from None
+    except (OSError, json.JSONDecodeError, RecursionError) as exc:
+        reason = getattr(exc, "strerror", None) or (exc.msg if isinstance(exc, json.JSONDecodeError) else "nested too deeply")
+        raise InputError(f"{json_path}: cannot be read as JSON ({reason}); give the measurements.json phantometry wrote") from None
+    if not isinstance(doc, dict):
+        raise InputError(f"{json_path}: not a phantometry measurements.json (needs 'series' and 'measurements'); give a result folder of phantometry measure")
+    return doc, str(json_path)
+
+
+@dataclass
+class LedgerCsv:
+    """A ledger CSV read and checked (:func:`read_ledger_csv`), ready for :meth:`Ledger.import_csv`."""
+
+    path: Path
+    groups: "OrderedDict[str, tuple[dict[str, Any], list[dict[str, Any]]]]"
+    baselines: "OrderedDict[tuple, tuple[str | None, list[str]]]"
+
+
+def read_ledger_csv(path: str | os.PathLike) -> LedgerCsv:
+    """Read and check a CSV written by :meth:`Ledger.export_csv` (text cells restored).
+
+    Raises
+    ------
+    InputError
+        Missing columns, unparsable numbers, times or baselines (named with file and line).
+    """
+    p = Path(path)
+    groups, wanted = _read_ledger_csv(p)
+    return LedgerCsv(p, groups, wanted)
+
+
+def _validated_fill(fill_record: Mapping[str, Any] | None, where: str) -> dict[str, Any] | None:
+    """The fill record as stored: validated, only its known keys (no personal data); None if empty."""
+    if not fill_record:
+        return None
+    from ..fill import FillRecord
+
+    return FillRecord.from_dict(dict(fill_record), source=f"{where}: fill_record").to_dict()
+
+
 def _trend_flags(points: list[TrendPoint], limits: ControlLimits | None) -> list[TrendFlag]:
     valid = [p for p in points if p.value is not None]
     if not valid:
@@ -1219,37 +1391,72 @@ def _csv_cell(v: Any) -> str:
     return str(v)
 
 
-def _read_ledger_csv(path: Path) -> "OrderedDict[str, tuple[dict[str, Any], list[dict[str, Any]]]]":
-    """Parse a ledger CSV into analysis heads and measurement rows, grouped by analysis_uid."""
+def _parse_baselines_cell(cell: str, path: Path, line: int) -> list[tuple[datetime, str | None]]:
+    """The ``baselines`` cell: a JSON list of {created_at, note}; empty for none."""
+    if not cell.strip():
+        return []
+    try:
+        items = json.loads(cell)
+        if not isinstance(items, list):
+            raise ValueError
+        out = []
+        for item in items:
+            note = item.get("note")
+            if not isinstance(note, (str, type(None))):
+                raise ValueError
+            out.append((_aware(item["created_at"], "baseline created_at", f"{path}: line {line}"), note))
+        return out
+    except (ValueError, TypeError, KeyError, AttributeError, RecursionError, LedgerError):
+        raise InputError(f"{path}: line {line}: baselines {cell[:60]!r} is not a list of {{created_at, note}}; give a CSV written by phantometry ledger export") from None
+
+
+def _read_ledger_csv(path: Path):
+    """Parse a ledger CSV into analysis heads and measurement rows, grouped by analysis_uid.
+
+    Returns ``(groups, baselines)``: ``groups`` maps analysis uid to (head, rows) with text
+    cells restored; ``baselines`` maps (site, scanner, protocol, created_at) to (note, uids).
+    """
+    if path.is_dir():
+        raise InputError(f"{path}: is a folder; give a CSV written by phantometry ledger export")
     if not path.is_file():
         raise InputError(f"{path}: no such file; give a CSV written by phantometry ledger export")
     groups: "OrderedDict[str, tuple[dict[str, Any], list[dict[str, Any]]]]" = OrderedDict()
+    wanted: "OrderedDict[tuple, tuple[str | None, list[str]]]" = OrderedDict()
     try:
         with open(path, newline="", encoding="utf-8") as fh:
             reader = csv.DictReader(fh)
-            missing = [c for c in LEDGER_CSV_COLUMNS if c not in (reader.fieldnames or [])]
+            fields = reader.fieldnames or []
+            missing = [c for c in LEDGER_CSV_COLUMNS if c not in fields and c not in OPTIONAL_CSV_COLUMNS]
             if missing:
                 raise InputError(f"{path}: missing columns {', '.join(missing)}; give a CSV written by phantometry ledger export")
-            for rec in reader:
+            for raw in reader:
                 line = reader.line_num
-                uid_ = (rec["analysis_uid"] or "").strip()
+                if None in raw:
+                    raise InputError(f"{path}: line {line}: more cells than columns")
+                rec = {c: ("" if raw.get(c) is None else raw[c]) for c in LEDGER_CSV_COLUMNS}
+                for c in TEXT_CSV_COLUMNS:
+                    rec[c] = restore(rec[c])
+                uid_ = rec["analysis_uid"].strip()
                 if not uid_:
                     raise InputError(f"{path}: line {line}: empty analysis_uid")
                 row: dict[str, Any] = {}
                 for c in _FLOAT_COLUMNS:
-                    raw = (rec[c] or "").strip()
+                    cell = rec[c].strip()
                     try:
-                        row[c] = _finite_or_none(raw)
+                        row[c] = _finite_or_none(cell)
                     except ValueError:
-                        raise InputError(f"{path}: line {line}: {c} {raw!r} is not a number") from None
+                        raise InputError(f"{path}: line {line}: {c} {cell[:40]!r} is not a number") from None
                 for c in ("roi", "metric", "unit"):
                     if not rec[c]:
                         raise InputError(f"{path}: line {line}: empty {c}")
                     row[c] = rec[c]
                 for c in ("band", "verdict", "note"):
                     row[c] = rec[c] or None
+                if row["verdict"] is not None and row["verdict"] not in VERDICT_ORDER:
+                    raise InputError(f"{path}: line {line}: verdict {row['verdict'][:40]!r}; expected {', '.join(VERDICT_ORDER)} or empty")
                 if uid_ not in groups:
                     head: dict[str, Any] = {c: (rec[c] or None) for c in _ANALYSIS_COLUMNS}
+                    head["uid"] = uid_
                     for c in ("acquired_at", "recorded_at"):
                         try:
                             head[c] = _aware(rec[c], c, f"{path}: line {line}")
@@ -1258,16 +1465,24 @@ def _read_ledger_csv(path: Path) -> "OrderedDict[str, tuple[dict[str, Any], list
                     for c in ("site", "scanner", "protocol", "template", "settings_hash"):
                         if not head[c]:
                             raise InputError(f"{path}: line {line}: empty {c}")
+                    head["baselines"] = rec["baselines"]
                     groups[uid_] = (head, [])
+                    for created_at, note in _parse_baselines_cell(rec["baselines"], path, line):
+                        key = (head["site"], head["scanner"], head["protocol"], created_at)
+                        if key in wanted and wanted[key][0] != note:
+                            raise InputError(f"{path}: line {line}: baseline {created_at.isoformat()} of {head['scanner']} has another note than on an earlier line; the file is inconsistent")
+                        wanted.setdefault(key, (note, []))[1].append(uid_)
                 else:
                     head = groups[uid_][0]
-                    for c in ("site", "scanner", "protocol", "template", "series_uid", "settings_hash"):
-                        if (rec[c] or None) != head[c]:
+                    for c in ("site", "scanner", "protocol", "template", "series_uid", "settings_hash", "baselines"):
+                        if (rec[c] or None) != (head[c] or None):
                             raise InputError(f"{path}: line {line}: analysis {uid_} has another {c} than on its first row; the file is inconsistent")
                 groups[uid_][1].append(row)
-    except (OSError, UnicodeDecodeError, csv.Error) as exc:
-        raise InputError(f"{path}: cannot be read as CSV ({exc})") from None
-    return groups
+    except UnicodeDecodeError as exc:
+        raise InputError(f"{path}: is not UTF-8 text (byte {exc.start}); give a CSV written by phantometry ledger export") from None
+    except (OSError, csv.Error) as exc:
+        raise InputError(f"{path}: cannot be read as CSV ({getattr(exc, 'strerror', None) or _one_line(exc)})") from None
+    return groups, wanted
 
 
 __all__ = [
@@ -1277,6 +1492,9 @@ __all__ = [
     "ExportReport",
     "ImportReport",
     "LEDGER_CSV_COLUMNS",
+    "LedgerCsv",
+    "OPTIONAL_CSV_COLUMNS",
+    "TEXT_CSV_COLUMNS",
     "Ledger",
     "RecordResult",
     "ScannerInfo",
@@ -1285,6 +1503,8 @@ __all__ = [
     "TrendPoint",
     "UNTRENDED_UNITS",
     "analysis_verdict",
+    "read_ledger_csv",
+    "read_result_document",
     "default_protocol_label",
     "default_scanner_label",
     "default_site_label",
