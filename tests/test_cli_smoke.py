@@ -8,6 +8,7 @@ declared is also tested. Every case drives the ``phantometry`` executable as a s
 from __future__ import annotations
 
 import os
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -58,6 +59,9 @@ def test_help_of_every_command(command):
     assert r.returncode == 0, r.stderr
     assert r.stdout.startswith("Usage: phantometry"), r.stdout[:200]
     assert "Traceback" not in r.stdout + r.stderr
+    # placeholders in words (DIR, NAME|FILE), never Python types such as <list[Path]> or <bool>
+    assert not re.search(r"<[a-z][A-Za-z_\[\]., |]*>", r.stdout), r.stdout
+    assert "{" not in r.stdout.splitlines()[0], r.stdout.splitlines()[0]
 
 
 def test_version():

@@ -12,7 +12,7 @@ from __future__ import annotations
 import dataclasses
 import os
 from pathlib import Path
-from typing import Any, Sequence
+from typing import Any, Callable, Sequence
 
 import numpy as np
 
@@ -42,6 +42,7 @@ def measure_volume(
     uncertainties: bool = True,
     resolution: bool = True,
     variance_power: float = 1.0,
+    progress: Callable[[str], None] | None = None,
 ) -> Analysis:
     """Locate the phantom and compute every metric its template's analysis kind defines.
 
@@ -58,6 +59,8 @@ def measure_volume(
     uncertainties : estimate the noise and give every metric it can its standard uncertainty.
     resolution : fit the effective resolution (kinds with a model for it).
     variance_power : ``p`` of the noise level law ``var ~ level^p`` (1: Poisson-like).
+    progress : called with a short text as each long step starts (locating, measuring,
+        uncertainties); None: silent.
 
     Returns
     -------
@@ -66,7 +69,8 @@ def measure_volume(
     where = where or volume.source or "image"
     fill.check_inserts(template)
     kind = kind_of(template)
-    settings = AnalysisSettings(uncertainties=uncertainties, resolution=resolution, variance_power=variance_power)
+    settings = AnalysisSettings(uncertainties=uncertainties, resolution=resolution, variance_power=variance_power, progress=progress)
+    settings.step(f"locating the phantom (template {template.name})")
     analysis = kind.analyse(volume, template, fill, overrides=overrides, where=where, settings=settings)
     # the loader's warnings about the image (Volume.warnings) come first
     analysis.warnings[:0] = [w for w in volume.warnings if w not in analysis.warnings]
@@ -234,6 +238,7 @@ def measure(
     bands: Sequence[BandSet | str | os.PathLike] | None = None,
     overwrite: bool = False,
     record: Any = None,
+    progress: Callable[[str], None] | None = None,
 ) -> Analysis:
     """Measure a phantom scan from files and write ``out/`` (CSV, JSON, pictures).
 
@@ -257,6 +262,9 @@ def measure(
     earlier phantometry results; it may not be, lie inside or contain an input. The returned
     analysis carries ``written`` (:class:`phantometry.outputs.WrittenFolder`: whether an
     earlier folder was replaced, and what it held that this run did not write).
+
+    ``progress`` (a callable taking a short text) hears of each long step as it starts:
+    loading (with the number of files), locating, measuring, uncertainties, writing.
 
     Raises
     ------
@@ -282,6 +290,8 @@ def measure(
             check_band_set(b, tpl.name, known)
     if record is not None:  # a duplicate is refused before the pixels are read
         record.check_inputs(inputs, series=series, acquired_at=acquired_at, template=tpl.name, fill=fill_record)
+    if progress is not None:
+        progress(f"loading {describe_inputs(inputs)}")
     volume = load_image(inputs, series=series, units=units, acquired_at=acquired_at, nuclide=nuclide, calibration_factor=calibration_factor)
     where = str(inputs if isinstance(inputs, (str, os.PathLike)) else ", ".join(map(str, inputs)))
     if record is not None:
@@ -292,7 +302,7 @@ def measure(
         check_seg_request(volume, tpl, kind, where)
     out = Path(out)
     try:
-        analysis = measure_volume(volume, tpl, fill_record, overrides=overrides, where=where)
+        analysis = measure_volume(volume, tpl, fill_record, overrides=overrides, where=where, progress=progress)
     except PhantomNotFound:
         try:
             from .figures import diagnostic_picture
@@ -305,13 +315,40 @@ def measure(
         raise
     if band_sets:
         judge(analysis, band_sets)
+    if progress is not None:
+        progress(f"writing {out}")
     with output_folder(out, KIND_MEASURE, inputs=input_paths, overwrite=overwrite) as staging:
         write_results(analysis, staging.path, overlay=overlay, pictures=overlay, report=report, seg=seg,
                       source_paths=[inputs] if isinstance(inputs, (str, os.PathLike)) else list(inputs))
     analysis.written = staging.written
     if record is not None:
+        if progress is not None:
+            progress("recording the analysis in the trend ledger")
         record.record(analysis)
     return analysis
 
 
-__all__ = ["measure", "measure_volume", "judge", "write_results", "load_image", "analysis_json", "parse_centre_overrides", "PhantometryError"]
+def describe_inputs(inputs: Sequence[str | os.PathLike] | str | os.PathLike) -> str:
+    """The inputs as a progress line names them: ``scan/dicom (111 files)``, ``scan.nii.gz``.
+
+    Folders are counted to the files they hold (what the loader will look at); a count that
+    cannot be made (unreadable folder) is left out.
+    """
+    paths = [Path(p) for p in ([inputs] if isinstance(inputs, (str, os.PathLike)) else inputs)]
+    count = 0
+    for p in paths:
+        if p.is_dir():
+            try:
+                count += sum(len(files) for _, _, files in os.walk(p))
+            except OSError:  # pragma: no cover - os.walk reports errors through onerror only
+                pass
+        else:
+            count += 1
+    names = ", ".join(map(str, paths[:3])) + (f" and {len(paths) - 3} more" if len(paths) > 3 else "")
+    if len(paths) == 1 and paths[0].is_file():
+        return names
+    return f"{names} ({count} file{'s' if count != 1 else ''})"
+
+
+__all__ = ["measure", "measure_volume", "judge", "write_results", "load_image", "analysis_json", "parse_centre_overrides", "describe_inputs",
+           "PhantometryError"]

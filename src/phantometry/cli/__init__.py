@@ -57,6 +57,16 @@ from . import ledger as _ledger  # noqa: E402,F401
 from . import compare as _compare  # noqa: E402,F401
 
 
+def command():
+    """The click command tree of the app, with plain placeholders in its help pages
+    (:func:`phantometry.cli.helptext.plain_help`)."""
+    import typer.main
+
+    from .helptext import plain_help
+
+    return plain_help(typer.main.get_command(app))
+
+
 def main(argv: Optional[list[str]] = None) -> int:
     """Entry point of the ``phantometry`` console script; returns the exit code.
 
@@ -67,7 +77,7 @@ def main(argv: Optional[list[str]] = None) -> int:
     args = list(sys.argv[1:] if argv is None else argv)
     debug = "--debug" in args
     try:
-        app(args=args, prog_name="phantometry", standalone_mode=True)
+        command().main(args=args, prog_name="phantometry", standalone_mode=True)
     except SystemExit as exc:  # normal end, typer.Exit, usage errors (already printed)
         if exc.code is None:
             return 0

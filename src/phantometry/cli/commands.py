@@ -18,11 +18,14 @@ from rich.table import Table
 from ..errors import InputError
 from ..results import CAUTION
 from . import app, templates_app
+from .progress import QUIET_HELP, step_printer
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..phantoms.base import Analysis
 
 console = Console(highlight=False)
+
+TEMPLATES_HELP = "Extra folder of templates (searched before the built-in ones); repeatable."
 
 
 def _parse_time(text: Optional[str]) -> Optional[datetime]:
@@ -63,28 +66,29 @@ def print_summary_table(analysis: Analysis) -> None:
 
 @app.command("measure")
 def measure_cmd(
-    inputs: List[Path] = typer.Argument(..., help="DICOM folder(s)/file(s) of one series, or a NIfTI file."),
-    template: str = typer.Option("iec-body", "--template", "-t", help="Template name or YAML file."),
-    fill: Path = typer.Option(..., "--fill", "-f", help="Fill record YAML (phantom preparation)."),
-    out: Path = typer.Option(..., "--out", "-o", help="Result folder: a new one, or earlier results with --overwrite (written atomically)."),
+    inputs: List[Path] = typer.Argument(..., metavar="INPUT", help="DICOM folder(s)/file(s) of one series, or a NIfTI file."),
+    template: str = typer.Option("iec-body", "--template", "-t", metavar="NAME|FILE", help="Template name or YAML file."),
+    fill: Path = typer.Option(..., "--fill", "-f", metavar="FILE", help="Fill record YAML (phantom preparation)."),
+    out: Path = typer.Option(..., "--out", "-o", metavar="DIR", help="Result folder: a new one, or earlier results with --overwrite (written atomically)."),
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace --out when it holds earlier phantometry results (never any other folder)."),
-    series: Optional[str] = typer.Option(None, "--series", help="Series UID, UID prefix or series number."),
-    centre: Optional[List[str]] = typer.Option(None, "--centre", help="Manual insert centre NAME=x,y,z (world mm); repeatable."),
-    units: Optional[str] = typer.Option(None, "--units", help="NIfTI: pixel units (Bq/mL, kBq/mL)."),
-    acquired_at: Optional[str] = typer.Option(None, "--acquired-at", help="Image reference time, ISO 8601 with offset."),
-    nuclide: Optional[str] = typer.Option(None, "--nuclide", help="NIfTI: radionuclide, e.g. F-18."),
-    calibration: Optional[float] = typer.Option(None, "--calibration", help="Bq/mL per count for CNTS images."),
-    templates_dir: Optional[List[Path]] = typer.Option(None, "--templates", help="Extra folder of templates."),
+    series: Optional[str] = typer.Option(None, "--series", metavar="UID|NUMBER", help="Series UID, UID prefix or series number."),
+    centre: Optional[List[str]] = typer.Option(None, "--centre", metavar="NAME=X,Y,Z", help="Manual insert centre NAME=x,y,z (world mm); repeatable."),
+    units: Optional[str] = typer.Option(None, "--units", metavar="UNIT", help="NIfTI: pixel units (Bq/mL, kBq/mL)."),
+    acquired_at: Optional[str] = typer.Option(None, "--acquired-at", metavar="TIME", help="Image reference time, ISO 8601 with offset."),
+    nuclide: Optional[str] = typer.Option(None, "--nuclide", metavar="NAME", help="NIfTI: radionuclide, e.g. F-18."),
+    calibration: Optional[float] = typer.Option(None, "--calibration", metavar="FACTOR", help="Bq/mL per count for CNTS images."),
+    templates_dir: Optional[List[Path]] = typer.Option(None, "--templates", metavar="DIR", help="Extra folder of templates; repeatable."),
     report: bool = typer.Option(False, "--report", help="Also write report.html (self-contained, printable)."),
     seg: bool = typer.Option(False, "--seg", help="Also write rois_seg.dcm: the ROIs as a DICOM Segmentation (DICOM input only)."),
     record: bool = typer.Option(False, "--record", help="Record the analysis in the trend ledger after writing the results."),
-    db: Optional[str] = typer.Option(None, "--db", envvar="PHANTOMETRY_DB", help="Ledger database URL or file (with --record)."),
-    site: Optional[str] = typer.Option(None, "--site", help="Ledger site label (with --record; default: the fill record's site)."),
-    scanner: Optional[str] = typer.Option(None, "--scanner", help="Ledger scanner label (with --record; default: station name)."),
-    protocol: Optional[str] = typer.Option(None, "--protocol", help="Ledger protocol label (with --record; default: reconstruction)."),
+    db: Optional[str] = typer.Option(None, "--db", envvar="PHANTOMETRY_DB", metavar="URL|FILE", help="Ledger database URL or file (with --record)."),
+    site: Optional[str] = typer.Option(None, "--site", metavar="LABEL", help="Ledger site label (with --record; default: the fill record's site)."),
+    scanner: Optional[str] = typer.Option(None, "--scanner", metavar="LABEL", help="Ledger scanner label (with --record; default: station name)."),
+    protocol: Optional[str] = typer.Option(None, "--protocol", metavar="LABEL", help="Ledger protocol label (with --record; default: reconstruction)."),
     replace: bool = typer.Option(False, "--replace", help="With --record: replace an analysis of the same series + template + settings."),
-    bands: Optional[List[str]] = typer.Option(None, "--bands", help="Acceptance band set (name or YAML file; phantometry bands list); repeatable."),
+    bands: Optional[List[str]] = typer.Option(None, "--bands", metavar="NAME|FILE", help="Acceptance band set (name or YAML file; phantometry bands list); repeatable."),
     strict: bool = typer.Option(False, "--strict", help="Exit code 3 when any banded value fails (results are still written)."),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help=QUIET_HELP),
 ) -> None:
     """Measure a phantom scan: recovery coefficients, contrast, background variability, insert residual.
 
@@ -119,6 +123,7 @@ def measure_cmd(
         bands=list(bands or []),
         overwrite=overwrite,
         record=request,
+        progress=step_printer(quiet),
     )
     print_summary_table(analysis)
     _print_resolution_and_verdicts(analysis, bool(bands))
@@ -196,30 +201,30 @@ def print_written(written) -> None:
 
 @app.command("synth")
 def synth_cmd(
-    out: Path = typer.Argument(..., help="Output folder: a new one, or an earlier synthetic scan with --overwrite."),
+    out: Path = typer.Argument(..., metavar="OUT", help="Output folder: a new one, or an earlier synthetic scan with --overwrite."),
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace OUT when it holds an earlier phantometry folder (never any other folder)."),
-    phantom: str = typer.Option("iec-body", "--phantom", help="Template name: iec-body, small-animal, or a user template."),
+    phantom: str = typer.Option("iec-body", "--phantom", metavar="NAME", help="Template name: iec-body, small-animal, or a user template."),
     template_file: Optional[Path] = typer.Option(
-        None, "--template-file", help="Build the phantom from this template file instead (a variant: e.g. the sphere ring turned or mirrored)."
+        None, "--template-file", metavar="FILE", help="Build the phantom from this template file instead (a variant: e.g. the sphere ring turned or mirrored)."
     ),
-    fmt: str = typer.Option("dicom", "--format", help="dicom or nifti."),
-    voxel: Optional[float] = typer.Option(None, "--voxel", help="Isotropic voxel size, mm (default 2; 0.5 for small-animal)."),
-    matrix: Optional[str] = typer.Option(None, "--matrix", help="Grid size NX,NY,NZ (default: fits the phantom)."),
-    fwhm: Optional[float] = typer.Option(None, "--fwhm", help="PSF FWHM, mm (default 6; 1.8 for small-animal)."),
-    ratio: float = typer.Option(4.0, "--ratio", help="Hot insert : background concentration ratio."),
-    background: Optional[float] = typer.Option(None, "--background", help="Background at scan time, kBq/mL (default 5.3; 150 for small-animal)."),
-    noise: float = typer.Option(0.1, "--noise", help="Background voxel coefficient of variation (0 = off)."),
-    cold: Optional[List[str]] = typer.Option(None, "--cold", help="Insert filled with water; repeatable."),
-    shift: str = typer.Option("0,0,0", "--shift", help="Translation x,y,z, mm."),
-    rotate: str = typer.Option("0,0,0", "--rotate", help="Rotation about x,y,z, degrees."),
+    fmt: str = typer.Option("dicom", "--format", metavar="dicom|nifti", help="dicom or nifti."),
+    voxel: Optional[float] = typer.Option(None, "--voxel", metavar="MM", help="Isotropic voxel size, mm (default 2; 0.5 for small-animal)."),
+    matrix: Optional[str] = typer.Option(None, "--matrix", metavar="NX,NY,NZ", help="Grid size NX,NY,NZ (default: fits the phantom)."),
+    fwhm: Optional[float] = typer.Option(None, "--fwhm", metavar="MM", help="PSF FWHM, mm (default 6; 1.8 for small-animal)."),
+    ratio: float = typer.Option(4.0, "--ratio", metavar="RATIO", help="Hot insert : background concentration ratio."),
+    background: Optional[float] = typer.Option(None, "--background", metavar="KBQ_ML", help="Background at scan time, kBq/mL (default 5.3; 150 for small-animal)."),
+    noise: float = typer.Option(0.1, "--noise", metavar="CV", help="Background voxel coefficient of variation (0 = off)."),
+    cold: Optional[List[str]] = typer.Option(None, "--cold", metavar="INSERT", help="Insert filled with water; repeatable."),
+    shift: str = typer.Option("0,0,0", "--shift", metavar="X,Y,Z", help="Translation x,y,z, mm."),
+    rotate: str = typer.Option("0,0,0", "--rotate", metavar="RX,RY,RZ", help="Rotation about x,y,z, degrees."),
     flip: bool = typer.Option(False, "--flip", help="Phantom lying the other way along the bed."),
-    seed: int = typer.Option(0, "--seed", help="Noise seed."),
-    diameter: Optional[float] = typer.Option(None, "--diameter", help="Cylindrical body diameter, mm (e.g. uniform-cylinder; default: the template's)."),
-    length: Optional[float] = typer.Option(None, "--length", help="Cylindrical body length, mm (default: the template's)."),
-    calibration_factor: float = typer.Option(1.0, "--calibration-factor", help="Imperfection: gain of the whole image (1 = calibrated)."),
-    axial_slope: float = typer.Option(0.0, "--axial-slope", help="Imperfection: axial gain slope, % per 100 mm along the slice axis."),
-    slice_artefact: Optional[str] = typer.Option(None, "--slice-artefact", help="Imperfection: Z_MM,GAIN_PCT: the image slice nearest Z_MM from the phantom centre scaled by 1 + GAIN_PCT/100."),
-    radial: float = typer.Option(0.0, "--radial", help="Imperfection: radial gain at the wall relative to the axis, % (positive: cupping, negative: capping)."),
+    seed: int = typer.Option(0, "--seed", metavar="N", help="Noise seed."),
+    diameter: Optional[float] = typer.Option(None, "--diameter", metavar="MM", help="Cylindrical body diameter, mm (e.g. uniform-cylinder; default: the template's)."),
+    length: Optional[float] = typer.Option(None, "--length", metavar="MM", help="Cylindrical body length, mm (default: the template's)."),
+    calibration_factor: float = typer.Option(1.0, "--calibration-factor", metavar="GAIN", help="Imperfection: gain of the whole image (1 = calibrated)."),
+    axial_slope: float = typer.Option(0.0, "--axial-slope", metavar="PCT", help="Imperfection: axial gain slope, % per 100 mm along the slice axis."),
+    slice_artefact: Optional[str] = typer.Option(None, "--slice-artefact", metavar="Z_MM,GAIN_PCT", help="Imperfection: Z_MM,GAIN_PCT: the image slice nearest Z_MM from the phantom centre scaled by 1 + GAIN_PCT/100."),
+    radial: float = typer.Option(0.0, "--radial", metavar="PCT", help="Imperfection: radial gain at the wall relative to the axis, % (positive: cupping, negative: capping)."),
 ) -> None:
     """Synthesise a phantom scan with known truth (image, fill.yaml, truth.json)."""
     from ..outputs import KIND_SCAN, check_output_folder, existing_inputs
@@ -271,9 +276,9 @@ def synth_cmd(
 
 @app.command("info")
 def info_cmd(
-    inputs: List[Path] = typer.Argument(..., help="DICOM folder(s)/file(s) or a NIfTI file."),
-    series: Optional[str] = typer.Option(None, "--series"),
-    units: Optional[str] = typer.Option(None, "--units"),
+    inputs: List[Path] = typer.Argument(..., metavar="INPUT", help="DICOM folder(s)/file(s) or a NIfTI file."),
+    series: Optional[str] = typer.Option(None, "--series", metavar="UID|NUMBER", help="Series UID, UID prefix or series number (several series in the input)."),
+    units: Optional[str] = typer.Option(None, "--units", metavar="UNIT", help="NIfTI: pixel units (Bq/mL, kBq/mL)."),
 ) -> None:
     """Show the series found and the loaded volume's geometry and metadata."""
     from ..measure import load_image
@@ -284,9 +289,10 @@ def info_cmd(
 
 @app.command("demo")
 def demo_cmd(
-    out: Optional[Path] = typer.Option(None, "--out", "-o", help="Folder for the demo scan and results: a new one, or an earlier demo with --overwrite (default: a temporary folder)."),
+    out: Optional[Path] = typer.Option(None, "--out", "-o", metavar="DIR", help="Folder for the demo scan and results: a new one, or an earlier demo with --overwrite (default: a temporary folder)."),
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace --out when it holds an earlier phantometry folder (never any other folder)."),
-    noise: float = typer.Option(0.1, "--noise", help="Background voxel coefficient of variation."),
+    noise: float = typer.Option(0.1, "--noise", metavar="CV", help="Background voxel coefficient of variation."),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help=QUIET_HELP),
 ) -> None:
     """Synthesise an IEC body phantom scan (invented scenario) and measure it end to end."""
     from ..measure import measure
@@ -302,8 +308,12 @@ def demo_cmd(
         with output_folder(base, KIND_DEMO, overwrite=overwrite) as staging:
             console.print("[bold]phantometry demo[/bold]: synthetic IEC body phantom (invented site and scanner) in " + escape(str(base)))
             spec = SynthSpec(voxel_mm=(2.0, 2.0, 2.0), psf_fwhm_mm=6.0, noise_cv=noise, shift_mm=(6.0, -4.0, 3.0), rotation_deg=(1.5, -1.0, 17.0), seed=7)
+            progress = step_printer(quiet)
+            if progress is not None:
+                progress("synthesising the scan")
             paths = write_synthetic(synthesize(spec), staging.path / "scan", "dicom")
-            analysis = measure([str(paths["image"])], template="iec-body", fill=paths["fill"], out=staging.path / "results")
+            analysis = measure([str(paths["image"])], template="iec-body", fill=paths["fill"], out=staging.path / "results",
+                               progress=progress)
     except BaseException:
         if out is None:  # the empty temporary folder made above
             shutil.rmtree(base, ignore_errors=True)
@@ -314,7 +324,7 @@ def demo_cmd(
 
 
 @templates_app.command("list")
-def templates_list(templates_dir: Optional[List[Path]] = typer.Option(None, "--templates")) -> None:
+def templates_list(templates_dir: Optional[List[Path]] = typer.Option(None, "--templates", metavar="DIR", help=TEMPLATES_HELP)) -> None:
     """List the templates found (user folders first, then the built-in ones)."""
     from ..templates import list_templates, load_template_file
 
@@ -327,7 +337,10 @@ def templates_list(templates_dir: Optional[List[Path]] = typer.Option(None, "--t
 
 
 @templates_app.command("show")
-def templates_show(name: str, templates_dir: Optional[List[Path]] = typer.Option(None, "--templates")) -> None:
+def templates_show(
+    name: str = typer.Argument(..., metavar="NAME", help="Template name or YAML file."),
+    templates_dir: Optional[List[Path]] = typer.Option(None, "--templates", metavar="DIR", help=TEMPLATES_HELP),
+) -> None:
     """Print a template as validated (JSON)."""
     from ..phantoms import load_template
 
@@ -335,7 +348,7 @@ def templates_show(name: str, templates_dir: Optional[List[Path]] = typer.Option
 
 
 @templates_app.command("check")
-def templates_check(path: Path) -> None:
+def templates_check(path: Path = typer.Argument(..., metavar="FILE", help="Template YAML file.")) -> None:
     """Validate a template file: schema and geometry (inserts inside, no overlaps, ROI clearances)."""
     from ..errors import TemplateError
     from ..phantoms import check_template

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from pathlib import Path
-from typing import List, Optional
+from typing import TYPE_CHECKING, List, Optional
 
 import typer
 from rich.console import Console
@@ -14,6 +14,10 @@ from rich.table import Table
 from ..results import CAUTION
 from . import app
 from .commands import print_written
+from .progress import interactive
+
+if TYPE_CHECKING:  # pragma: no cover
+    from ..ranking import ComparisonResult
 
 console = Console(highlight=False)
 err_console = Console(stderr=True, highlight=False)
@@ -57,16 +61,17 @@ def print_ranking(result, report: bool = False) -> None:
 
 @app.command("compare")
 def compare_cmd(
-    inputs: List[Path] = typer.Argument(..., help="Folder of reconstructions (DICOM series, NIfTI files), or the series themselves."),
-    template: str = typer.Option("iec-body", "--template", "-t", help="Template name or YAML file."),
-    fill: Path = typer.Option(..., "--fill", "-f", help="Fill record YAML, the same for every series."),
-    bands: Optional[List[str]] = typer.Option(None, "--bands", "-b", help="Acceptance band set; repeatable."),
-    out: Path = typer.Option(..., "--out", "-o", help="Result folder: a new one, or earlier results with --overwrite (written atomically)."),
+    inputs: List[Path] = typer.Argument(..., metavar="INPUT", help="Folder of reconstructions (DICOM series, NIfTI files), or the series themselves."),
+    template: str = typer.Option("iec-body", "--template", "-t", metavar="NAME|FILE", help="Template name or YAML file."),
+    fill: Path = typer.Option(..., "--fill", "-f", metavar="FILE", help="Fill record YAML, the same for every series."),
+    bands: Optional[List[str]] = typer.Option(None, "--bands", "-b", metavar="NAME|FILE", help="Acceptance band set; repeatable. Without bands the settings are listed, not ranked."),
+    out: Path = typer.Option(..., "--out", "-o", metavar="DIR", help="Result folder: a new one, or earlier results with --overwrite (written atomically)."),
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace --out when it holds earlier phantometry results (never any other folder)."),
-    labels: Optional[Path] = typer.Option(None, "--labels", help="YAML or CSV file: series UID or number -> label."),
-    workers: Optional[int] = typer.Option(None, "--workers", "-j", help="Worker processes (default: one per CPU)."),
+    labels: Optional[Path] = typer.Option(None, "--labels", metavar="FILE", help="YAML or CSV file: series UID or number -> label."),
+    workers: Optional[int] = typer.Option(None, "--workers", "-j", metavar="N", help="Worker processes (default: one per CPU)."),
     report: bool = typer.Option(False, "--report", help="Also write report.html (self-contained)."),
-    templates_dir: Optional[List[Path]] = typer.Option(None, "--templates", help="Extra folder of templates."),
+    templates_dir: Optional[List[Path]] = typer.Option(None, "--templates", metavar="DIR", help="Extra folder of templates; repeatable."),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar on stderr (it appears only when stderr is a terminal)."),
 ) -> None:
     """Compare reconstruction settings: measure every PET series with one fill record and rank them.
 
@@ -75,24 +80,8 @@ def compare_cmd(
     """
     from ..compare import compare
 
-    with Progress(
-        TextColumn("measuring"),
-        BarColumn(),
-        MofNCompleteColumn(),
-        TimeElapsedColumn(),
-        TextColumn("{task.description}"),
-        console=err_console,
-        transient=True,
-    ) as bar:
-        task = bar.add_task("", total=None)
-
-        def progress(done: int, total: int, outcome) -> None:
-            text = ""
-            if outcome is not None:
-                text = f"#{outcome.job.number} {'ok' if outcome.ok else 'FAILED'}"
-            bar.update(task, completed=done, total=total, description=escape(text))
-
-        result = compare(
+    def run(progress) -> "ComparisonResult":
+        return compare(
             [str(p) for p in inputs],
             template=template,
             fill=fill,
@@ -105,6 +94,28 @@ def compare_cmd(
             progress=progress,
             overwrite=overwrite,
         )
+
+    if quiet or not interactive():
+        result = run(None)
+    else:
+        with Progress(
+            TextColumn("measuring"),
+            BarColumn(),
+            MofNCompleteColumn(),
+            TimeElapsedColumn(),
+            TextColumn("{task.description}"),
+            console=err_console,
+            transient=True,
+        ) as bar:
+            task = bar.add_task("", total=None)
+
+            def progress(done: int, total: int, outcome) -> None:
+                text = ""
+                if outcome is not None:
+                    text = f"#{outcome.job.number} {'ok' if outcome.ok else 'FAILED'}"
+                bar.update(task, completed=done, total=total, description=escape(text))
+
+            result = run(progress)
     print_ranking(result, report)
     print_written(result.written)
     files = ", ".join(["comparison.csv", "ranking.csv", "summary.json", *(name for name, _ in result.charts)] + (["report.html"] if report else []))

@@ -49,7 +49,7 @@ DB_HELP = "Ledger database: SQLAlchemy URL (sqlite:///..., postgresql+psycopg://
 
 
 def _db_option():
-    return typer.Option(None, "--db", envvar="PHANTOMETRY_DB", help=DB_HELP, show_envvar=True)
+    return typer.Option(None, "--db", envvar="PHANTOMETRY_DB", metavar="URL|FILE", help=DB_HELP, show_envvar=True)
 
 
 def parse_cli_time(text: Optional[str], option: str, *, end_of_day: bool = False) -> Optional[datetime]:
@@ -135,10 +135,10 @@ def print_recorded(request) -> None:
 
 @ledger_app.command("add")
 def add_cmd(
-    paths: List[Path] = typer.Argument(..., help="Result folder(s) of phantometry measure, or their measurements.json."),
-    site: Optional[str] = typer.Option(None, "--site", help="Site label (default: the fill record's site)."),
-    scanner: Optional[str] = typer.Option(None, "--scanner", help="Scanner label (default: station name from the headers)."),
-    protocol: Optional[str] = typer.Option(None, "--protocol", help="Protocol label (default: the reconstruction settings)."),
+    paths: List[Path] = typer.Argument(..., metavar="RESULTS", help="Result folder(s) of phantometry measure, or their measurements.json."),
+    site: Optional[str] = typer.Option(None, "--site", metavar="LABEL", help="Site label (default: the fill record's site)."),
+    scanner: Optional[str] = typer.Option(None, "--scanner", metavar="LABEL", help="Scanner label (default: station name from the headers)."),
+    protocol: Optional[str] = typer.Option(None, "--protocol", metavar="LABEL", help="Protocol label (default: the reconstruction settings)."),
     replace: bool = typer.Option(False, "--replace", help="Replace an analysis of the same series + template + settings."),
     db: Optional[str] = _db_option(),
 ) -> None:
@@ -181,14 +181,14 @@ def add_cmd(
 
 @ledger_app.command("list")
 def list_cmd(
-    site: Optional[str] = typer.Option(None, "--site"),
-    scanner: Optional[str] = typer.Option(None, "--scanner"),
-    protocol: Optional[str] = typer.Option(None, "--protocol"),
-    template: Optional[str] = typer.Option(None, "--template"),
-    since: Optional[str] = typer.Option(None, "--since", help="Acquired on or after (date or ISO time)."),
-    until: Optional[str] = typer.Option(None, "--until", help="Acquired on or before (a date covers the whole day)."),
-    verdict: Optional[str] = typer.Option(None, "--verdict", help="fail, pass, n/a or none (worst verdict of the analysis)."),
-    limit: Optional[int] = typer.Option(None, "--limit", help="Only the most recent N."),
+    site: Optional[str] = typer.Option(None, "--site", metavar="LABEL", help="Only this site."),
+    scanner: Optional[str] = typer.Option(None, "--scanner", metavar="LABEL", help="Only this scanner."),
+    protocol: Optional[str] = typer.Option(None, "--protocol", metavar="LABEL", help="Only this protocol."),
+    template: Optional[str] = typer.Option(None, "--template", metavar="NAME", help="Only this template."),
+    since: Optional[str] = typer.Option(None, "--since", metavar="TIME", help="Acquired on or after (date or ISO time)."),
+    until: Optional[str] = typer.Option(None, "--until", metavar="TIME", help="Acquired on or before (a date covers the whole day)."),
+    verdict: Optional[str] = typer.Option(None, "--verdict", metavar="VERDICT", help="fail, pass, n/a or none (worst verdict of the analysis)."),
+    limit: Optional[int] = typer.Option(None, "--limit", metavar="N", help="Only the most recent N."),
     db: Optional[str] = _db_option(),
 ) -> None:
     """List recorded analyses (acquisition order), filtered."""
@@ -210,14 +210,14 @@ def list_cmd(
 
 @ledger_app.command("trend")
 def trend_cmd(
-    roi: str = typer.Argument(..., help="ROI, e.g. sphere_10mm."),
-    metric: str = typer.Argument(..., help="Metric, e.g. rc_max."),
-    scanner: Optional[str] = typer.Option(None, "--scanner", help="Scanner label (may be left out when there is one)."),
-    protocol: Optional[str] = typer.Option(None, "--protocol", help="Protocol label (may be left out when the scanner has one)."),
-    site: Optional[str] = typer.Option(None, "--site"),
-    since: Optional[str] = typer.Option(None, "--since"),
-    until: Optional[str] = typer.Option(None, "--until"),
-    chart: Optional[Path] = typer.Option(None, "--chart", help="Write the control chart PNG here."),
+    roi: str = typer.Argument(..., metavar="ROI", help="ROI, e.g. sphere_10mm."),
+    metric: str = typer.Argument(..., metavar="METRIC", help="Metric, e.g. rc_max."),
+    scanner: Optional[str] = typer.Option(None, "--scanner", metavar="LABEL", help="Scanner label (may be left out when there is one)."),
+    protocol: Optional[str] = typer.Option(None, "--protocol", metavar="LABEL", help="Protocol label (may be left out when the scanner has one)."),
+    site: Optional[str] = typer.Option(None, "--site", metavar="LABEL", help="Only this site."),
+    since: Optional[str] = typer.Option(None, "--since", metavar="TIME", help="Acquired on or after (date or ISO time)."),
+    until: Optional[str] = typer.Option(None, "--until", metavar="TIME", help="Acquired on or before (a date covers the whole day)."),
+    chart: Optional[Path] = typer.Option(None, "--chart", metavar="FILE", help="Write the control chart PNG here."),
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing --chart file."),
     db: Optional[str] = _db_option(),
 ) -> None:
@@ -261,13 +261,13 @@ def trend_cmd(
 
 @ledger_app.command("baseline")
 def baseline_cmd(
-    scanner: Optional[str] = typer.Option(None, "--scanner"),
-    protocol: Optional[str] = typer.Option(None, "--protocol"),
-    site: Optional[str] = typer.Option(None, "--site"),
-    ids: Optional[str] = typer.Option(None, "--ids", help="Analysis ids, comma-separated (see ledger list)."),
-    date_from: Optional[str] = typer.Option(None, "--from", help="First acquisition date/time of the baseline."),
-    date_to: Optional[str] = typer.Option(None, "--to", help="Last acquisition date/time (a date covers the whole day)."),
-    note: Optional[str] = typer.Option(None, "--note", help="Why this baseline (e.g. after acceptance testing)."),
+    scanner: Optional[str] = typer.Option(None, "--scanner", metavar="LABEL", help="Scanner label (may be left out when there is one)."),
+    protocol: Optional[str] = typer.Option(None, "--protocol", metavar="LABEL", help="Protocol label (may be left out when the scanner has one)."),
+    site: Optional[str] = typer.Option(None, "--site", metavar="LABEL", help="Site label (when scanner labels repeat across sites)."),
+    ids: Optional[str] = typer.Option(None, "--ids", metavar="ID,ID,...", help="Analysis ids, comma-separated (see ledger list)."),
+    date_from: Optional[str] = typer.Option(None, "--from", metavar="TIME", help="First acquisition date/time of the baseline."),
+    date_to: Optional[str] = typer.Option(None, "--to", metavar="TIME", help="Last acquisition date/time (a date covers the whole day)."),
+    note: Optional[str] = typer.Option(None, "--note", metavar="TEXT", help="Why this baseline (e.g. after acceptance testing)."),
     db: Optional[str] = _db_option(),
 ) -> None:
     """Set the baseline (analyses or a date range) that control limits come from; without a selection, show it."""
@@ -299,10 +299,10 @@ def baseline_cmd(
 
 @ledger_app.command("check")
 def check_cmd(
-    site: Optional[str] = typer.Option(None, "--site"),
-    scanner: Optional[str] = typer.Option(None, "--scanner"),
-    protocol: Optional[str] = typer.Option(None, "--protocol"),
-    since: Optional[str] = typer.Option(None, "--since", help="Report only flags at points acquired since then."),
+    site: Optional[str] = typer.Option(None, "--site", metavar="LABEL", help="Only this site."),
+    scanner: Optional[str] = typer.Option(None, "--scanner", metavar="LABEL", help="Only this scanner."),
+    protocol: Optional[str] = typer.Option(None, "--protocol", metavar="LABEL", help="Only this protocol."),
+    since: Optional[str] = typer.Option(None, "--since", metavar="TIME", help="Report only flags at points acquired since then."),
     all_metrics: bool = typer.Option(False, "--all-metrics", help="Also check positions (mm) and absolute concentrations (Bq/mL)."),
     strict: bool = typer.Option(False, "--strict", help="Exit code 1 when any flag is found (scripted QC)."),
     db: Optional[str] = _db_option(),
@@ -327,8 +327,8 @@ def check_cmd(
 
 @ledger_app.command("export")
 def export_cmd(
-    out: Path = typer.Argument(..., help="CSV file to write (long format, one row per measurement)."),
-    since: Optional[str] = typer.Option(None, "--since", help="Only analyses recorded since then (incremental export)."),
+    out: Path = typer.Argument(..., metavar="FILE", help="CSV file to write (long format, one row per measurement)."),
+    since: Optional[str] = typer.Option(None, "--since", metavar="TIME", help="Only analyses recorded since then (incremental export)."),
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing FILE."),
     db: Optional[str] = _db_option(),
 ) -> None:
@@ -344,7 +344,7 @@ def export_cmd(
 
 @ledger_app.command("import")
 def import_cmd(
-    path: Path = typer.Argument(..., help="CSV written by phantometry ledger export."),
+    path: Path = typer.Argument(..., metavar="FILE", help="CSV written by phantometry ledger export."),
     replace: bool = typer.Option(False, "--replace", help="Replace analyses of the same series + template + settings."),
     db: Optional[str] = _db_option(),
 ) -> None:
@@ -375,7 +375,7 @@ def info_cmd(db: Optional[str] = _db_option()) -> None:
 
 
 @ledger_app.command("remove")
-def remove_cmd(analysis_id: int = typer.Argument(..., help="Analysis id (see ledger list)."), db: Optional[str] = _db_option()) -> None:
+def remove_cmd(analysis_id: int = typer.Argument(..., metavar="ID", help="Analysis id (see ledger list)."), db: Optional[str] = _db_option()) -> None:
     """Remove one analysis and its measurements."""
     with _open(db) as ledger:
         if not ledger.remove(analysis_id):

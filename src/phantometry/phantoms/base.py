@@ -218,11 +218,19 @@ class AnalysisSettings:
         uncertainty.
     resolution : fit the effective resolution (kinds that have a model for it).
     variance_power : ``p`` of the noise level law ``var ~ level^p`` (1: Poisson-like).
+    progress : called with a short text as each long step starts (``"estimating the
+        uncertainties"``); None: silent. A kind announces its steps with :meth:`step`.
     """
 
     uncertainties: bool = True
     resolution: bool = True
     variance_power: float = 1.0
+    progress: Callable[[str], None] | None = None
+
+    def step(self, text: str) -> None:
+        """Announce a step of the analysis (nothing without a ``progress`` callable)."""
+        if self.progress is not None:
+            self.progress(text)
 
 
 @dataclass

@@ -427,6 +427,7 @@ class BodyKind(PhantomKind):
             fill_error_hint(volume, template, where)
             raise
         placement = locate(volume, template, axis_insert=opts.axis_insert, hot=hot, activity_ratio=ratio, overrides=overrides, where=where)
+        settings.step("measuring the ROIs")
         bg_set = template.background
         assert bg_set is not None  # check_template refuses a body template without one
         u, v, axis = _plane_basis(placement)
@@ -757,6 +758,7 @@ def _noise_resolution_uncertainties(analysis: BodyAnalysis, *, overrides, settin
     """
     noise = None
     if settings.uncertainties or settings.resolution:
+        settings.step("estimating the image noise, the effective resolution and the uncertainties")
         try:
             pl_noise, tpl_noise = noise_geometry(analysis)
             noise = estimate_noise(analysis.volume, pl_noise, tpl_noise, variance_power=settings.variance_power)

@@ -1124,6 +1124,7 @@ class UniformCylinderKind(PhantomKind):
         noise = None
         unc = _Uncertainties()
         if settings.uncertainties:
+            settings.step("estimating the image noise and the uncertainties")
             try:
                 from ..noise import estimate_noise
 
