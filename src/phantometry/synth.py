@@ -558,6 +558,46 @@ def fill_record_for(spec: SynthSpec, template: Template, measured_before_s: floa
     return record
 
 
+#: LPS <-> RAS: x and y change sign, z stays (DICOM PS3.3 C.7.6.2 patient coordinates; NIfTI-1
+#: scanner coordinates, RAS+)
+_FLIP_XY = np.diag([-1.0, -1.0, 1.0])
+
+
+def truth_in_frame(truth: dict[str, Any], frame: str) -> dict[str, Any]:
+    """The synthesizer's truth with every position and direction in world ``frame``.
+
+    ``frame`` is ``"LPS"`` or ``"RAS"``; the truth's own ``frame`` key says which it is in.
+    Positions (``centre_mm``, ``translation_mm``) and directions (``axis``, the columns of
+    ``rotation``: template axes in world coordinates) change the sign of x and y between the
+    two; sizes, concentrations and the template frame do not change. Returns a new dict with
+    ``frame`` set.
+
+    Raises
+    ------
+    InputError
+        An unknown frame.
+    """
+    if frame not in ("LPS", "RAS"):
+        raise InputError(f"unknown world frame {frame!r}; use LPS or RAS")
+    out = json.loads(json.dumps(truth))  # a deep copy of plain data
+    if out.get("frame", "LPS") == frame:
+        out["frame"] = frame
+        return out
+
+    def flip(v: Any) -> list[float]:
+        return (_FLIP_XY @ np.asarray(v, float)).tolist()
+
+    out["rotation"] = (_FLIP_XY @ np.asarray(out["rotation"], float)).tolist()
+    out["translation_mm"] = flip(out["translation_mm"])
+    out["body"]["centre_mm"] = flip(out["body"]["centre_mm"])
+    out["body"]["axis"] = flip(out["body"]["axis"])
+    for ins in out["inserts"].values():
+        ins["centre_mm"] = flip(ins["centre_mm"])
+        ins["axis"] = flip(ins["axis"])
+    out["frame"] = frame
+    return out
+
+
 def write_synthetic(
     result: SynthResult,
     out_dir: str | os.PathLike,
@@ -571,6 +611,11 @@ def write_synthetic(
     The folder is written by :func:`phantometry.outputs.output_folder` (kind ``synthetic-scan``):
     it must not exist, be empty, or (with ``overwrite=True``) hold an earlier phantometry
     folder; ``inputs`` (e.g. a user template file) may not lie in it.
+
+    ``truth.json`` is written in the world frame the image's results use, named in its
+    ``frame`` key: ``LPS`` (DICOM patient coordinates) for DICOM, ``RAS`` (NIfTI scanner
+    coordinates) for NIfTI (:func:`truth_in_frame`), so measured centres compare with it as
+    they are.
 
     Returns the paths written, keyed ``image``, ``fill``, ``truth``, and ``written`` (the
     :class:`phantometry.outputs.WrittenFolder`, which says whether an earlier folder was replaced).
@@ -602,7 +647,8 @@ def write_synthetic(
 
             image = out / write_nifti(result.volume, tmp / "phantom.nii.gz").name
         (tmp / "fill.yaml").write_text(yaml.safe_dump(result.fill_record, sort_keys=False), encoding="utf-8")
-        (tmp / "truth.json").write_text(json.dumps(result.truth, indent=2), encoding="utf-8")
+        truth = truth_in_frame(result.truth, "RAS" if fmt == "nifti" else "LPS")
+        (tmp / "truth.json").write_text(json.dumps(truth, indent=2), encoding="utf-8")
     return {"image": image, "fill": out / "fill.yaml", "truth": out / "truth.json", "written": staging.written}
 
 

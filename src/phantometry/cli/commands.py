@@ -11,6 +11,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, List, Optional
 
 import typer
+from rich import box
 from rich.console import Console
 from rich.markup import escape
 from rich.table import Table
@@ -18,6 +19,7 @@ from rich.table import Table
 from ..errors import InputError
 from ..results import CAUTION
 from . import app, templates_app
+from .numbers import MISSING, limits_range, number
 from .progress import QUIET_HELP, step_printer
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -40,28 +42,40 @@ def _parse_time(text: Optional[str]) -> Optional[datetime]:
     return t
 
 
-def _fmt(v, nd=2) -> str:
-    if v is None:
-        return "-"
-    try:
-        return f"{float(v):.{nd}f}"
-    except (TypeError, ValueError):
-        return str(v)
-
-
 def print_summary_table(analysis: Analysis) -> None:
     """The terminal summary of an analysis (its kind's table), then its warnings."""
     st = analysis.summary_table()
-    t = Table(title=st.title, caption=CAUTION, caption_justify="left")
+    t = Table(title=st.title, caption=CAUTION, caption_justify="left", box=box.SIMPLE_HEAD, show_edge=False, pad_edge=False)
     for i, c in enumerate(st.columns):
-        t.add_column(c, no_wrap=True, justify="left" if i == 0 or c in ("fill", "metric") else "right", min_width=11 if i == 0 else None)
+        t.add_column(c, no_wrap=True, justify="left" if i == 0 or c in ("fill", "metric") else "right")
     for row in st.rows:
-        t.add_row(*(escape(c) for c in row))
+        t.add_row(*(escape(_cell(c)) for c in row))
     console.print(t)
     for line in st.lines:
         console.print(line, markup=False)
     for w in analysis.warnings:
-        console.print("[bold]WARNING[/bold]: " + escape(w))
+        console.print("[bold]WARNING[/bold]: " + escape(strip_warning(w)))
+
+
+def _cell(text: str) -> str:
+    """A table cell: an undefined number (``nan``) shows as the missing mark."""
+    return MISSING if text.strip().lower() in ("nan", "none", "") else text
+
+
+def strip_warning(text: str) -> str:
+    """A warning without its own ``WARNING:`` prefix (the terminal adds one)."""
+    while text.upper().startswith("WARNING:"):
+        text = text[len("WARNING:"):].lstrip()
+    return text
+
+
+def metric_titles(analysis: Analysis) -> dict[str, str]:
+    """metric -> the title the kind's report tables give it (``rc_max`` -> ``RC max``)."""
+    titles: dict[str, str] = {}
+    for grid in analysis.result_grids():
+        for metric, title in grid.metrics:
+            titles.setdefault(metric, title)
+    return titles
 
 
 @app.command("measure")
@@ -153,42 +167,54 @@ def _print_resolution_and_verdicts(analysis: Analysis, banded: bool) -> None:
         if r.roi == "phantom" and r.metric == "effective_fwhm_mm":
             fit = analysis.json_extras().get("effective_resolution") or {}
             ci95 = fit.get("ci95_mm")
-            ci = f" (95 % interval {ci95[0]:.2f}-{ci95[1]:.2f} mm)" if ci95 else ""
-            console.print(f"  effective FWHM {_fmt(r.value, 2)} +- {_fmt(r.uncertainty, 2)} mm{ci}", markup=False)
+            ci = f" (95 % interval {number(ci95[0], 'mm')}–{number(ci95[1], 'mm')} mm)" if ci95 else ""
+            console.print(f"  effective FWHM {number(r.value, 'mm')} ± {number(r.uncertainty, 'mm')} mm{ci}", markup=False)
     if not banded:
         return
-    sets = list(analysis.band_sets)
-    caption = "Limits inclusive; u = standard uncertainty (noise only)."
-    if len(sets) > 1:
-        caption += " verdict: the worst over the bands; each band's limits are in measurements.csv (note)."
-    from rich import box
+    print_verdicts(analysis)
 
-    t = Table(title="Acceptance bands", caption=caption, caption_justify="left", box=box.SIMPLE_HEAD)
+
+def print_verdicts(analysis: Analysis) -> None:
+    """The verdict table: one row per banded value, each band set's limits, the verdict once.
+
+    One band set: its limits in a column headed by its name, then the verdict. Several: each
+    set's limits (marked ``low`` or ``high`` where the value falls outside them), then the
+    verdict (the worst over the sets).
+    """
+    sets = list(analysis.band_sets)
+    caption = "Limits inclusive; u = standard uncertainty (noise only); - : no value."
+    if len(sets) > 1:
+        caption += " low/high: outside that band; verdict: the worst over the bands."
+    t = Table(title="Acceptance bands", caption=caption, caption_justify="left", box=box.SIMPLE_HEAD, show_edge=False, pad_edge=False)
     t.add_column("ROI", no_wrap=True)
     t.add_column("metric", no_wrap=True)
-    t.add_column("value", justify="right", no_wrap=True, min_width=5)
-    t.add_column("u", justify="right", no_wrap=True, min_width=5)
+    t.add_column("value", justify="right", no_wrap=True)
+    t.add_column("u", justify="right", no_wrap=True)
     for bs in sets:
-        t.add_column(escape(bs.name), justify="right", no_wrap=len(sets) == 1, overflow="fold")
+        t.add_column(escape(bs.name), justify="right", no_wrap=True)
     t.add_column("verdict", no_wrap=True)
     colour = {"pass": "green", "fail": "bold red", "n/a": "yellow"}
-
-    def cell(verdict: str, text: str = "") -> str:
-        return f"[{colour.get(verdict, 'white')}]{verdict}[/]{text}"
-
+    titles = metric_titles(analysis)
+    roi_order: dict[str, int] = {}
+    metric_order: dict[str, int] = {}
     for r in analysis.rows:
-        if r.verdict is None:
-            continue
+        roi_order.setdefault(r.roi, len(roi_order))
+        metric_order.setdefault(r.metric, len(metric_order))
+    judged = sorted((r for r in analysis.rows if r.verdict is not None), key=lambda r: (roi_order[r.roi], metric_order[r.metric]))
+    for r in judged:
         cells = []
         for bs in sets:
             e = bs.entry(r.roi, r.metric)
             if e is None:
-                cells.append("-")
+                cells.append(MISSING)
                 continue
-            lo = "-inf" if e.low is None else f"{e.low:.3g}"
-            hi = "+inf" if e.high is None else f"{e.high:.3g}"
-            cells.append(cell(e.judge(r.value), f" {lo}..{hi}") if len(sets) == 1 else cell(e.judge(r.value)))
-        t.add_row(escape(r.roi), escape(r.metric), _fmt(r.value, 3), _fmt(r.uncertainty, 3), *cells, cell(r.verdict))
+            text = escape(limits_range(e.low, e.high))
+            if e.judge(r.value) == "fail":
+                side = "low" if e.low is not None and r.value < e.low else "high"
+                text += f" [bold red]{side}[/]" if len(sets) > 1 else ""
+            cells.append(text)
+        verdict = f"[{colour.get(r.verdict, 'white')}]{r.verdict}[/]"
+        t.add_row(escape(r.roi), escape(titles.get(r.metric, r.metric)), number(r.value, r.unit), number(r.uncertainty, r.unit), *cells, verdict)
     console.print(t)
 
 
@@ -225,6 +251,10 @@ def synth_cmd(
     axial_slope: float = typer.Option(0.0, "--axial-slope", metavar="PCT", help="Imperfection: axial gain slope, % per 100 mm along the slice axis."),
     slice_artefact: Optional[str] = typer.Option(None, "--slice-artefact", metavar="Z_MM,GAIN_PCT", help="Imperfection: Z_MM,GAIN_PCT: the image slice nearest Z_MM from the phantom centre scaled by 1 + GAIN_PCT/100."),
     radial: float = typer.Option(0.0, "--radial", metavar="PCT", help="Imperfection: radial gain at the wall relative to the axis, % (positive: cupping, negative: capping)."),
+    acquired_at: Optional[str] = typer.Option(
+        None, "--acquired-at", metavar="TIME", help="Scan date and time, ISO 8601 with offset, e.g. 2026-11-03T10:30:00+01:00 (default: the demo scenario's)."
+    ),
+    templates_dir: Optional[List[Path]] = typer.Option(None, "--templates", metavar="DIR", help=TEMPLATES_HELP),
 ) -> None:
     """Synthesise a phantom scan with known truth (image, fill.yaml, truth.json)."""
     from ..outputs import KIND_SCAN, check_output_folder, existing_inputs
@@ -232,10 +262,15 @@ def synth_cmd(
 
     if fmt not in ("dicom", "nifti"):
         raise InputError(f"--format {fmt!r}: use dicom or nifti")
+    dirs = [str(d) for d in templates_dir or []]
+    for d in dirs:
+        if not Path(d).is_dir():
+            raise InputError(f"--templates {d}: no such folder")
     phantom = synth_template_source(phantom, template_file, phantom_given=phantom != "iec-body")
-    inputs = existing_inputs(phantom)
+    when = _parse_time(acquired_at)
+    inputs = existing_inputs(phantom, dirs)
     check_output_folder(out, KIND_SCAN, inputs=inputs, overwrite=overwrite)  # before synthesising
-    defaults = default_scan_settings(phantom)
+    defaults = default_scan_settings(phantom, dirs)
     voxel = defaults["voxel_mm"] if voxel is None else voxel
     fwhm = defaults["psf_fwhm_mm"] if fwhm is None else fwhm
     background = defaults["background_kbq_ml"] if background is None else background
@@ -268,6 +303,8 @@ def synth_cmd(
         axial_slope_pct_per_100mm=axial_slope,
         slice_artefact=vec(slice_artefact, 2, "--slice-artefact") if slice_artefact else None,
         radial_gain_pct=radial,
+        templates_dirs=dirs,
+        **({"acquired_at": when} if when is not None else {}),
     )
     paths = write_synthetic(synthesize(spec), out, fmt, overwrite=overwrite, inputs=inputs)
     print_written(paths["written"])

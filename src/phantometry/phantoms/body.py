@@ -185,8 +185,13 @@ class BodyAnalysis(Analysis):
                 fmt_number(row.get("rc_peak"), digits=3),
                 fmt_number(row.get("fit_residual_mm"), digits=2),
             ])
-        lines = [f"  {r.roi:<12} {r.metric:<20} {fmt_number(r.value, digits=3)} {r.unit}" for r in self.rows
-                 if r.roi == "background" or r.metric == "lung_residual_pct"]
+        lines = []
+        if any(not row["hot"] for row in self.sphere_rows()):
+            lines.append("  (-: recovery coefficients are not defined for cold spheres)")
+        for r in self.rows:
+            if r.roi == "background" or r.metric == "lung_residual_pct":
+                unit = "" if r.unit in ("1", "", None) else f" {r.unit}"
+                lines.append(f"  {r.roi:<12} {r.metric:<20} {fmt_number(r.value, r.unit):>8}{unit}")
         return SummaryTable(self.template.title, cols, body, lines)
 
     def result_grids(self) -> list[ResultGrid]:
