@@ -19,7 +19,7 @@ from rich.table import Table
 from ..errors import InputError
 from ..results import CAUTION
 from . import app, templates_app
-from .numbers import MISSING, limits_range, number
+from .numbers import MISSING, limits_range, number, span
 from .progress import QUIET_HELP, step_printer
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -167,7 +167,7 @@ def _print_resolution_and_verdicts(analysis: Analysis, banded: bool) -> None:
         if r.roi == "phantom" and r.metric == "effective_fwhm_mm":
             fit = analysis.json_extras().get("effective_resolution") or {}
             ci95 = fit.get("ci95_mm")
-            ci = f" (95 % interval {number(ci95[0], 'mm')}–{number(ci95[1], 'mm')} mm)" if ci95 else ""
+            ci = f" (95 % interval {span(number(ci95[0], 'mm'), number(ci95[1], 'mm'))} mm)" if ci95 else ""
             console.print(f"  effective FWHM {number(r.value, 'mm')} ± {number(r.uncertainty, 'mm')} mm{ci}", markup=False)
     if not banded:
         return

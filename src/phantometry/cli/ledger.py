@@ -25,6 +25,7 @@ from rich.table import Table
 from ..errors import InputError, LedgerError, PhantometryError
 from ..results import CAUTION
 from . import APP_SETTINGS, app
+from .numbers import decimals_for, limits_range, number, span, unit_suffix, with_unit
 
 ledger_app = typer.Typer(
     no_args_is_help=True,
@@ -94,12 +95,6 @@ def _open(db: Optional[str], *, create: bool = False):
 
 def _when(t: Optional[datetime]) -> str:
     return t.astimezone(timezone.utc).strftime("%Y-%m-%d %H:%M") if t else "-"
-
-
-def _num(v, nd: int = 4) -> str:
-    if v is None:
-        return "-"
-    return f"{float(v):.{nd}g}"
 
 
 def _pick_scanner(ledger, scanner: Optional[str], site: Optional[str]) -> str:
@@ -235,21 +230,23 @@ def trend_cmd(
         )
     lim = tr.limits
     caption = CAUTION
-    title = f"{tr.scanner} ({tr.site}) / {tr.protocol}: {tr.roi} {tr.metric} [{tr.unit}]"
+    unit = tr.unit
+    title = f"{tr.scanner} ({tr.site}) / {tr.protocol}: {tr.roi} {tr.metric}" + (f" [{unit}]" if unit_suffix(unit) else "")
     t = Table(title=escape(title), caption=caption, caption_justify="left")
     for col, just in (("id", "right"), ("acquired (UTC)", "left"), ("value", "right"), ("uncert.", "right"),
                       ("band", "left"), ("verdict", "left"), ("baseline", "left"), ("flags", "left")):
         t.add_column(col, justify=just, overflow="fold")
     for p in tr.points:
-        band = "-" if p.band_low is None and p.band_high is None else f"{_num(p.band_low)}..{_num(p.band_high)}"
         flags = "; ".join(f.description for f in tr.flags_at(p.analysis_id))
-        t.add_row(str(p.analysis_id), _when(p.acquired_at), _num(p.value, 5), _num(p.uncertainty, 3), band, p.verdict or "-",
-                  "yes" if p.in_baseline else "", escape(flags))
+        t.add_row(str(p.analysis_id), _when(p.acquired_at), number(p.value, unit), number(p.uncertainty, unit),
+                  escape(limits_range(p.band_low, p.band_high)), p.verdict or "-", "yes" if p.in_baseline else "", escape(flags))
     console.print(t)
     if lim is not None:
+        nd = decimals_for(unit)
         console.print(
-            f"limits from {lim.source}: mean {_num(lim.mean, 5)}, sigma {_num(lim.sigma, 3)} (n = {lim.n}); "
-            f"warning {_num(lim.warning_low, 5)}..{_num(lim.warning_high, 5)}, action {_num(lim.action_low, 5)}..{_num(lim.action_high, 5)}",
+            f"limits from {lim.source}: mean {number(lim.mean, unit)}, sigma {number(lim.sigma, unit, nd + 1)} (n = {lim.n}); "
+            f"warning {span(number(lim.warning_low, unit), number(lim.warning_high, unit))}, "
+            f"action {span(number(lim.action_low, unit), number(lim.action_high, unit))}{unit_suffix(unit)}",
             markup=False,
         )
     for note in tr.notes:
@@ -304,25 +301,68 @@ def check_cmd(
     protocol: Optional[str] = typer.Option(None, "--protocol", metavar="LABEL", help="Only this protocol."),
     since: Optional[str] = typer.Option(None, "--since", metavar="TIME", help="Report only flags at points acquired since then."),
     all_metrics: bool = typer.Option(False, "--all-metrics", help="Also check positions (mm) and absolute concentrations (Bq/mL)."),
+    verbose: bool = typer.Option(False, "--verbose", "-v", help="Also list every flagged point (date, value, rule) of each trend."),
     strict: bool = typer.Option(False, "--strict", help="Exit code 1 when any flag is found (scripted QC)."),
     db: Optional[str] = _db_option(),
 ) -> None:
-    """Run the drift rules on every metric of every scanner and protocol."""
+    """Run the drift rules on every metric of every scanner and protocol.
+
+    One line per trend with flags (scanner, protocol, ROI, metric; each rule hit and how
+    often); --verbose adds the flagged points of each trend.
+    """
     with _open(db) as ledger:
         results = ledger.check(site=site, scanner=scanner, protocol=protocol, since=parse_cli_time(since, "--since"), all_metrics=all_metrics)
     flagged = [r for r in results if r.flags]
     if flagged:
-        t = Table(title="drift flags", caption=CAUTION, caption_justify="left")
-        for col in ("scanner", "protocol", "roi", "metric", "acquired (UTC)", "value", "rule"):
-            t.add_column(col, overflow="fold")
-        for r in flagged:
-            for f in r.flags:
-                t.add_row(escape(f"{r.scanner} ({r.site})"), escape(r.protocol), r.roi, r.metric, _when(f.acquired_at), _num(f.value, 5), escape(f.description))
-        console.print(t)
+        console.print(drift_summary_table(flagged))
+        if verbose:
+            for r in flagged:
+                console.print(drift_points_table(r))
     n_flags = sum(len(r.flags) for r in flagged)
     console.print(f"{n_flags} drift flag(s) in {len(flagged)} of {len(results)} metric series checked", markup=False)
+    if flagged and not verbose:
+        console.print("the flagged points of each trend: add --verbose, or phantometry ledger trend ROI METRIC", markup=False)
     if strict and n_flags:
         raise typer.Exit(1)
+
+
+def rule_counts(flags) -> list[tuple[str, int]]:
+    """(rule description, how many points it flagged), in the order the rules first fired."""
+    counts: dict[str, int] = {}
+    for f in flags:
+        counts[f.description] = counts.get(f.description, 0) + 1
+    return list(counts.items())
+
+
+def drift_summary_table(flagged) -> Table:
+    """One line per trend with flags: scanner and protocol (once per group), ROI, metric,
+    points, each rule hit with its count, the last flagged acquisition."""
+    t = Table(title="drift flags by trend", caption=CAUTION, caption_justify="left")
+    for col, just in (("scanner", "left"), ("protocol", "left"), ("ROI", "left"), ("metric", "left"), ("points", "right"),
+                      ("rules hit (flagged points)", "left"), ("last flag (UTC)", "left")):
+        t.add_column(col, justify=just, overflow="fold")
+    previous = None
+    for n, r in enumerate(flagged):
+        group = (r.site, r.scanner, r.protocol)
+        nxt = flagged[n + 1] if n + 1 < len(flagged) else None
+        first = group != previous
+        rules = "; ".join(f"{text} ({count})" for text, count in rule_counts(r.flags))
+        t.add_row(escape(f"{r.scanner} ({r.site})") if first else "", escape(r.protocol) if first else "", escape(r.roi), escape(r.metric),
+                  str(r.n_points), escape(rules), _when(max(f.acquired_at for f in r.flags)),
+                  end_section=nxt is not None and (nxt.site, nxt.scanner, nxt.protocol) != group)
+        previous = group
+    return t
+
+
+def drift_points_table(r) -> Table:
+    """The flagged points of one trend (``check --verbose``)."""
+    title = f"{r.scanner} ({r.site}) / {r.protocol}: {r.roi} {r.metric}"
+    t = Table(title=escape(title))
+    for col, just in (("analysis", "right"), ("acquired (UTC)", "left"), ("value", "right"), ("rule", "left")):
+        t.add_column(col, justify=just, overflow="fold")
+    for f in r.flags:
+        t.add_row(str(f.analysis_id), _when(f.acquired_at), with_unit(f.value, r.unit), escape(f.description))
+    return t
 
 
 @ledger_app.command("export")

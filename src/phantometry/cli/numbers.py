@@ -5,8 +5,8 @@
   column never mixes ``0.698`` and ``0.68889``;
 * a value that rounds to zero is ``0.00``, never ``-0.00``;
 * the unit ``1`` of a ratio is not shown;
-* limits are a range with the same digits at both ends (``0.44–0.60``), or one side
-  (``≥ 0.44``).
+* limits are a range with the same digits at both ends (``0.44–0.60``; ``-0.12 to 0.12``
+  when an end is negative), or one side (``≥ 0.44``).
 """
 
 from __future__ import annotations
@@ -62,13 +62,21 @@ def limit_decimals(*limits: Optional[float], most: int = 4) -> int:
     return most
 
 
+def span(low: str, high: str) -> str:
+    """Two formatted ends as a range: ``0.44–0.60``; ``-0.12 to 0.12`` when an end is negative
+    (a dash between negative numbers would read as a minus)."""
+    if low.startswith("-") or high.startswith("-"):
+        return f"{low} to {high}"
+    return f"{low}–{high}"
+
+
 def limits_range(low: Optional[float], high: Optional[float]) -> str:
     """``0.44–0.60`` (both ends with the same digits), ``≥ 0.44``, ``≤ 0.60`` or ``-``."""
     lo = low if low is not None and math.isfinite(low) else None
     hi = high if high is not None and math.isfinite(high) else None
     nd = limit_decimals(lo, hi)
     if lo is not None and hi is not None:
-        return f"{number(lo, digits=nd)}–{number(hi, digits=nd)}"
+        return span(number(lo, digits=nd), number(hi, digits=nd))
     if lo is not None:
         return f"≥ {number(lo, digits=nd)}"
     if hi is not None:
@@ -76,4 +84,4 @@ def limits_range(low: Optional[float], high: Optional[float]) -> str:
     return MISSING
 
 
-__all__ = ["DECIMALS", "MISSING", "decimals_for", "number", "unit_suffix", "with_unit", "limit_decimals", "limits_range"]
+__all__ = ["DECIMALS", "MISSING", "decimals_for", "number", "unit_suffix", "with_unit", "limit_decimals", "limits_range", "span"]
