@@ -48,6 +48,11 @@ class PhantomNotFound(PhantometryError):
     """The phantom described by the template could not be located in the image."""
 
 
+class PhantomNotPlaced(PhantomNotFound):
+    """The phantom's body is in the image but its inserts could not be placed; the message
+    names the likely cause, as the image shows it, and how to place the phantom by hand."""
+
+
 class BandError(InputError):
     """An acceptance-band file is invalid or does not fit the template."""
 

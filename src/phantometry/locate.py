@@ -34,7 +34,7 @@ import numpy as np
 from scipy import ndimage
 from skimage.filters import threshold_otsu
 
-from .errors import PhantomNotFound, TemplateError
+from .errors import PhantomNotFound, PhantomNotPlaced, TemplateError
 from .templates import Insert, Template
 from .threads import fft_workers
 from .volume import Volume
@@ -512,6 +512,142 @@ def refine_centre(volume: Volume, start_mm: np.ndarray, radius_mm: float, sign: 
     return c, total
 
 
+# =============================================================================== why not found
+#: Contrast-to-noise ratio of the hottest spot inside the phantom (image averaged over about
+#: 18 mm, the core of the largest sphere) below which the spheres cannot be told from the image
+#: noise: noise alone reaches about 4 on a phantom's worth of such spots (the maximum of some
+#: 10^4 normal deviates), and the ring search needs clearly more (measured on synthetic scans).
+LOW_CONTRAST_CNR = 8.0
+#: The hottest spot seen below this fraction of the contrast the fill record's ratio gives
+#: means the inserts are not as hot as recorded (wrong record, or units).
+WEAK_CONTRAST_FRACTION = 0.5
+
+
+@dataclass(frozen=True)
+class ContrastSeen:
+    """The strongest insert signal in the phantom, as the image shows it.
+
+    Attributes
+    ----------
+    percent : float
+        The hottest (or, for cold inserts, coldest) spot's difference from the background, in
+        per cent of the background (positive for hot, negative for cold).
+    cnr : float
+        That difference in standard deviations of the background at the same smoothing.
+    """
+
+    percent: float
+    cnr: float
+
+
+def contrast_seen(body: "_Body", sign: float = 1.0) -> ContrastSeen | None:
+    """The hottest (``sign`` +1) or coldest (-1) spot inside the phantom body.
+
+    The coarse block-mean image of :func:`find_body` (about 6 mm blocks) is averaged again over
+    3 blocks along each axis (about 18 mm, inside any sphere of 30 mm or more), kept away from
+    the body's edge, and compared with its own median (the background) and robust spread (the
+    noise at that smoothing, 1.4826 median absolute deviation). None when the body is too
+    small for that.
+    """
+    smooth = ndimage.uniform_filter(np.nan_to_num(body.coarse), 3)
+    core = ndimage.binary_erosion(body.mask, iterations=2)
+    if int(core.sum()) < 27:
+        return None
+    vals = smooth[core]
+    bg = float(np.median(vals))
+    if not bg > 0:
+        return None
+    spread = 1.4826 * float(np.median(np.abs(vals - bg)))
+    peak = float(vals[int(np.argmax(sign * vals))])
+    cnr = abs(peak - bg) / spread if spread > 0 else math.inf
+    return ContrastSeen(100.0 * (peak - bg) / bg, cnr)
+
+
+def image_edges_reached(body: "_Body") -> list[str]:
+    """The edges of the image the phantom's body touches (it continues beyond them): a few
+    words each (``the first slice``, ``the last column``); empty when it lies wholly inside."""
+    names = (("the first slice", "the last slice"), ("the first row", "the last row"), ("the first column", "the last column"))
+    out = []
+    for axis in range(3):
+        for end, name in zip((0, -1), names[axis]):
+            if int(np.count_nonzero(np.take(body.mask, end, axis=axis))) >= 3:
+                out.append(name)
+    return out
+
+
+def likely_cause(volume: Volume, template: Template, *, hot: dict[str, bool] | None = None,
+                 activity_ratio: dict[str, float] | None = None) -> str | None:
+    """Why a phantom whose body is in the image could not be placed, from what the image shows.
+
+    In this order: the body reaches an edge of the image (phantom partly outside the field of
+    view); the hottest spot is far weaker than the fill record's ratio would make it, or too
+    close to the noise (contrast too low for the fill record's ratio); otherwise the image shows
+    clear inserts and the whole phantom, so the template (or the fill record's hot and cold
+    inserts) does not describe it. None when no body of the template's size is found (the
+    error then says so itself).
+    """
+    try:
+        body = find_body(volume, "image")
+    except PhantomNotFound:
+        return None
+    rel = body.extent_mm / _template_extent(template)
+    if np.any(rel < 0.6) or np.any(rel > 1.6):
+        return None
+    edges = image_edges_reached(body)
+    if edges:
+        return (f"phantom partly outside the field of view: its body reaches {_join_words(edges)} of the image; "
+                "centre the phantom in the field of view and scan it whole")
+    names = [i.name for i in template.inserts if i.role == "sphere"] or [i.name for i in template.inserts]
+    hot = {n: True for n in names} | (hot or {})
+    ratios = [float((activity_ratio or {}).get(n, 4.0)) for n in names if hot.get(n, True)]
+    ratio = max(ratios) if ratios else None
+    seen = contrast_seen(body, 1.0 if ratio is not None else -1.0)
+    if seen is None:
+        return None
+    if ratio is not None:
+        expected = 100.0 * (ratio - 1.0)
+        if seen.percent < WEAK_CONTRAST_FRACTION * expected:
+            return (f"contrast too low for the fill record's {ratio:g}:1 ratio: the hottest spot inside the phantom is "
+                    f"{seen.percent:.0f} % above the background where that ratio gives about {expected:.0f} %; "
+                    "check the fill record (which inserts are hot, their activity and times)")
+        if seen.cnr < LOW_CONTRAST_CNR:
+            return (f"contrast too low for the fill record's {ratio:g}:1 ratio: at that ratio the spheres are {expected:.0f} % above "
+                    f"the background, close to the image noise (the hottest spot inside the phantom is {seen.cnr:.1f} noise SDs "
+                    "above the background, where noise alone reaches about 4); scan longer or fill at a higher ratio")
+        what = f"the hottest spot inside the phantom is {seen.percent:.0f} % above the background, {seen.cnr:.0f} noise SDs"
+    else:
+        if seen.cnr < LOW_CONTRAST_CNR:
+            return (f"contrast too low: the cold inserts stand only {seen.cnr:.1f} noise SDs below the background "
+                    "(noise alone reaches about 4); scan longer")
+        what = f"the coldest spot inside the phantom is {-seen.percent:.0f} % below the background, {seen.cnr:.0f} noise SDs"
+    return (f"wrong template: the image shows clear inserts ({what}) and the whole phantom, but not where template "
+            f"{template.name} puts them; check --template, and the fill record's hot and cold inserts")
+
+
+def _join_words(words: list[str]) -> str:
+    return words[0] if len(words) == 1 else ", ".join(words[:-1]) + " and " + words[-1]
+
+
+def explain_not_found(exc: PhantomNotFound, volume: Volume, template: Template, *, hot: dict[str, bool] | None = None,
+                      activity_ratio: dict[str, float] | None = None,
+                      overrides: dict[str, Any] | None = None) -> PhantomNotFound:
+    """``exc`` with the likely cause (:func:`likely_cause`) and what to do, as a
+    :class:`PhantomNotPlaced`; ``exc`` itself when its message already says all (no body of
+    the template's size in the image)."""
+    cause = likely_cause(volume, template, hot=hot, activity_ratio=activity_ratio)
+    if cause is None:
+        return exc
+    if overrides:
+        advice = "or check the --centre positions (world mm of this image)"
+    else:
+        spheres = [i for i in template.inserts if i.role == "sphere"] or list(template.inserts)
+        names = ", ".join(i.name for i in sorted(spheres, key=lambda i: -i.diameter_mm)[:3])
+        advice = (f"or place the phantom by hand: --centre NAME=x,y,z (world mm, read in a viewer) for three spheres, "
+                  f"e.g. {names}")
+    text = str(exc).rstrip(". ")
+    return PhantomNotPlaced(f"{text}; likely cause: {cause}; {advice}")
+
+
 # =============================================================================== public
 def locate(
     volume: Volume,
@@ -543,7 +679,31 @@ def locate(
     ------
     PhantomNotFound
         When the phantom cannot be found or the fit is poor; the message says why.
+    PhantomNotPlaced
+        When the phantom's body is found but its inserts cannot be placed: the message adds
+        the likely cause from what the image shows (:func:`likely_cause`: part of the phantom
+        outside the field of view, contrast too low for the fill record's ratio, or another
+        template) and how to place it by hand (``--centre``).
     """
+    try:
+        return _locate(volume, template, axis_insert=axis_insert, hot=hot, activity_ratio=activity_ratio, overrides=overrides, where=where)
+    except PhantomNotPlaced:
+        raise
+    except PhantomNotFound as exc:
+        raise explain_not_found(exc, volume, template, hot=hot, activity_ratio=activity_ratio, overrides=overrides) from None
+
+
+def _locate(
+    volume: Volume,
+    template: Template,
+    *,
+    axis_insert: str,
+    hot: dict[str, bool] | None = None,
+    activity_ratio: dict[str, float] | None = None,
+    overrides: dict[str, np.ndarray] | None = None,
+    where: str | None = None,
+) -> Placement:
+    """:func:`locate` without the explanation of a failure."""
     where = where or (volume.source or "image")
     if template.background is None or not template.spheres:
         raise TemplateError(f"template {template.name}: locate() handles body phantoms (spheres and background ROIs)")
@@ -587,8 +747,7 @@ def locate(
         theta0, hand, ring_score = _match_rotation(np.nan_to_num(profile), model)
         if ring_score < 0.3:
             raise PhantomNotFound(
-                f"{where}: the sphere ring does not match template {template.name} (match score {ring_score:.2f} < 0.30); "
-                "check the fill record (hot/cold spheres) and the template, or give --centre NAME=x,y,z for three spheres"
+                f"{where}: the sphere ring does not match template {template.name} (match score {ring_score:.2f} < 0.30)"
             )
         rot, t = _pose_from_axis(a_plane, d, u, v, theta0, hand, template, axis_ins)
     fits: dict[str, InsertFit] = {}
@@ -604,9 +763,7 @@ def locate(
             try:
                 c, signal = refine_centre(volume, pred, win, 1.0 if hot[s.name] else -1.0, bg)
             except PhantomNotFound:
-                raise PhantomNotFound(
-                    f"{where}: {s.name} would lie outside the image; is the whole phantom in the field of view?"
-                ) from None
+                raise PhantomNotFound(f"{where}: {s.name} would lie outside the image") from None
             n_vox = 4 / 3 * math.pi * win**3 / (volume.voxel_volume_ml * 1000.0)
             snr = signal / (noise * math.sqrt(max(n_vox, 1.0)))
             refined[s.name] = (c, snr)
@@ -616,8 +773,7 @@ def locate(
         pairs += [(np.asarray(s.centre_mm, float), overrides[s.name], 10 * top_weight) for s in sphere_overrides]
         if len(pairs) < 3:
             raise PhantomNotFound(
-                f"{where}: fewer than three spheres stand out from the background; check the fill record (hot/cold) "
-                "and the template, or give --centre NAME=x,y,z for three spheres"
+                f"{where}: fewer than three spheres stand out from the background"
             )
         rot, t = kabsch(np.array([p for p, _, _ in pairs]), np.array([q for _, q, _ in pairs]), np.array([w for *_, w in pairs]))
     warnings: list[str] = []
@@ -638,7 +794,7 @@ def locate(
     if resid_big and max(resid_big) > tol:
         raise PhantomNotFound(
             f"{where}: poor fit of template {template.name}: large spheres are up to {max(resid_big):.1f} mm from the "
-            f"rigid placement (tolerance {tol:.1f} mm); give --centre NAME=x,y,z for three spheres"
+            f"rigid placement (tolerance {tol:.1f} mm)"
         )
     for ins in template.inserts:
         if ins.role != "sphere":

@@ -47,11 +47,11 @@ from typing import Any, Callable, Sequence
 import numpy as np
 from pydantic import Field
 
-from ..errors import FillRecordError, InputError, PhantomNotFound, PhantometryError
+from ..errors import FillRecordError, InputError, PhantomNotFound, PhantomNotPlaced, PhantometryError
 from ..background_rois import EDGE_TOLERANCE_MM, BackgroundPlacement, Obstacle, PlaneGeometry, check_size
 from ..background_rois import place as place_background
 from ..fill import FillRecord
-from ..locate import BodyFrame, Placement, as_found_template, body_frame_placement, locate
+from ..locate import BodyFrame, Placement, as_found_template, body_frame_placement, explain_not_found, locate
 from ..metrics.nu2 import (
     background_variability,
     lung_residual,
@@ -418,7 +418,32 @@ class BodyKind(PhantomKind):
         settings: AnalysisSettings,
     ) -> BodyAnalysis:
         """Locate the phantom and compute every NEMA NU 2 and recovery metric, then the noise
-        model, the effective resolution and the standard uncertainties (``settings``)."""
+        model, the effective resolution and the standard uncertainties (``settings``).
+
+        A phantom found but not measurable (an ROI outside the image, no sphere above the
+        background) is reported with the likely cause the image shows
+        (:func:`phantometry.locate.explain_not_found`), as a failed placement is.
+        """
+        try:
+            return self._analyse(volume, template, fill, overrides=overrides, where=where, settings=settings)
+        except PhantomNotPlaced:
+            raise
+        except PhantomNotFound as exc:
+            hot = {s.name: not fill.is_cold(s.name) for s in template.spheres}
+            ratio = {s.name: fill.activity_ratio(s.name) for s in template.spheres if hot[s.name]}
+            raise explain_not_found(exc, volume, template, hot=hot, activity_ratio=ratio, overrides=overrides) from None
+
+    def _analyse(
+        self,
+        volume: Volume,
+        template: Template,
+        fill: FillRecord,
+        *,
+        overrides: dict[str, np.ndarray] | None,
+        where: str,
+        settings: AnalysisSettings,
+    ) -> BodyAnalysis:
+        """:meth:`analyse` without the explanation of a failure."""
         check_scan_time(volume, fill, where)
         opts = self.options(template)
         at = volume.acquired_at
@@ -466,8 +491,7 @@ class BodyKind(PhantomKind):
                     means[d].append(disc_means(plane, uv, d))
                 except PhantomNotFound:
                     raise PhantomNotFound(
-                        f"{where}: background ROIs at {pg.offset_mm:+g} mm from the sphere plane fall outside the image; "
-                        "is the whole phantom in the field of view?"
+                        f"{where}: background ROIs at {pg.offset_mm:+g} mm from the sphere plane fall outside the image"
                     ) from None
         roi_means = {d: np.concatenate(m) for d, m in means.items()}
         c_b = {}
@@ -486,7 +510,7 @@ class BodyKind(PhantomKind):
                 sp, uv = sphere_disc(sampler, volume, centre, s.diameter_mm, name=s.name)
                 c_sphere = float(disc_means(sp, uv, s.diameter_mm)[0])
             except PhantomNotFound:
-                raise PhantomNotFound(f"{where}: {s.name} lies outside the image; is the whole phantom in the field of view?") from None
+                raise PhantomNotFound(f"{where}: {s.name} lies outside the image") from None
             sphere_discs[s.name] = (sp, uv[0])
             cb = c_b.get(s.diameter_mm, c_b_ref)
             if hot[s.name]:
