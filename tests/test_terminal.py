@@ -270,3 +270,35 @@ def test_ledger_trend_digits_follow_the_unit(drift_ledger, capsys):
     assert main(["ledger", "trend", "phantom", "effective_fwhm_mm", "--protocol", "OSEM, 2i16s", "--db", str(drift_ledger)]) == 0
     values = re.findall(r"│ \d{4}-\d\d-\d\d \d\d:\d\d │ +(\S+) │", capsys.readouterr().out)
     assert values and all(re.fullmatch(r"\d\.\d{2}", v) for v in values), values
+
+
+# ============================================================================== series chooser
+def test_series_chooser_tells_identical_series_apart(tmp_path):
+    # three scans of one QC routine in one folder: same number, same description; the
+    # error lists each with its date and time, file count and folder (invented dates)
+    import subprocess
+    from datetime import datetime, timedelta, timezone
+
+    import numpy as np
+
+    from phantometry.io.dicom_write import write_dicom_series
+    from phantometry.volume import Volume
+
+    tz = timezone(timedelta(hours=1))
+    days = [datetime(2026, 11, 3, 10, 30, tzinfo=tz), datetime(2026, 12, 1, 9, 15, tzinfo=tz), datetime(2027, 1, 12, 14, 5, tzinfo=tz)]
+    for n, when in enumerate(days):
+        vol = Volume(np.full((4 + n, 8, 8), 100.0, np.float32), np.diag([2.0, 2.0, 2.0, 1.0]), acquired_at=when, nuclide="F-18")
+        write_dicom_series(vol, tmp_path / "qc" / f"week{n + 1}", series_number=1, series_description="QC phantom")
+    fill = tmp_path / "fill.yaml"
+    fill.write_text("nuclide: F-18\nbackground:\n  concentration_kbq_ml: 5.0\n  measured_at: 2026-11-03T10:00:00+01:00\n")
+    r = subprocess.run([str(SCRIPT), "measure", "qc", "--fill", "fill.yaml", "--out", "res"], capture_output=True, text=True,
+                       cwd=tmp_path, timeout=120)
+    assert r.returncode == 2 and r.stdout == ""
+    line = r.stderr.strip()
+    assert "\n" not in line and line.startswith("phantometry: error: qc: 3 PET series; choose one with --series")
+    entries = line.split("or give its folder: ", 1)[1].split("; ")
+    assert len(entries) == 3 and len(set(entries)) == 3
+    for n, (entry, when) in enumerate(zip(entries, days)):
+        assert entry.startswith("#1 'QC phantom' PT, ")
+        assert when.strftime("%Y-%m-%d %H:%M") in entry and f"{4 + n} files in week{n + 1}" in entry and "UID " in entry
+    assert not (tmp_path / "res").exists()

@@ -27,7 +27,7 @@ def discover_jobs(inputs: Sequence[str | os.PathLike] | str | os.PathLike) -> tu
     Returns
     -------
     (jobs, notes)
-        Jobs in discovery order (DICOM by Series Number then UID, then NIfTI files by path),
+        Jobs in discovery order (DICOM by Series Number, date and time, then UID; then NIfTI files by path),
         and notes about series that were skipped (non-PET modalities).
 
     Raises

@@ -151,6 +151,8 @@ class SeriesInfo:
     study_uid : str or None
     time_zone_assumed : bool
         True when the series has no Timezone Offset From UTC, so its times are read as UTC.
+    series_date, series_time : str or None
+        Series (else Acquisition) Date and Time as written (DA ``YYYYMMDD``, TM ``HHMMSS.FFFFFF``).
     """
 
     series_uid: str
@@ -161,12 +163,47 @@ class SeriesInfo:
     files: tuple[Path, ...] = ()
     study_uid: str | None = None
     time_zone_assumed: bool = False
+    series_date: str | None = None
+    series_time: str | None = None
 
-    def label(self) -> str:
-        """One-line description: number, description, modality, file count and UID."""
+    def label(self, base: str | os.PathLike | None = None) -> str:
+        """One-line description: number, description, modality, date and time, file count,
+        folder (relative to ``base`` when under it) and UID, so series that share a number and
+        a description are told apart."""
         number = f"#{self.series_number}" if self.series_number is not None else "#?"
         description = f" {self.series_description!r}" if self.series_description else ""
-        return f"{number}{description} {self.modality or '?'} ({self.file_count} files) {self.series_uid}"
+        when = self.when()
+        where = self.folder(base)
+        parts = [f"{number}{description} {self.modality or '?'}", *([when] if when else []),
+                 f"{self.file_count} file{'s' if self.file_count != 1 else ''}" + (f" in {where}" if where else ""),
+                 f"UID {self.series_uid}"]
+        return ", ".join(parts)
+
+    def when(self) -> str | None:
+        """``2026-11-03 10:30`` from the Series (or Acquisition) Date and Time as written, the
+        scanner's local time (None when absent or unreadable)."""
+        d = (self.series_date or "").strip()
+        if len(d) != 8 or not d.isdigit():
+            return None
+        text = f"{d[:4]}-{d[4:6]}-{d[6:]}"
+        t = (self.series_time or "").strip()
+        if len(t) >= 4 and t[:4].isdigit():
+            text += f" {t[:2]}:{t[2:4]}"
+        return text
+
+    def folder(self, base: str | os.PathLike | None = None) -> str | None:
+        """The folder holding the series' files (their common folder), relative to ``base``
+        when it lies inside it; None without files."""
+        if not self.files:
+            return None
+        common = Path(os.path.commonpath([str(f.parent) for f in self.files]))
+        if base is not None:
+            try:
+                rel = common.relative_to(Path(base))
+            except ValueError:
+                return str(common)
+            return str(rel) if str(rel) != "." else str(Path(base))
+        return str(common)
 
 
 @dataclass
@@ -425,7 +462,8 @@ def _collect_files(roots: Sequence[Path]) -> list[Path]:
 
 
 #: The attributes a listing needs (read by pydicom when the fast walk declines a file).
-_LISTING_TAGS = ["SeriesInstanceUID", "SeriesNumber", "SeriesDescription", "Modality", "StudyInstanceUID", "TimezoneOffsetFromUTC"]
+_LISTING_TAGS = ["SeriesInstanceUID", "SeriesNumber", "SeriesDescription", "Modality", "StudyInstanceUID", "TimezoneOffsetFromUTC",
+                 "SeriesDate", "SeriesTime", "AcquisitionDate", "AcquisitionTime"]
 
 
 def _series_problem(sop_class: str | None, has_series_uid: bool) -> tuple[str, str | None] | None:
@@ -502,6 +540,8 @@ def listing_header_of(ds: Any) -> ListingHeader:
         modality=_ascii(ds, "Modality"),
         study_uid=_ascii(ds, "StudyInstanceUID"),
         timezone_offset=_ascii(ds, "TimezoneOffsetFromUTC"),
+        series_date=_ascii(ds, "SeriesDate") or _ascii(ds, "AcquisitionDate"),
+        series_time=_ascii(ds, "SeriesTime") or _ascii(ds, "AcquisitionTime"),
     )
 
 
@@ -537,12 +577,14 @@ def _series_info(uid: str, first: ListingHeader, files: Sequence[Path]) -> Serie
         files=tuple(files),
         study_uid=first.study_uid,
         time_zone_assumed=first.timezone_offset is None,
+        series_date=first.series_date,
+        series_time=first.series_time,
     )
 
 
 def _sorted_infos(infos: list[SeriesInfo]) -> list[SeriesInfo]:
     big = 1 << 62
-    return sorted(infos, key=lambda s: (s.series_number if s.series_number is not None else big, s.series_uid))
+    return sorted(infos, key=lambda s: (s.series_number if s.series_number is not None else big, s.when() or "", s.series_uid))
 
 
 def discover_series(paths: str | os.PathLike | Iterable[str | os.PathLike]) -> list[SeriesInfo]:
@@ -558,7 +600,7 @@ def discover_series(paths: str | os.PathLike | Iterable[str | os.PathLike]) -> l
     Returns
     -------
     list of SeriesInfo
-        Sorted by Series Number, then UID; empty when no DICOM series is found.
+        Sorted by Series Number, then date and time, then UID; empty when no DICOM series is found.
 
     Raises
     ------
@@ -569,8 +611,9 @@ def discover_series(paths: str | os.PathLike | Iterable[str | os.PathLike]) -> l
     return _sorted_infos([_series_info(uid, listed[0][1], [path for path, _ in listed]) for uid, listed in groups.items()])
 
 
-def _choices(infos: Iterable[SeriesInfo]) -> str:
-    return "; ".join(info.label() for info in infos)
+def _choices(infos: Iterable[SeriesInfo], where: str | None = None) -> str:
+    base = where if where is not None and os.path.isdir(where) else None
+    return "; ".join(info.label(base) for info in infos)
 
 
 def _choose(infos: list[SeriesInfo], series: str | int | None, where: str) -> SeriesInfo:
@@ -580,12 +623,13 @@ def _choose(infos: list[SeriesInfo], series: str | int | None, where: str) -> Se
         pet = [i for i in infos if i.modality == "PT"]
         if not pet:
             raise NoPETSeries(
-                f"{where}: no PET (PT) series; found {found} series ({_choices(infos)}); "
+                f"{where}: no PET (PT) series; found {found} series ({_choices(infos, where)}); "
                 "give a folder with a PET series"
             )
         if len(pet) > 1:
             raise AmbiguousSeries(
-                f"{where}: {len(pet)} PET series; choose one by UID, UID prefix or number: {_choices(pet)}"
+                f"{where}: {len(pet)} PET series; choose one with --series (UID, UID prefix or series "
+                f"number) or give its folder: {_choices(pet, where)}"
             )
         return pet[0]
 
@@ -595,9 +639,9 @@ def _choose(infos: list[SeriesInfo], series: str | int | None, where: str) -> Se
     else:
         chosen = [i for i in infos if i.series_uid == key] or [i for i in infos if i.series_uid.startswith(key)]
     if not chosen:
-        raise NoPETSeries(f"{where}: no series matches {key!r}; available: {_choices(infos)}")
+        raise NoPETSeries(f"{where}: no series matches {key!r}; available: {_choices(infos, where)}")
     if len(chosen) > 1:
-        raise AmbiguousSeries(f"{where}: {len(chosen)} series match {key!r}; give more of the UID: {_choices(chosen)}")
+        raise AmbiguousSeries(f"{where}: {len(chosen)} series match {key!r}; give more of the UID: {_choices(chosen, where)}")
     info = chosen[0]
     if info.modality != "PT":
         raise UnsupportedSeries(
