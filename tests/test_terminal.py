@@ -302,3 +302,32 @@ def test_series_chooser_tells_identical_series_apart(tmp_path):
         assert entry.startswith("#1 'QC phantom' PT, ")
         assert when.strftime("%Y-%m-%d %H:%M") in entry and f"{4 + n} files in week{n + 1}" in entry and "UID " in entry
     assert not (tmp_path / "res").exists()
+
+
+# ============================================================================== demo and titles
+def test_demo_summary_names_fwhm_and_every_picture(tmp_path):
+    r = _run_piped(["demo", "--out", str(tmp_path / "demo")], tmp_path)
+    assert r.returncode == 0, r.stderr
+    assert re.search(r"effective FWHM \d\.\d\d ± \d\.\d\d mm", r.stdout)
+    said = " ".join(r.stdout.split())
+    for name in ("measurements.csv", "measurements.json", "overlay.png", "recovery_curve.png"):
+        assert name in said and (tmp_path / "demo" / "results" / name).exists(), name
+    assert r.stderr == ""  # piped: no progress lines
+
+
+def test_nifti_titles_name_the_file(tmp_path):
+    from phantometry.io.nifti import load_nifti
+    from phantometry.measure import measure_volume
+    from phantometry.fill import FillRecord
+    from phantometry.phantoms.base import series_name
+    from phantometry.synth import SynthSpec, synthesize, write_synthetic
+    from phantometry.templates import load_template
+
+    res = synthesize(SynthSpec(voxel_mm=(4.0,) * 3, noise_cv=0.05, seed=2))
+    paths = write_synthetic(res, tmp_path / "scan", "nifti")
+    vol = load_nifti(paths["image"])
+    vol.series_description = None  # a NIfTI file from elsewhere: no description in its sidecar
+    assert series_name(vol) == "phantom.nii.gz"
+    analysis = measure_volume(vol, load_template("iec-body"), FillRecord.from_dict(res.fill_record), uncertainties=False, resolution=False)
+    title = analysis.overlay().title
+    assert "| phantom.nii.gz |" in title and "series  |" not in title and "|  |" not in title

@@ -325,7 +325,9 @@ def measure_report_html(analysis: "Analysis", *, folder: str | os.PathLike | Non
         + (f'<section id="warnings"><h2>Warnings</h2><ul class="warnings">{warn}</ul></section>' if warn else "")
     )
     title = "Phantom image-quality report"
-    subtitle = f"{tpl.title} | {vol.series_description or vol.series_uid or 'series'} | {rec.label()}"
+    from .phantoms.base import series_name
+
+    subtitle = f"{tpl.title} | {series_name(vol)} | {rec.label()}"
     return _page(title, subtitle, body)
 
 

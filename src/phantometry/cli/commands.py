@@ -356,8 +356,11 @@ def demo_cmd(
             shutil.rmtree(base, ignore_errors=True)
         raise
     print_summary_table(analysis)
+    _print_resolution_and_verdicts(analysis, False)
     print_written(staging.written)
-    console.print(f"results in {base / 'results'} (measurements.csv, measurements.json, overlay.png)", markup=False)
+    results = base / "results"
+    files = ["measurements.csv", "measurements.json", "overlay.png", *(n for n in analysis.pictures() if (results / n).exists())]
+    console.print(f"results in {results} ({', '.join(files)}); the scan in {base / 'scan'}", markup=False)
 
 
 @templates_app.command("list")

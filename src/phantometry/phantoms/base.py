@@ -499,6 +499,18 @@ def nominal_extent_mm(template: Template) -> np.ndarray:
     return np.sort(np.array([*xy, template.body_length_mm], float))
 
 
+def series_name(volume: Volume) -> str:
+    """How titles name the image: its Series Description, else its file or folder name (a NIfTI
+    file has no description), else its Series Instance UID, else ``image``."""
+    if volume.series_description and volume.series_description.strip():
+        return volume.series_description.strip()
+    if volume.source and volume.source != "synthetic":
+        name = Path(volume.source).name
+        if name:
+            return name
+    return volume.series_uid or "image"
+
+
 def fmt_number(value: float | None, unit: str | None = None, digits: int | None = None) -> str:
     """A value for tables: ``-`` when missing or not a number, digits by unit."""
     if value is None or not math.isfinite(value):

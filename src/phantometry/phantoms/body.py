@@ -90,6 +90,7 @@ from .base import (
     check_scan_time,
     fill_error_hint,
     fmt_number,
+    series_name,
 )
 
 
@@ -246,7 +247,7 @@ class BodyAnalysis(Analysis):
             lshapes.append(Shape("hline", "background", lon.world_to_uv(self.sampler.onto(bplane, p) if self.sampler is not None else p)))
         views.append(View(lon, "Longitudinal view along the phantom axis: background slices (dashed)", lshapes, vmax))
         tilt = pl.as_dict()["axis_tilt_deg"]
-        title = (f"{tpl.title} | series {vol.series_description or vol.series_uid or ''} | axis tilt {tilt:.1f} deg | "
+        title = (f"{tpl.title} | {series_name(vol)} | axis tilt {tilt:.1f} deg | "
                  f"ring match {pl.ring_score or 0:.2f}")
         return Overlay(views, title, width_ratios=[1.25, 1.0])
 

@@ -38,6 +38,7 @@ from .base import (
     calibration_warning,
     check_scan_time,
     fmt_number,
+    series_name,
 )
 from ._placement import cylinder_inside, interval_overlap_fraction, outside_warning
 
@@ -212,7 +213,7 @@ class SmallAnimalAnalysis(Analysis):
                                  (a.spillover_voi.diameter_mm, a.spillover_voi.length_mm), label=c.name.replace("cold_", "")))
         views.append(View(lon, "Through the chambers: uniform VOI (solid), spill-over VOIs (dotted)", lshapes,
                           float(np.nanpercentile(lon.values, 99.8)) or 1.0))
-        title = f"{tpl.title} | series {self.volume.series_description or self.volume.series_uid or ''} | rod match {pl.ring_score or 0:.2f}"
+        title = f"{tpl.title} | {series_name(self.volume)} | rod match {pl.ring_score or 0:.2f}"
         return Overlay(views, title)
 
     def json_extras(self) -> dict[str, Any]:

@@ -129,6 +129,7 @@ from .base import (
     calibration_warning,
     check_scan_time,
     fmt_number,
+    series_name,
 )
 
 #: Rays per cross-section of the diameter and axis fit.
@@ -942,7 +943,7 @@ class UniformCylinderAnalysis(Analysis):
         cshapes = [Shape("rect", "outline", cc, (cyl.diameter_mm, cyl.length_mm)), Shape("rect", "voi", cc, (2 * r_a, l_a))]
         views = [View(tra, "Transverse: wall, analysis disc, centre disc, outer ring", shapes, vmax, colorbar="Bq/mL", scale_bar_mm=scale),
                  View(cor, "Coronal, along the axis: cylinder, analysis volume", cshapes, vmax, colorbar="Bq/mL", scale_bar_mm=scale)]
-        title = (f"{self.template.title} | series {self.volume.series_description or self.volume.series_uid or ''} | "
+        title = (f"{self.template.title} | {series_name(self.volume)} | "
                  f"{cyl.diameter_mm:.1f} x {cyl.length_mm:.1f} mm, tilt {cyl.tilt_deg(self.volume):.1f} deg")
         return Overlay(views, title)
 
