@@ -108,7 +108,8 @@ def test_failed_series_are_reported_and_do_not_stop_the_others(run, family):
     assert res.exit_code == rk.EXIT_SERIES_FAILED == cmp.EXIT_SERIES_FAILED == 4
     failed = {o.job.series_number: o for o in res.failed}
     assert failed[4].error_type == "InputError" and family["victim"].name in failed[4].error and "truncated" in failed[4].error
-    assert failed[5].error_type == "PhantomNotFound" and "wrong" in failed[5].error
+    # a uniform cylinder: something phantom-like is found but cannot be placed (a PhantomNotFound)
+    assert failed[5].error_type == "PhantomNotPlaced" and "wrong" in failed[5].error and "--centre" in failed[5].error
     assert not any(o.internal for o in res.failed)
     summary = json.loads((run["out"] / "summary.json").read_text())
     assert summary["series_failed"] == 2 and summary["series_total"] == 5
@@ -200,17 +201,28 @@ def test_values_by_setting_follow_the_kinds_key_metrics(run):
     spheres = [s.name for s in load_template("iec-body").spheres]
     assert [s.split("_")[1] for s in spheres] == ["10mm", "13mm", "17mm", "22mm", "28mm", "37mm"]
     tables = {t.metric: t for t in rk.key_metric_columns(res.outcomes)}
-    for metric in ("rc_max", "rc_mean", "rc_peak", "percent_contrast", "background_variability_pct"):
+    for metric in ("rc_max", "rc_mean", "rc_peak"):
         assert tables[metric].rois == spheres, metric
-    assert tables["effective_fwhm_mm"].rois == ["phantom"]
+    # contrast and background variability of the smallest sphere; one number per setting for
+    # the insert residual, the activity recovery and the effective resolution
+    for metric in ("percent_contrast", "background_variability_pct"):
+        assert tables[metric].rois == ["sphere_10mm"], metric
+    assert tables["effective_fwhm_mm"].rois == ["phantom"] and tables["activity_recovery"].rois == ["background"]
+    assert tables["lung_residual_pct"].rois == ["lung_insert"]
     assert tables["rc_mean"].title == "RC mean"  # the kind's title (its report table)
+    assert tables["effective_fwhm_mm"].title == "effective FWHM (mm)"
     measured = {r.metric for o in res.succeeded for r in o.rows}
     assert set(tables) <= measured and not any(m.startswith("centre_") for m in tables)
     from phantometry.report import compare_report_html
 
     page = compare_report_html(res, folder=run["out"])  # no report in this run: built here
-    for metric in tables:
-        assert f'id="matrix-{metric.replace("_", "-")}"' in page
+    for metric, table in tables.items():  # a matrix per metric of several ROIs; the others side by side
+        if len(table.rois) > 1:
+            assert f'id="matrix-{metric.replace("_", "-")}"' in page
+        else:
+            per_setting = page.split('<table id="per-setting">', 1)[1].split("</table>", 1)[0]
+            assert f'<th class="num" data-metric="{metric}"' in per_setting, metric
+            assert per_setting.count(f'<td class="num" data-metric="{metric}">') == len(res.succeeded), metric
     assert "<th class=\"num\">10mm</th>" in page  # the common ROI prefix is left out of the headings
 
 

@@ -551,7 +551,7 @@ def test_compare_output_rules(work, first_results):
     said = " ".join(r.stdout.split())
     assert "replaced the earlier measure results" in said and "report.html" in said
     assert json.loads((res / MARKER_NAME).read_text())["kind"] == "compare"
-    assert (res / "ranking.csv").exists() and not (res / "measurements.csv").exists()
+    assert (res / "key_numbers.csv").exists() and not (res / "measurements.csv").exists()
 
 
 def test_demo_refuses_a_users_folder(tmp_path):

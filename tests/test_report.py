@@ -189,7 +189,7 @@ def test_report_prints(browser, verdict_report):
 def test_compare_report_renders_in_chromium(browser, compare_report):
     page = _open(browser, compare_report["path"])
     # two charts + one overlay per measured series
-    _check_page(page, min_images=4, tables=["ranking", "matrix-rc-mean", "matrix-percent-contrast"])
+    _check_page(page, min_images=4, tables=["ranking", "matrix-rc-mean", "per-setting"])
     assert "<script>alert(1)</script> smooth" in page["text"]  # shown as text, never run
     result = compare_report["result"]
     assert all(e.meets_all_bands is False for e in result.ranking)

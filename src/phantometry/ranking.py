@@ -3,8 +3,9 @@
 The result types of :func:`phantometry.compare.compare` (one :class:`SeriesJob` per series
 found, its :class:`SeriesOutcome`, the :class:`RankEntry` of each measured setting, the whole
 :class:`ComparisonResult`), the ranking itself (:func:`rank_settings`: a formula over the band
-verdicts of the rows), the ``values by setting`` columns (:func:`key_metric_columns`) and the
-text of ``ranking.csv`` and ``comparison.csv``. Plain data and pure functions: the outputs
+verdicts of the rows; only with bands), the ``values by setting`` columns
+(:func:`key_metric_columns`), each setting's key numbers sorted by label (:func:`key_numbers`,
+:func:`by_label`) and the text of ``ranking.csv``, ``key_numbers.csv`` and ``comparison.csv``. Plain data and pure functions: the outputs
 (:mod:`phantometry.report`) read them without knowing how a comparison is run.
 """
 
@@ -190,6 +191,12 @@ class ComparisonResult:
         """0 when every series was measured, :data:`EXIT_SERIES_FAILED` otherwise."""
         return EXIT_SERIES_FAILED if self.failed else 0
 
+    @property
+    def ranked(self) -> bool:
+        """Whether the settings were ranked: ranking needs acceptance bands (without them the
+        settings are listed by label with their key numbers, :func:`key_numbers`)."""
+        return bool(self.band_names)
+
 
 # ============================================================================== ranking
 def _band_distance(r: Measurement) -> float | None:
@@ -319,6 +326,110 @@ def short_roi_names(rois: Sequence[str]) -> list[str]:
     return [r[cut:] for r in rois]
 
 
+# ============================================================================== key numbers
+#: What a comparison without bands says instead of a ranking.
+NOT_RANKED = ("not ranked: ranking needs acceptance bands (--bands NAME, see phantometry bands list); "
+              "each setting's key numbers are listed by label")
+
+
+def natural_key(text: str) -> tuple:
+    """Sort key reading digit runs as numbers: ``Gauss 5mm`` before ``Gauss 12mm``."""
+    import re
+
+    return tuple((0, int(part), "") if part.isdigit() else (1, 0, part.lower()) for part in re.split(r"(\d+)", text) if part)
+
+
+def by_label(outcomes: Sequence[SeriesOutcome]) -> list[SeriesOutcome]:
+    """The measured settings sorted by label (digit runs as numbers), then setting number."""
+    return sorted((o for o in outcomes if o.ok), key=lambda o: (natural_key(o.label), o.job.number))
+
+
+@dataclass(frozen=True)
+class KeyNumber:
+    """One key number of a comparison: an ROI's metric, as the phantom kind names it.
+
+    Attributes
+    ----------
+    roi, metric : str
+    title : str
+        The kind's title of the metric (else the metric name).
+    unit : str
+        The unit of the rows (``1`` for ratios).
+    """
+
+    roi: str
+    metric: str
+    title: str
+    unit: str
+
+    @property
+    def column(self) -> str:
+        """The CSV column: ``sphere_10mm.rc_max``."""
+        return f"{self.roi}.{self.metric}"
+
+
+def key_numbers(outcomes: Sequence[SeriesOutcome]) -> list[KeyNumber]:
+    """Every key number of the measured settings, in the kind's order (:func:`key_metric_columns`,
+    each metric's ROIs in turn)."""
+    units: dict[tuple[str, str], str] = {}
+    for o in outcomes:
+        if o.ok:
+            for r in o.rows:
+                units.setdefault((r.roi, r.metric), r.unit)
+    return [KeyNumber(roi, t.metric, t.title, units[(roi, t.metric)])
+            for t in key_metric_columns(outcomes) for roi in t.rois if (roi, t.metric) in units]
+
+
+def row_of(outcome: SeriesOutcome, roi: str, metric: str) -> Measurement | None:
+    """The measurement of one ROI's metric in a setting (None when it has none)."""
+    for r in outcome.rows:
+        if r.roi == roi and r.metric == metric:
+            return r
+    return None
+
+
+def key_numbers_csv(result: ComparisonResult) -> str:
+    """``key_numbers.csv``: one line per setting, sorted by label (failed series last), with
+    ``setting, label, series_uid, status``, then for every key number its value and standard
+    uncertainty (columns ``ROI.METRIC`` and ``ROI.METRIC.u``, in the units of ``comparison.csv``)."""
+    numbers = key_numbers(result.outcomes)
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(["setting", "label", "series_uid", "status", *(c for k in numbers for c in (k.column, f"{k.column}.u"))])
+    for o in by_label(result.outcomes):
+        cells = []
+        for k in numbers:
+            r = row_of(o, k.roi, k.metric)
+            cells += [_fmt(r.value if r is not None else None), _fmt(r.uncertainty if r is not None else None)]
+        w.writerow([o.job.number, o.label, o.job.series_uid or "", "measured", *cells])
+    for o in result.failed:
+        w.writerow([o.job.number, o.label, o.job.series_uid or "", "error", *([""] * (2 * len(numbers)))])
+    return buf.getvalue()
+
+
+def key_numbers_json(result: ComparisonResult) -> dict[str, Any]:
+    """The ``key_numbers`` section of ``summary.json``: the key numbers (ROI, metric, title,
+    unit) and, per measured setting sorted by label, each value with its standard uncertainty."""
+    numbers = key_numbers(result.outcomes)
+
+    def entry(o: SeriesOutcome) -> dict[str, Any]:
+        values = {}
+        for k in numbers:
+            r = row_of(o, k.roi, k.metric)
+            if r is not None:
+                values[k.column] = {"value": _finite_or_none(r.value), "uncertainty": _finite_or_none(r.uncertainty)}
+        return {"setting": o.job.number, "label": o.label, "values": values}
+
+    return {
+        "numbers": [{"column": k.column, "roi": k.roi, "metric": k.metric, "title": k.title, "unit": k.unit} for k in numbers],
+        "settings": [entry(o) for o in by_label(result.outcomes)],
+    }
+
+
+def _finite_or_none(v: float | None) -> float | None:
+    return float(v) if v is not None and math.isfinite(v) else None
+
+
 # ============================================================================== CSV text
 RANKING_COLUMNS = [
     "rank",
@@ -380,6 +491,14 @@ __all__ = [
     "RankEntry",
     "ComparisonResult",
     "KeyMetricColumns",
+    "KeyNumber",
+    "NOT_RANKED",
+    "by_label",
+    "key_numbers",
+    "key_numbers_csv",
+    "key_numbers_json",
+    "natural_key",
+    "row_of",
     "rank_settings",
     "key_metric_columns",
     "short_roi_names",

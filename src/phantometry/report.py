@@ -24,7 +24,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any, Iterable, Sequence
 
 from . import __version__
-from .ranking import KeyMetricColumns, key_metric_columns, short_roi_names
+from .ranking import NOT_RANKED, KeyMetricColumns, by_label, key_metric_columns, short_roi_names
 from .results import CAUTION, Measurement
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -339,32 +339,74 @@ def write_measure_report(analysis: "Analysis", path: str | os.PathLike, *, folde
 
 
 # ============================================================================== compare report
+def _value_cell(rows: Sequence[Measurement], metric: str) -> str:
+    """One table cell: the value of an ROI's metric with its uncertainty, ticked or crossed
+    against its band when it has one; a dash when the setting has no such value."""
+    if not rows:
+        return f'<td class="num" data-metric="{esc(metric)}">&ndash;</td>'
+    v = _worst(r.verdict for r in rows)
+    mark = " &#10007;" if v == "fail" else (" &#10003;" if v == "pass" else "")
+    cls = " v-fail" if v == "fail" else (" v-pass" if v == "pass" else "")
+    r = rows[0]
+    return f'<td class="num{cls}" data-metric="{esc(metric)}">{format_value(r.value, r.unit, r.uncertainty)}{mark}</td>'
+
+
+def _rows_by(outcome, metric: str) -> dict[str, list[Measurement]]:
+    by: dict[str, list[Measurement]] = {}
+    for r in outcome.rows:
+        if r.metric == metric:
+            by.setdefault(r.roi, []).append(r)
+    return by
+
+
+def _listed_settings(result: "ComparisonResult") -> list:
+    """The settings as the value tables list them: by number when ranked (the ranking is
+    above), by label when not."""
+    return result.succeeded if result.ranked else by_label(result.outcomes)
+
+
+def _caption(result: "ComparisonResult", columns: str) -> str:
+    if result.ranked:
+        return f"Rows: settings; columns: {columns}; &#10003; inside / &#10007; outside the band."
+    return f"Rows: settings, by label; columns: {columns}; values &plusmn; standard uncertainty."
+
+
 def _settings_matrix(result: "ComparisonResult", table: KeyMetricColumns) -> str:
     """Values of one key metric: one row per measured setting, one column per ROI that has it."""
     metric, rois = table.metric, table.rois
     head = "<thead><tr><th class=\"num\">#</th><th>setting</th>" + "".join(
         f"<th class=\"num\">{esc(name)}</th>" for name in short_roi_names(rois)) + "</tr></thead>"
     body = []
-    for o in result.succeeded:
-        by: dict[str, list[Measurement]] = {}
-        for r in o.rows:
-            if r.metric == metric:
-                by.setdefault(r.roi, []).append(r)
-        cells = []
-        for roi in rois:
-            rs = by.get(roi)
-            if not rs:
-                cells.append('<td class="num">&ndash;</td>')
-                continue
-            v = _worst(r.verdict for r in rs)
-            mark = " &#10007;" if v == "fail" else (" &#10003;" if v == "pass" else "")
-            cls = " v-fail" if v == "fail" else (" v-pass" if v == "pass" else "")
-            cells.append(f'<td class="num{cls}">{format_value(rs[0].value, rs[0].unit, rs[0].uncertainty)}{mark}</td>')
-        body.append(f"<tr><td class=\"num\">{o.job.number}</td><td>{esc(o.label)}</td>{''.join(cells)}</tr>")
+    for o in _listed_settings(result):
+        by = _rows_by(o, metric)
+        cells = "".join(_value_cell(by.get(roi, []), metric) for roi in rois)
+        body.append(f"<tr><td class=\"num\">{o.job.number}</td><td>{esc(o.label)}</td>{cells}</tr>")
     tid = "matrix-" + metric.replace("_", "-")
     title = table.title if table.title == metric else f"{table.title} ({metric})"
-    return (f'<h3>{esc(title)}</h3><table id="{esc(tid)}"><caption>Rows: settings; columns: ROIs; '
-            f'&#10003; inside / &#10007; outside the band.</caption>{head}<tbody>{"".join(body)}</tbody></table>')
+    return (f'<h3>{esc(title)}</h3><table id="{esc(tid)}"><caption>{_caption(result, "ROIs")}</caption>{head}'
+            f'<tbody>{"".join(body)}</tbody></table>')
+
+
+def _per_setting_table(result: "ComparisonResult", tables: Sequence[KeyMetricColumns]) -> str:
+    """The key metrics of a single ROI (the effective FWHM, the insert residual, the activity
+    recovery, the contrast of the smallest sphere ...) side by side: one row per setting, one
+    column per metric."""
+    single = [t for t in tables if len(t.rois) == 1]
+    if not single:
+        return ""
+    named: dict[str, str] = {}  # an ROI the matrices show (a sphere) is named in the heading
+    for t in tables:
+        if len(t.rois) > 1:
+            named.update(zip(t.rois, short_roi_names(t.rois)))
+    head = "<thead><tr><th class=\"num\">#</th><th>setting</th>" + "".join(
+        f'<th class="num" data-metric="{esc(t.metric)}" title="{esc(t.rois[0])}.{esc(t.metric)}">'
+        f'{esc(t.title + (" " + named[t.rois[0]] if t.rois[0] in named else ""))}</th>' for t in single) + "</tr></thead>"
+    body = []
+    for o in _listed_settings(result):
+        cells = "".join(_value_cell(_rows_by(o, t.metric).get(t.rois[0], []), t.metric) for t in single)
+        body.append(f"<tr><td class=\"num\">{o.job.number}</td><td>{esc(o.label)}</td>{cells}</tr>")
+    return (f'<h3>Key numbers per setting</h3><table id="per-setting"><caption>{_caption(result, "metrics")}</caption>'
+            f'{head}<tbody>{"".join(body)}</tbody></table>')
 
 
 def compare_report_html(result: "ComparisonResult", *, folder: str | os.PathLike | None = None) -> str:
@@ -387,7 +429,7 @@ def compare_report_html(result: "ComparisonResult", *, folder: str | os.PathLike
         ("measured", n_ok),
         ("failed", n_bad),
         ("template", f"{result.template_name} ({result.template_title})"),
-        ("bands", ", ".join(result.band_names) if result.band_names else "none"),
+        ("bands", ", ".join(result.band_names) if result.band_names else "none (settings not ranked)"),
         ("worker processes", result.workers),
     ]
     fill_items = [
@@ -430,7 +472,8 @@ def compare_report_html(result: "ComparisonResult", *, folder: str | os.PathLike
                   "<thead><tr><th class=\"num\">#</th><th>source</th><th>error</th><th>message</th></tr></thead>"
                   f"<tbody>{frows}</tbody></table></section>")
     charts = "".join(_figure(_read(base / name), name, caption) for name, caption in result.charts)
-    matrices = "".join(_settings_matrix(result, table) for table in key_metric_columns(result.succeeded))
+    tables = key_metric_columns(result.succeeded)
+    matrices = _per_setting_table(result, tables) + "".join(_settings_matrix(result, t) for t in tables if len(t.rois) > 1)
     blocks = []
     for o in result.succeeded:
         rec = (o.series or {}).get("reconstruction") or {}
@@ -455,7 +498,9 @@ def compare_report_html(result: "ComparisonResult", *, folder: str | os.PathLike
     body = (
         '<section id="summary" class="summary">'
         f"<div><h2>Comparison</h2>{_dl(summary_items)}</div><div><h2>Fill record</h2>{_dl(fill_items)}</div></section>"
-        f'<section id="ranking-section"><h2>Ranking</h2>{ranking}</section>'
+        + (f'<section id="ranking-section"><h2>Ranking</h2>{ranking}</section>' if result.ranked else
+           f'<section id="ranking-section"><h2>Ranking</h2><p id="not-ranked" class="note">{esc(NOT_RANKED[0].upper() + NOT_RANKED[1:])} '
+           '(Values by setting, below).</p></section>')
         + failed
         + f'<section id="charts"><h2>Charts</h2>{charts}</section>'
         + f'<section id="values"><h2>Values by setting</h2>{matrices}</section>'

@@ -69,15 +69,6 @@ def strip_warning(text: str) -> str:
     return text
 
 
-def metric_titles(analysis: Analysis) -> dict[str, str]:
-    """metric -> the title the kind's report tables give it (``rc_max`` -> ``RC max``)."""
-    titles: dict[str, str] = {}
-    for grid in analysis.result_grids():
-        for metric, title in grid.metrics:
-            titles.setdefault(metric, title)
-    return titles
-
-
 @app.command("measure")
 def measure_cmd(
     inputs: List[Path] = typer.Argument(..., metavar="INPUT", help="DICOM folder(s)/file(s) of one series, or a NIfTI file."),
@@ -194,7 +185,7 @@ def print_verdicts(analysis: Analysis) -> None:
         t.add_column(escape(bs.name), justify="right", no_wrap=True)
     t.add_column("verdict", no_wrap=True)
     colour = {"pass": "green", "fail": "bold red", "n/a": "yellow"}
-    titles = metric_titles(analysis)
+    titles = analysis.metric_titles()
     roi_order: dict[str, int] = {}
     metric_order: dict[str, int] = {}
     for r in analysis.rows:

@@ -6,6 +6,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, List, Optional
 
 import typer
+from rich import box
 from rich.console import Console
 from rich.markup import escape
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
@@ -13,7 +14,8 @@ from rich.table import Table
 
 from ..results import CAUTION
 from . import app
-from .commands import print_written
+from .commands import print_written, strip_warning
+from .numbers import number
 from .progress import interactive
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -24,7 +26,76 @@ err_console = Console(stderr=True, highlight=False)
 
 
 def print_ranking(result, report: bool = False) -> None:
-    """The ranking table, then the failed series with their errors."""
+    """The ranking table (with bands) or each setting's key numbers (without), then the failed
+    series with their errors and the warnings."""
+    if result.ranked:
+        _print_ranked(result, report)
+    else:
+        print_key_numbers(result)
+    for o in result.failed:
+        console.print(f"[bold]FAILED[/bold] #{o.job.number} {escape(o.job.where)}: {escape(o.error or '')}", soft_wrap=True)
+    seen = set()
+    for w in [*result.warnings, *(w for o in result.succeeded for w in o.warnings)]:
+        if w not in seen:
+            seen.add(w)
+            console.print("[bold]WARNING[/bold]: " + escape(strip_warning(w)), soft_wrap=True)
+
+
+def print_key_numbers(result) -> None:
+    """Without bands: no ranking; each setting's key numbers, the settings sorted by label.
+
+    A table per key metric that several ROIs have (columns: the ROIs), then one table of the
+    metrics of a single ROI (its column headed by the metric's title and the ROI). Values are
+    never cut: their columns are as wide as the widest value (a heading wraps between words)
+    and the label column wraps instead.
+    """
+    from ..ranking import NOT_RANKED, by_label, key_metric_columns, key_numbers, row_of, short_roi_names
+
+    settings = by_label(result.outcomes)
+    console.print(f"[bold]{escape(result.template_title)}[/bold]: {len(settings)} setting(s) measured; {escape(NOT_RANKED)}.",
+                  soft_wrap=True)
+    if not settings:
+        return
+    units = {(k.roi, k.metric): k.unit for k in key_numbers(result.outcomes)}
+    tables = key_metric_columns(result.outcomes)
+
+    def cell(o, roi: str, metric: str) -> str:
+        r = row_of(o, roi, metric)
+        return number(r.value if r is not None else None, units.get((roi, metric)))
+
+    for table in tables:
+        if len(table.rois) > 1:
+            columns = [(name, [cell(o, roi, table.metric) for o in settings])
+                       for name, roi in zip(short_roi_names(table.rois), table.rois)]
+            console.print(_settings_table(table.title, settings, columns))
+    single = [(t.rois[0], t) for t in tables if len(t.rois) == 1]
+    if single:
+        # an ROI the other tables show (a sphere) is named; an ROI with one metric of its own is not
+        shown: dict[str, str] = {}
+        for table in tables:
+            if len(table.rois) > 1:
+                shown.update(zip(table.rois, short_roi_names(table.rois)))
+        columns = [(table.title + (f" {shown[roi]}" if roi in shown else ""), [cell(o, roi, table.metric) for o in settings])
+                   for roi, table in single]
+        console.print(_settings_table("per setting", settings, columns))
+    console.print(CAUTION, markup=False)
+
+
+def _settings_table(title: str, settings, columns: list[tuple[str, list[str]]]) -> Table:
+    """A table of settings (rows: number and label) by value columns ``(heading, cells)``."""
+    t = Table(title=escape(title), box=box.SIMPLE_HEAD, show_edge=False, pad_edge=False, title_justify="left")
+    t.add_column("#", justify="right", no_wrap=True, min_width=max(len(str(o.job.number)) for o in settings))
+    t.add_column("setting", min_width=12, overflow="fold")
+    for heading, cells in columns:
+        width = max([len(w) for w in heading.split()] + [len(c) for c in cells])
+        t.add_column(escape(heading), justify="right", width=width)
+    for n, o in enumerate(settings):
+        t.add_row(str(o.job.number), escape(o.label), *(cells[n] for _, cells in columns))
+    return t
+
+
+def _print_ranked(result, report: bool) -> None:
+    """The ranking table (settings ranked against the bands)."""
     t = Table(title=f"Reconstruction settings ranked ({result.template_title})", caption=CAUTION, caption_justify="left")
     t.add_column("rank", justify="right")
     t.add_column("#", justify="right")
@@ -50,13 +121,6 @@ def print_ranking(result, report: bool = False) -> None:
     console.print(t)
     if any(e.reasons for e in result.ranking):
         console.print("reasons in full: ranking.csv" + (" and report.html" if report else ""), markup=False)
-    for o in result.failed:
-        console.print(f"[bold]FAILED[/bold] #{o.job.number} {escape(o.job.where)}: {escape(o.error or '')}", soft_wrap=True)
-    seen = set()
-    for w in [*result.warnings, *(w for o in result.succeeded for w in o.warnings)]:
-        if w not in seen:
-            seen.add(w)
-            console.print("[bold]WARNING[/bold]: " + escape(w), soft_wrap=True)
 
 
 @app.command("compare")
@@ -73,7 +137,8 @@ def compare_cmd(
     templates_dir: Optional[List[Path]] = typer.Option(None, "--templates", metavar="DIR", help="Extra folder of templates; repeatable."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar on stderr (it appears only when stderr is a terminal)."),
 ) -> None:
-    """Compare reconstruction settings: measure every PET series with one fill record and rank them.
+    """Compare reconstruction settings: measure every PET series with one fill record; rank them
+    against acceptance bands, or without bands list each setting's key numbers by label.
 
     Exit code 0 when every series was measured, 4 when some could not be (listed with their
     errors; the others are still measured and written), 2 for problems common to all.
@@ -118,7 +183,8 @@ def compare_cmd(
             result = run(progress)
     print_ranking(result, report)
     print_written(result.written)
-    files = ", ".join(["comparison.csv", "ranking.csv", "summary.json", *(name for name, _ in result.charts)] + (["report.html"] if report else []))
+    files = ", ".join(["comparison.csv", *(["ranking.csv"] if result.ranked else []), "key_numbers.csv", "summary.json",
+                       *(name for name, _ in result.charts)] + (["report.html"] if report else []))
     console.print(f"wrote {out}/ ({files}); {len(result.succeeded)} of {len(result.outcomes)} series measured", markup=False)
     if result.exit_code:
         raise typer.Exit(result.exit_code)

@@ -10,10 +10,14 @@ worker processes, applies the acceptance bands, and writes:
     The rows of ``measurements.csv`` of every series, with the columns of
     :data:`phantometry.results.CSV_COLUMNS` followed by ``label`` (the setting's label).
 ``ranking.csv``
-    One line per setting, best first (see :func:`phantometry.ranking.rank_settings`), then
-    the failed series.
+    With bands: one line per setting, best first (see :func:`phantometry.ranking.rank_settings`),
+    then the failed series. Without bands nothing is ranked and the file is not written.
+``key_numbers.csv``
+    One line per setting sorted by label, failed series last: each key number of the phantom
+    kind (:meth:`phantometry.phantoms.base.Analysis.key_metrics`) with its standard uncertainty.
 ``summary.json``
-    Inputs, labels, per-series status (error message of a failed series), warnings.
+    Inputs, labels, per-series status (error message of a failed series), warnings, whether
+    the settings were ranked, the ranking, and the key numbers by setting.
 the phantom kind's charts
     :meth:`phantometry.phantoms.base.PhantomKind.comparison_charts` (the body phantom:
     ``contrast_noise.png``, percent contrast against background variability per sphere, one

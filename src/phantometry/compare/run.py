@@ -313,7 +313,8 @@ def _finish(
 ) -> ComparisonResult:
     warnings_out = list(notes)
     warnings_out += assign_labels(outcomes, mapping)
-    ranking = rank_settings([(o.label, o.job.number, o.job.series_uid, o.rows) for o in outcomes if o.ok])
+    # ranking needs bands: without them the settings are listed by label (ranking.by_label)
+    ranking = rank_settings([(o.label, o.job.number, o.job.series_uid, o.rows) for o in outcomes if o.ok]) if band_names else []
     return ComparisonResult(
         out=tmp,
         outcomes=outcomes,

@@ -183,7 +183,7 @@ def _measure_into(
     outcome.warnings.extend(analysis.warnings)
     outcome.localisation = analysis.placement.as_dict()
     outcome.key_metrics = analysis.key_metrics()
-    outcome.metric_titles = {metric: title for grid in analysis.result_grids() for metric, title in grid.metrics}
+    outcome.metric_titles = analysis.metric_titles()
     if out_dir is not None:
         folder = Path(out_dir)
         try:

@@ -1,6 +1,6 @@
-"""The files of a comparison folder: ``comparison.csv``, ``ranking.csv``, ``summary.json``, the
-phantom kind's comparison charts (drawn by the warm workers when there are any) and, on request,
-``report.html``."""
+"""The files of a comparison folder: ``comparison.csv``, ``ranking.csv`` (with bands),
+``key_numbers.csv``, ``summary.json``, the phantom kind's comparison charts (drawn by the warm
+workers when there are any) and, on request, ``report.html``."""
 
 from __future__ import annotations
 
@@ -9,7 +9,7 @@ from pathlib import Path
 from typing import Any
 
 from .. import __version__
-from ..ranking import ComparisonResult, comparison_csv, ranking_csv
+from ..ranking import NOT_RANKED, ComparisonResult, comparison_csv, key_numbers_csv, key_numbers_json, ranking_csv
 from ..results import CAUTION, to_json
 
 
@@ -43,11 +43,14 @@ def summary_json(result: ComparisonResult) -> dict[str, Any]:
             }
             for o in result.outcomes
         ],
+        "ranked": result.ranked,
+        "ranking_note": None if result.ranked else NOT_RANKED,
         "ranking": [
             {"rank": e.rank, "setting": e.number, "label": e.label, "meets_all_bands": e.meets_all_bands,
              "rows_checked": e.checked, "rows_failed": e.failed, "distance_from_band_centres": e.distance, "reasons": e.reasons}
             for e in result.ranking
         ],
+        "key_numbers": key_numbers_json(result),
     }
 
 
@@ -70,7 +73,9 @@ def write_files(result: ComparisonResult, tmp: Path, report: bool, executor: Pro
     from ..phantoms.base import ComparedSetting
 
     (tmp / "comparison.csv").write_text(comparison_csv(result.outcomes), encoding="utf-8")
-    (tmp / "ranking.csv").write_text(ranking_csv(result), encoding="utf-8")
+    if result.ranked:  # ranking needs bands
+        (tmp / "ranking.csv").write_text(ranking_csv(result), encoding="utf-8")
+    (tmp / "key_numbers.csv").write_text(key_numbers_csv(result), encoding="utf-8")
     (tmp / "summary.json").write_text(to_json(summary_json(result)), encoding="utf-8")
     settings = [ComparedSetting(o.job.number, o.label, o.rows) for o in result.succeeded]
     tpl = result.template

@@ -321,6 +321,15 @@ class Analysis(ABC):
         """(roi, metric) pairs that characterise a setting when comparing without bands."""
         return [(r.roi, r.metric) for r in self.rows if not r.metric.startswith("centre_")]
 
+    def metric_titles(self) -> dict[str, str]:
+        """metric -> its title in tables (``rc_max`` -> ``RC max``); the default: the titles
+        of the kind's report tables (:meth:`result_grids`)."""
+        titles: dict[str, str] = {}
+        for grid in self.result_grids():
+            for metric, title in grid.metrics:
+                titles.setdefault(metric, title)
+        return titles
+
 
 @dataclass
 class Chart:

@@ -327,14 +327,21 @@ class BodyAnalysis(Analysis):
         return kinds
 
     def key_metrics(self) -> list[tuple[str, str]]:
-        out = []
-        for s in self.template.spheres:
-            hot = not self.fill.is_cold(s.name)
-            out += [(s.name, m) for m in (("rc_max", "rc_mean", "rc_peak") if hot else ()) + ("percent_contrast", "background_variability_pct")]
+        """RC max, mean and peak of every hot sphere; contrast and background variability of
+        the smallest sphere; the insert residual, the activity recovery and the effective FWHM."""
+        spheres = list(self.template.spheres)
+        out = [(s.name, m) for m in ("rc_max", "rc_mean", "rc_peak") for s in spheres if not self.fill.is_cold(s.name)]
+        if spheres:
+            smallest = min(spheres, key=lambda s: s.diameter_mm)
+            out += [(smallest.name, "percent_contrast"), (smallest.name, "background_variability_pct")]
         opts = self.options
         if opts.lung_insert:
             out.append((opts.lung_insert, "lung_residual_pct"))
         return out + [("background", "activity_recovery"), ("phantom", "effective_fwhm_mm")]
+
+    def metric_titles(self) -> dict[str, str]:
+        return {**super().metric_titles(), "lung_residual_pct": "insert residual (%)", "activity_recovery": "activity recovery",
+                "effective_fwhm_mm": "effective FWHM (mm)"}
 
 
 #: A voxel belongs to a SEG segment when at least this fraction of it lies inside an ROI.
