@@ -1,4 +1,5 @@
-"""``compare`` without bands: no ranking, each setting's key numbers by label."""
+"""``compare`` without bands: no ranking, each setting's key numbers by label; folders reached
+through symbolic links are followed (and a link loop does not trap the search)."""
 
 from __future__ import annotations
 
@@ -13,6 +14,8 @@ from pathlib import Path
 import pytest
 
 from phantometry import ranking as rk
+from phantometry.compare import discover_jobs
+from phantometry.compare.discover import files_under
 from phantometry.synth import write_synthetic_family
 
 SCRIPT = Path(sys.executable).parent / "phantometry"
@@ -22,11 +25,29 @@ FWHMS = (12.0, 5.0, 8.0)  # discovery order differs from label order
 
 @pytest.fixture(scope="module")
 def linked(tmp_path_factory):
-    """Three reconstructions of one acquisition, blurred 12, 5 and 8 mm."""
+    """Three reconstructions kept elsewhere, reached from the input folder only through
+    symbolic links, one of them twice; plus a link back up the tree (a loop)."""
     root = tmp_path_factory.mktemp("unranked")
-    fam = write_synthetic_family(root / "in", [{"fwhm_mm": f, "noise_cv": 0.15 * (5.0 / f) ** 1.5, "filter": f"Gauss {f:g}mm"}
-                                               for f in FWHMS], voxel_mm=4.0)
-    return {**fam, "root": root, "input": root / "in"}
+    fam = write_synthetic_family(root / "store", [{"fwhm_mm": f, "noise_cv": 0.15 * (5.0 / f) ** 1.5, "filter": f"Gauss {f:g}mm"}
+                                                  for f in FWHMS], voxel_mm=4.0)
+    inp = root / "in"
+    (inp / "site").mkdir(parents=True)
+    for n, folder in enumerate(fam["series"]):
+        (inp / "site" / f"link{n}").symlink_to(folder, target_is_directory=True)
+    (inp / "again").symlink_to(fam["series"][0], target_is_directory=True)  # the same series a second time
+    (inp / "site" / "loop").symlink_to(inp, target_is_directory=True)  # a loop back to the top
+    return {**fam, "root": root, "input": inp}
+
+
+def test_files_under_follows_links_once_each(linked):
+    files = files_under([linked["input"]])
+    reals = [os.path.realpath(f) for f in files]
+    assert len(reals) == len(set(reals))  # each real file once, the loop and the second link add nothing
+    expected = sum(len(list(Path(s).iterdir())) for s in linked["series"])
+    assert len(files) == expected
+    assert all(str(f).startswith(str(linked["input"])) for f in files)  # named by the path that reached them
+    jobs, _ = discover_jobs(linked["input"])
+    assert len(jobs) == 3 and all("link" in j.where or "again" in j.where for j in jobs)
 
 
 def test_compare_without_bands_lists_key_numbers_by_label(linked, tmp_path):
@@ -89,3 +110,30 @@ def test_by_label_and_natural_order():
             outcome(4, "OSEM 2i"), outcome(5, "zzz", error="boom")]
     assert [o.job.number for o in rk.by_label(outs)] == [3, 4, 2, 1]  # failed settings are not listed
     assert rk.natural_key("a10") > rk.natural_key("a9") and rk.natural_key("B") == rk.natural_key("b")
+
+
+def test_files_under_survives_every_kind_of_loop(tmp_path):
+    # a/ and b/ link to each other, c links to itself (a link loop the system refuses to
+    # resolve), d is dangling, e links to the folder above the input: each real folder is
+    # searched once and the search ends
+    top = tmp_path / "top"
+    inp = top / "input"
+    (inp / "a").mkdir(parents=True)
+    (inp / "b").mkdir()
+    (inp / "a" / "one.dcm").write_bytes(b"1")
+    (inp / "b" / "two.dcm").write_bytes(b"2")
+    (top / "outside.dcm").write_bytes(b"3")  # reached only through the link to the folder above
+    (inp / "a" / "to_b").symlink_to(inp / "b", target_is_directory=True)
+    (inp / "b" / "to_a").symlink_to(inp / "a", target_is_directory=True)
+    (inp / "c").symlink_to(inp / "c")
+    (inp / "d").symlink_to(tmp_path / "nowhere")
+    (inp / "e").symlink_to(top, target_is_directory=True)
+    link_to_input = tmp_path / "input_link"
+    link_to_input.symlink_to(inp, target_is_directory=True)
+    for root in (inp, link_to_input):
+        files = files_under([root])
+        assert sorted(f.name for f in files) == ["one.dcm", "outside.dcm", "two.dcm"], files
+        assert all(str(f).startswith(str(root)) for f in files)
+    # a file given twice (itself and through a link) is listed once
+    (tmp_path / "one_link.dcm").symlink_to(inp / "a" / "one.dcm")
+    assert len(files_under([inp / "a" / "one.dcm", tmp_path / "one_link.dcm"])) == 1
