@@ -137,3 +137,28 @@ def test_files_under_survives_every_kind_of_loop(tmp_path):
     # a file given twice (itself and through a link) is listed once
     (tmp_path / "one_link.dcm").symlink_to(inp / "a" / "one.dcm")
     assert len(files_under([inp / "a" / "one.dcm", tmp_path / "one_link.dcm"])) == 1
+
+
+def test_metric_headings_in_words():
+    assert rk.metric_heading("max_deviation_pct") == "max deviation (%)"
+    assert rk.metric_heading("voxel_cv_pct") == "voxel CV (%)" and rk.metric_heading("effective_fwhm_mm") == "effective FWHM (mm)"
+
+
+def test_narrow_terminal_splits_the_columns_never_cuts_a_value(monkeypatch):
+    import io
+
+    from rich.console import Console
+
+    from phantometry.cli import compare as cli_compare
+
+    buf = io.StringIO()
+    monkeypatch.setattr(cli_compare, "console", Console(file=buf, width=50, highlight=False))
+    settings = [rk.SeriesOutcome(job=rk.SeriesJob(n, "nifti", (f"/x/{n}.nii",)), label=f"OSEM 4i, Gauss {n}mm, a long label")
+                for n in (1, 12)]
+    columns = [(f"metric number {k} (%)", [f"{1000 * k + n}.25" for n in (1, 2)]) for k in range(1, 7)]
+    cli_compare._print_settings_tables("per setting", settings, columns)
+    text = buf.getvalue()
+    assert all(len(line) <= 50 for line in text.splitlines()) and "…" not in text
+    assert text.count("per setting (continued)") >= 1  # more tables, each within the width
+    for _, cells in columns:  # every value whole
+        assert all(c in text for c in cells)

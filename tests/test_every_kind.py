@@ -91,6 +91,24 @@ def test_compare_with_report(kind_scans, tmp_path, capsys):
         assert (folder / "overlay.png").exists()
 
 
+def test_compare_without_bands_lists_each_kinds_key_numbers(kind_scans, tmp_path, capsys):
+    out = tmp_path / "cmp"
+    code = main(["compare", str(kind_scans["root"] / "recons"), "--template", kind_scans["name"], "--fill", str(kind_scans["fill"]),
+                 "--out", str(out), "--workers", "1"])
+    captured = capsys.readouterr()
+    assert code == 0, captured.err
+    said = " ".join(captured.out.split())
+    assert "not ranked: ranking needs acceptance bands" in said and not (out / "ranking.csv").exists()
+    rows = list(csv.DictReader(open(out / "key_numbers.csv", encoding="utf-8")))
+    assert len(rows) == 2 and all(r["status"] == "measured" for r in rows)
+    summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
+    numbers = summary["key_numbers"]["numbers"]
+    assert numbers and all(r[n["column"]] for r in rows for n in numbers)  # every key number of the kind, for both
+    for title in {n["title"] for n in numbers}:  # every metric shown in the terminal (a heading may wrap)
+        assert all(word in said for word in title.split()), title
+    assert "…" not in captured.out  # nothing cut short in 80 columns
+
+
 def test_seg_refused_where_it_does_not_apply(kind_scans, tmp_path, capsys):
     name = kind_scans["name"]
     code = main(["measure", str(kind_scans["paths"][0]["image"]), "--template", name, "--fill", str(kind_scans["fill"]),

@@ -120,3 +120,34 @@ def test_a_size_mismatch_keeps_its_own_message():
     with pytest.raises(PhantomNotFound) as err:
         measure_volume(vol, TPL, fill, uncertainties=False, resolution=False)
     assert not isinstance(err.value, PhantomNotPlaced) and "likely cause" not in str(err.value)
+
+
+def test_a_body_cut_by_the_field_of_view_is_named_as_such(tmp_path):
+    # the phantom moved 120 mm along the bed in a 200 mm long field of view: the part left in
+    # the image is too short for the template, and it reaches the last slice
+    r = run("synth", "scan", "--voxel", "4", "--matrix", "80,80,50", "--shift", "0,0,120", cwd=tmp_path)
+    assert r.returncode == 0, r.stderr
+    line = _one_error_line(run("measure", "scan/dicom", "--fill", "scan/fill.yaml", "--out", "res", cwd=tmp_path))
+    assert "the object found measures" in line and "it reaches the last slice of the image" in line
+    assert "likely cause: phantom partly outside the field of view" in line and "scan it whole" in line
+    assert not (tmp_path / "res").exists()
+
+
+def test_a_question_is_answered_by_the_cause_not_repeated():
+    # a uniform cylinder longer than the field of view, measured as the body phantom: no axis
+    # insert; the message gives the cause instead of asking whether the template is right
+    from phantometry.synth import DEMO_SCAN_TIME
+    from phantometry.volume import Volume
+
+    shape = (50, 75, 75)
+    _, y, x = np.indices(shape)
+    data = np.where((x - 37) ** 2 + (y - 37) ** 2 < 30**2, 5300.0, 0.0).astype(np.float32)
+    aff = np.diag([4.0, 4.0, 4.0, 1.0])
+    aff[:3, 3] = [-148, -148, -100]
+    vol = Volume(data=data, affine=aff, acquired_at=DEMO_SCAN_TIME, nuclide="F-18")
+    fill = FillRecord.from_dict(synthesize(SynthSpec(voxel_mm=(6.0,) * 3)).fill_record)
+    with pytest.raises(PhantomNotPlaced) as err:
+        measure_volume(vol, TPL, fill, uncertainties=False, resolution=False)
+    text = str(err.value)
+    assert "no cold axis insert" in text and "?" not in text
+    assert "likely cause: phantom partly outside the field of view" in text and "--centre NAME=x,y,z" in text

@@ -28,7 +28,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, Sequence
 
 import numpy as np
 from scipy import ndimage
@@ -319,15 +319,20 @@ def check_body_size(volume: Volume, template: Template, where: str) -> None:
     found = find_body(volume, where, max(float(np.min(np.abs(volume.spacing_mm))), min(6.0, 2 * body_r / 15)))
     rel = found.extent_mm / _template_extent(template)
     if np.any(rel < 0.6) or np.any(rel > 1.6):
-        raise PhantomNotFound(size_mismatch_message(where, found.extent_mm, template))
+        raise PhantomNotFound(size_mismatch_message(where, found.extent_mm, template, edges=image_edges_reached(found)))
 
 
-def size_mismatch_message(where: str, extent_mm: np.ndarray, template: Template) -> str:
-    """Message for an object whose size does not fit the template, suggesting one that does."""
+def size_mismatch_message(where: str, extent_mm: np.ndarray, template: Template, edges: Sequence[str] = ()) -> str:
+    """Message for an object whose size does not fit the template, suggesting one that does.
+
+    ``edges``: the edges of the image the object reaches (:func:`image_edges_reached`). An
+    object that reaches an edge, with some of its sizes the template's and the others too short,
+    is most likely the template's phantom cut by the field of view, and the message says so first.
+    """
     from .templates import list_templates, load_template_file
 
     expected = _template_extent(template)
-    suggestion = ""
+    suggestion, other_name = "", ""
     best = np.inf  # the closest template (largest |ln(found / nominal)|), not the first that fits
     for name, path in list_templates().items():
         try:
@@ -339,12 +344,19 @@ def size_mismatch_message(where: str, extent_mm: np.ndarray, template: Template)
         rel = extent_mm / _template_extent(other)
         if np.all((rel > 0.6) & (rel < 1.6)) and float(np.max(np.abs(np.log(rel)))) < best:
             best = float(np.max(np.abs(np.log(rel))))
-            suggestion = f"; it looks like the {other.name} phantom: try --template {other.name}"
-    return (
-        f"{where}: the object found measures {' x '.join(f'{e:.0f}' for e in extent_mm)} mm but template "
-        f"{template.name} describes {' x '.join(f'{e:.0f}' for e in expected)} mm{suggestion or '; use the template for this phantom (phantometry templates list)'}"
-        ", or check that the whole phantom is in the field of view"
-    )
+            suggestion = f"it looks like the {other.name} phantom: try --template {other.name}"
+            other_name = other.name
+    found = (f"{where}: the object found measures {' x '.join(f'{e:.0f}' for e in extent_mm)} mm but template "
+             f"{template.name} describes {' x '.join(f'{e:.0f}' for e in expected)} mm")
+    rel = np.asarray(extent_mm, float) / expected
+    fits = (rel > 0.6) & (rel < 1.6)
+    if edges and np.any(fits) and np.all(fits | (rel <= 0.6)):  # some sizes fit, the others are short: cut off
+        return (f"{found}; it reaches {_join_words(list(edges))} of the image: likely cause: phantom partly outside the field "
+                f"of view; centre the phantom in the field of view and scan it whole; "
+                + (f"or, if this is the {other_name} phantom, use --template {other_name}" if other_name
+                   else "or check --template (phantometry templates list)"))
+    return (f"{found}; {suggestion or 'use the template for this phantom (phantometry templates list)'}"
+            ", or check that the whole phantom is in the field of view")
 
 
 def find_axis(volume: Volume, body: _Body, axis_insert: Insert, where: str) -> tuple[np.ndarray, np.ndarray]:
@@ -645,6 +657,8 @@ def explain_not_found(exc: PhantomNotFound, volume: Volume, template: Template, 
         advice = (f"or place the phantom by hand: --centre NAME=x,y,z (world mm, read in a viewer) for three spheres, "
                   f"e.g. {names}")
     text = str(exc).rstrip(". ")
+    if text.endswith("?"):  # a question the cause answers
+        text = text[: text.rfind(";")] if ";" in text else text.rstrip("?")
     return PhantomNotPlaced(f"{text}; likely cause: {cause}; {advice}")
 
 
@@ -717,7 +731,7 @@ def _locate(
     expected = _template_extent(template)
     rel = body.extent_mm / expected
     if np.any(rel < 0.6) or np.any(rel > 1.6):
-        raise PhantomNotFound(size_mismatch_message(where, body.extent_mm, template))
+        raise PhantomNotFound(size_mismatch_message(where, body.extent_mm, template, edges=image_edges_reached(body)))
     bg = body.background
     sphere_overrides = [s for s in spheres if s.name in overrides]
     ring_score = None
@@ -1242,7 +1256,7 @@ def locate_small_animal(
     expected = _template_extent(template)
     rel = body.extent_mm / expected
     if np.any(rel < 0.6) or np.any(rel > 1.6):
-        raise PhantomNotFound(size_mismatch_message(where, body.extent_mm, template))
+        raise PhantomNotFound(size_mismatch_message(where, body.extent_mm, template, edges=image_edges_reached(body)))
     bg = body.background
     # ---- first axis from slice centroids of the filled body (coarse)
     k_idx = np.arange(body.mask.shape[0])
@@ -1883,7 +1897,7 @@ def locate_generic(
     body = find_body(volume, where, target)
     rel = body.extent_mm / _template_extent(template)
     if np.any(rel < 0.6) or np.any(rel > 1.6):
-        raise PhantomNotFound(size_mismatch_message(where, body.extent_mm, template))
+        raise PhantomNotFound(size_mismatch_message(where, body.extent_mm, template, edges=image_edges_reached(body)))
     bg = body.background
     counts = body.mask.sum(axis=(1, 2))
     use = counts >= max(3, 0.8 * counts.max())

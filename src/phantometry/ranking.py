@@ -289,7 +289,8 @@ class KeyMetricColumns:
 
 
 def key_metric_columns(outcomes: Sequence[SeriesOutcome]) -> list[KeyMetricColumns]:
-    """The tables of values by setting: one per key metric of the measured settings.
+    """The tables of values by setting: one per key metric of the measured settings, titled as
+    the kind titles the metric (else in words: :func:`metric_heading`).
 
     Metrics and ROIs come in the order the phantom kind lists its key metrics
     (:attr:`SeriesOutcome.key_metrics`; the first setting's order, then anything only later
@@ -308,7 +309,18 @@ def key_metric_columns(outcomes: Sequence[SeriesOutcome]) -> list[KeyMetricColum
             cols = rois_of.setdefault(metric, [])
             if roi not in cols:
                 cols.append(roi)
-    return [KeyMetricColumns(m, titles.get(m, m), rois) for m, rois in rois_of.items() if m in measured]
+    return [KeyMetricColumns(m, titles[m] if titles.get(m, m) != m else metric_heading(m), rois)
+            for m, rois in rois_of.items() if m in measured]
+
+
+#: words of metric names written as a reader expects them in a heading
+_HEADING_WORDS = {"rc": "RC", "cv": "CV", "bv": "BV", "fwhm": "FWHM", "suv": "SUV", "pct": "(%)", "mm": "(mm)"}
+
+
+def metric_heading(metric: str) -> str:
+    """A heading for a metric its kind gives no title: words instead of the code name
+    (``max_deviation_pct`` -> ``max deviation (%)``, ``voxel_cv_pct`` -> ``voxel CV (%)``)."""
+    return " ".join(_HEADING_WORDS.get(w, w) for w in metric.split("_") if w)
 
 
 def short_roi_names(rois: Sequence[str]) -> list[str]:
@@ -497,6 +509,7 @@ __all__ = [
     "key_numbers",
     "key_numbers_csv",
     "key_numbers_json",
+    "metric_heading",
     "natural_key",
     "row_of",
     "rank_settings",

@@ -67,7 +67,7 @@ def print_key_numbers(result) -> None:
         if len(table.rois) > 1:
             columns = [(name, [cell(o, roi, table.metric) for o in settings])
                        for name, roi in zip(short_roi_names(table.rois), table.rois)]
-            console.print(_settings_table(table.title, settings, columns))
+            _print_settings_tables(table.title, settings, columns)
     single = [(t.rois[0], t) for t in tables if len(t.rois) == 1]
     if single:
         # an ROI the other tables show (a sphere) is named; an ROI with one metric of its own is not
@@ -77,18 +77,45 @@ def print_key_numbers(result) -> None:
                 shown.update(zip(table.rois, short_roi_names(table.rois)))
         columns = [(table.title + (f" {shown[roi]}" if roi in shown else ""), [cell(o, roi, table.metric) for o in settings])
                    for roi, table in single]
-        console.print(_settings_table("per setting", settings, columns))
+        _print_settings_tables("per setting", settings, columns)
     console.print(CAUTION, markup=False)
+
+
+#: the narrowest the label column of a settings table gets (its words wrap)
+LABEL_MIN_WIDTH = 16
+
+
+def _column_width(heading: str, cells: list[str]) -> int:
+    """As wide as the widest value or the longest word of the heading (which wraps between words)."""
+    return max([len(w) for w in heading.split()] + [len(c) for c in cells])
+
+
+def _print_settings_tables(title: str, settings, columns: list[tuple[str, list[str]]]) -> None:
+    """Print the value columns in as many tables as it takes for each to fit the terminal: no
+    value is ever cut short."""
+    # a table of these settings is as wide as its columns with 3 characters between neighbours
+    # (padding and rule; none at the outer edges)
+    used = max(len(str(o.job.number)) for o in settings) + 3 + LABEL_MIN_WIDTH
+    chunks: list[list[tuple[str, list[str]]]] = [[]]
+    width = used
+    for heading, cells in columns:
+        need = 3 + _column_width(heading, cells)
+        if chunks[-1] and width + need > console.width:
+            chunks.append([])
+            width = used
+        chunks[-1].append((heading, cells))
+        width += need
+    for n, chunk in enumerate(chunks):
+        console.print(_settings_table(title if n == 0 else f"{title} (continued)", settings, chunk))
 
 
 def _settings_table(title: str, settings, columns: list[tuple[str, list[str]]]) -> Table:
     """A table of settings (rows: number and label) by value columns ``(heading, cells)``."""
     t = Table(title=escape(title), box=box.SIMPLE_HEAD, show_edge=False, pad_edge=False, title_justify="left")
     t.add_column("#", justify="right", no_wrap=True, min_width=max(len(str(o.job.number)) for o in settings))
-    t.add_column("setting", min_width=12, overflow="fold")
+    t.add_column("setting", min_width=LABEL_MIN_WIDTH, overflow="fold")
     for heading, cells in columns:
-        width = max([len(w) for w in heading.split()] + [len(c) for c in cells])
-        t.add_column(escape(heading), justify="right", width=width)
+        t.add_column(escape(heading), justify="right", width=_column_width(heading, cells))
     for n, o in enumerate(settings):
         t.add_row(str(o.job.number), escape(o.label), *(cells[n] for _, cells in columns))
     return t

@@ -437,8 +437,11 @@ class BodyKind(PhantomKind):
         except PhantomNotPlaced:
             raise
         except PhantomNotFound as exc:
-            hot = {s.name: not fill.is_cold(s.name) for s in template.spheres}
-            ratio = {s.name: fill.activity_ratio(s.name) for s in template.spheres if hot[s.name]}
+            try:
+                hot = {s.name: not fill.is_cold(s.name) for s in template.spheres}
+                ratio = {s.name: fill.activity_ratio(s.name) for s in template.spheres if hot[s.name]}
+            except FillRecordError:  # a fill record of another phantom: the error already says what was found
+                raise exc from None
             raise explain_not_found(exc, volume, template, hot=hot, activity_ratio=ratio, overrides=overrides) from None
 
     def _analyse(
