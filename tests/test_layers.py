@@ -30,6 +30,7 @@ LAYERS: dict[str, int] = {
     "phantometry.nuclides": 1,
     "phantometry.results": 1,
     "phantometry.yamlfile": 1,
+    "phantometry.resources": 1,
     "phantometry.threads": 1,
     "phantometry.fftconv": 1,
     "phantometry._agg": 1,

@@ -63,7 +63,7 @@ from pydantic import (
     model_validator,
 )
 
-from .yamlfile import read_yaml_file
+from .yamlfile import read_yaml_file, validation_problems
 from .errors import FillRecordError, InputError
 from .nuclides import DecayGapError, Nuclide, decay_factor, get_nuclide
 
@@ -474,27 +474,26 @@ def _model_at(loc: tuple[Any, ...]) -> type[BaseModel] | None:
 
 def _flatten(exc: ValidationError) -> str:
     """Pydantic's errors as ``field.path: problem; ...`` on one line."""
-    parts = []
-    for err in exc.errors():
-        loc = tuple(err["loc"])
-        path = ".".join(str(p) for p in loc) or "(top level)"
-        kind = err["type"]
-        if kind == "extra_forbidden":
+
+    def place(loc: tuple) -> str | None:
+        return ".".join(str(p) for p in loc) if loc else None  # record-level checks name their own fields
+
+    def problem(e: dict[str, Any]) -> str | None:
+        loc = tuple(e["loc"])
+        if e["type"] == "extra_forbidden":
             model = _model_at(loc)
             allowed = f"; allowed here: {', '.join(model.model_fields)}" if model else ""
-            problem = f"unknown key {loc[-1]!r}{allowed}"
-        elif kind == "missing":
-            problem = "missing (required)"
-        elif kind in ("greater_than", "greater_than_equal"):
-            bound = "positive" if kind == "greater_than" else "zero or more"
-            problem = f"must be {bound}, got {err.get('input')!r}"
-        else:
-            problem = err["msg"].removeprefix("Value error, ")
-        if not loc:  # record-level checks name their own fields
-            parts.append(problem)
-        else:
-            parts.append(f"{path}: {problem}")
-    return "; ".join(parts)
+            return f"unknown key {loc[-1]!r}{allowed}"
+        if e["type"] == "missing":
+            return "missing (required)"
+        if e["type"] in ("greater_than", "greater_than_equal"):
+            bound = "positive" if e["type"] == "greater_than" else "zero or more"
+            return f"must be {bound}, got {e.get('input')!r}"
+        if e["type"] == "literal_error":
+            return e["msg"]
+        return None
+
+    return "; ".join(validation_problems(exc, place=place, problem=problem))
 
 
 # ---------------------------------------------------------------------------- files
