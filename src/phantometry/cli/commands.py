@@ -57,6 +57,12 @@ def print_summary_table(analysis: Analysis) -> None:
     console.print(t)
     for line in st.lines:
         console.print(line, markup=False)
+    basis = analysis.volume.time_basis
+    if basis:
+        console.print(f"times: {basis}" + (f", {analysis.volume.time_zone}" if analysis.volume.time_zone else ""), markup=False)
+    for c in getattr(analysis, "protocol_checks", []):
+        if c.status == "warning":
+            console.print("[bold]PROTOCOL[/bold]: " + escape(c.message))
     for w in analysis.warnings:
         console.print("[bold]WARNING[/bold]: " + escape(w))
 
@@ -85,6 +91,9 @@ def measure_cmd(
     replace: bool = typer.Option(False, "--replace", help="With --record: replace an analysis of the same series + template + settings."),
     bands: Optional[List[str]] = typer.Option(None, "--bands", help="Acceptance band set (name or YAML file; phantometry bands list); repeatable."),
     strict: bool = typer.Option(False, "--strict", help="Exit code 3 when any banded value fails (results are still written)."),
+    timezone: Optional[str] = typer.Option(
+        None, "--timezone", help="Site time zone (IANA name, e.g. Europe/Berlin) of scanner times written without a UTC offset "
+        "(default: the fill record's timezone:, else its own offset)."),
 ) -> None:
     """Measure a phantom scan: recovery coefficients, contrast, background variability, insert residual.
 
@@ -113,6 +122,7 @@ def measure_cmd(
         seg=seg,
         bands=list(bands or []),
         overwrite=overwrite,
+        timezone=timezone,
     )
     print_summary_table(analysis)
     _print_resolution_and_verdicts(analysis, bool(bands))

@@ -65,8 +65,9 @@ LEDGER_CSV_COLUMNS = [
     "reconstruction",
     "tool_version",
     "settings_hash",
-    # then the measurement columns of measurements.csv, from roi on, in the same order
-    *CSV_COLUMNS[CSV_COLUMNS.index("roi") :],
+    # then the measurement columns of measurements.csv from roi to note, in the same order
+    # (later measurements.csv columns, such as uncertainty_fill, are not stored in the ledger)
+    *CSV_COLUMNS[CSV_COLUMNS.index("roi") : CSV_COLUMNS.index("note") + 1],
 ]
 _FLOAT_COLUMNS = ("value", "uncertainty", "band_low", "band_high")
 _ANALYSIS_COLUMNS = (
