@@ -224,6 +224,7 @@ def synth_cmd(
     axial_slope: float = typer.Option(0.0, "--axial-slope", help="Imperfection: axial gain slope, % per 100 mm along the slice axis."),
     slice_artefact: Optional[str] = typer.Option(None, "--slice-artefact", help="Imperfection: Z_MM,GAIN_PCT: the image slice nearest Z_MM from the phantom centre scaled by 1 + GAIN_PCT/100."),
     radial: float = typer.Option(0.0, "--radial", help="Imperfection: radial gain at the wall relative to the axis, % (positive: cupping, negative: capping)."),
+    local_times: bool = typer.Option(False, "--local-times", help="Write the scanner's times as local wall clock without a UTC offset, as most scanners do."),
 ) -> None:
     """Synthesise a phantom scan with known truth (image, fill.yaml, truth.json)."""
     from ..outputs import KIND_SCAN, check_output_folder, existing_inputs
@@ -268,7 +269,7 @@ def synth_cmd(
         slice_artefact=vec(slice_artefact, 2, "--slice-artefact") if slice_artefact else None,
         radial_gain_pct=radial,
     )
-    paths = write_synthetic(synthesize(spec), out, fmt, overwrite=overwrite, inputs=inputs)
+    paths = write_synthetic(synthesize(spec), out, fmt, overwrite=overwrite, inputs=inputs, local_times=local_times)
     print_written(paths["written"])
     console.print(f"wrote {paths['image']}, {paths['fill']}, {paths['truth']}", markup=False)
 

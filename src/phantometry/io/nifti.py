@@ -574,14 +574,15 @@ def load_nifti(
 
 
 # ---------------------------------------------------------------------------- writing
-def _sidecar_dict(volume: Volume) -> dict[str, Any]:
+def _sidecar_dict(volume: Volume, local_times: bool = False) -> dict[str, Any]:
     meta: dict[str, Any] = {"Modality": "PT", "Units": "Bq/mL"}
     if volume.nuclide:
         meta["TracerRadionuclide"] = volume.nuclide
     if volume.acquired_at is not None:
         meta["TimeZero"] = volume.acquired_at.strftime("%H:%M:%S")
         meta["ScanStart"] = 0
-        meta["AcquisitionDateTime"] = volume.acquired_at.isoformat()
+        moment = volume.acquired_at.replace(tzinfo=None) if local_times else volume.acquired_at
+        meta["AcquisitionDateTime"] = moment.isoformat()
     if volume.decay_correction in ("START", "ADMIN", "NONE"):
         # a Volume's values show the activity of acquired_at (a NONE series' frame averages
         # were referred to it when loaded), so they are written as decay corrected to it
@@ -610,7 +611,7 @@ def _sidecar_dict(volume: Volume) -> dict[str, Any]:
     return meta
 
 
-def write_nifti(volume: Volume, path: str | os.PathLike, *, sidecar: bool = True) -> Path:
+def write_nifti(volume: Volume, path: str | os.PathLike, *, sidecar: bool = True, local_times: bool = False) -> Path:
     """Write a volume as NIfTI-1 (float32, Bq/mL) and, by default, a BIDS-PET JSON sidecar.
 
     Parameters
@@ -620,6 +621,8 @@ def write_nifti(volume: Volume, path: str | os.PathLike, *, sidecar: bool = True
         Output file; ``.nii.gz`` is appended unless the name ends in ``.nii`` or ``.nii.gz``.
     sidecar : bool
         Also write the ``.json`` sidecar (keys in the module docstring).
+    local_times : bool
+        Write ``AcquisitionDateTime`` as the local wall clock without a UTC offset.
 
     Returns
     -------
@@ -644,5 +647,5 @@ def write_nifti(volume: Volume, path: str | os.PathLike, *, sidecar: bool = True
     p.parent.mkdir(parents=True, exist_ok=True)
     nib.save(img, str(p))
     if sidecar:
-        sidecar_path(p).write_text(json.dumps(_sidecar_dict(volume), indent=2) + "\n", encoding="utf-8")
+        sidecar_path(p).write_text(json.dumps(_sidecar_dict(volume, local_times), indent=2) + "\n", encoding="utf-8")
     return p
