@@ -107,7 +107,10 @@ def settle_site_time(volume: Volume, fill: FillRecord, timezone: str | None, whe
     if volume.time_basis == BASIS_FILL_OFFSET and clock is not None and clock.note:
         warns.append(f"time basis inferred: {clock.note}")
     if volume.time_basis == BASIS_HEADER and clock is not None and not clock.inferred and volume.acquired_at is not None:
-        local = volume.acquired_at.astimezone(clock.zone)
+        try:
+            local = volume.acquired_at.astimezone(clock.zone)
+        except OverflowError:  # a time at the calendar's end: the fill checks below refuse it
+            local = volume.acquired_at
         if local.utcoffset() != volume.acquired_at.utcoffset():
             warns.append(
                 f"the image's TimezoneOffsetFromUTC ({offset_text(volume.acquired_at)}) differs from the given zone "

@@ -128,7 +128,7 @@ def site_clock(fill: "FillRecord", timezone_name: str | None = None) -> SiteCloc
         return SiteClock(zone_from_name(fill.timezone, f"{fill.source}: timezone"), BASIS_GIVEN_ZONE,
                          f"{fill.timezone} (fill record timezone)")
     times = fill.times()
-    key, latest = max(times, key=lambda kt: kt[1].astimezone(timezone.utc).replace(tzinfo=None))
+    key, latest = max(times, key=lambda kt: seconds_between(times[0][1], kt[1]))  # no conversion: no calendar overflow
     offsets = sorted({offset_text(t) for _, t in times})
     zone = timezone(latest.utcoffset() or timedelta(0))
     note = f"the scanner's times carry no UTC offset; read in the fill record's offset {offset_text(latest)} ({key})"
