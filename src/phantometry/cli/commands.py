@@ -57,6 +57,12 @@ def print_summary_table(analysis: Analysis) -> None:
     console.print(t)
     for line in st.lines:
         console.print(line, markup=False)
+    basis = analysis.volume.time_basis
+    if basis:
+        console.print(f"times: {basis}" + (f", {analysis.volume.time_zone}" if analysis.volume.time_zone else ""), markup=False)
+    for c in getattr(analysis, "protocol_checks", []):
+        if c.status == "warning":
+            console.print("[bold]PROTOCOL[/bold]: " + escape(c.message))
     for w in analysis.warnings:
         console.print("[bold]WARNING[/bold]: " + escape(w))
 
@@ -85,6 +91,9 @@ def measure_cmd(
     replace: bool = typer.Option(False, "--replace", help="With --record: replace an analysis of the same series + template + settings."),
     bands: Optional[List[str]] = typer.Option(None, "--bands", help="Acceptance band set (name or YAML file; phantometry bands list); repeatable."),
     strict: bool = typer.Option(False, "--strict", help="Exit code 3 when any banded value fails (results are still written)."),
+    timezone: Optional[str] = typer.Option(
+        None, "--timezone", help="Site time zone (IANA name, e.g. Europe/Berlin) of scanner times written without a UTC offset "
+        "(default: the fill record's timezone:, else its own offset)."),
 ) -> None:
     """Measure a phantom scan: recovery coefficients, contrast, background variability, insert residual.
 
@@ -119,6 +128,7 @@ def measure_cmd(
         bands=list(bands or []),
         overwrite=overwrite,
         record=request,
+        timezone=timezone,
     )
     print_summary_table(analysis)
     _print_resolution_and_verdicts(analysis, bool(bands))
@@ -220,6 +230,7 @@ def synth_cmd(
     axial_slope: float = typer.Option(0.0, "--axial-slope", help="Imperfection: axial gain slope, % per 100 mm along the slice axis."),
     slice_artefact: Optional[str] = typer.Option(None, "--slice-artefact", help="Imperfection: Z_MM,GAIN_PCT: the image slice nearest Z_MM from the phantom centre scaled by 1 + GAIN_PCT/100."),
     radial: float = typer.Option(0.0, "--radial", help="Imperfection: radial gain at the wall relative to the axis, % (positive: cupping, negative: capping)."),
+    local_times: bool = typer.Option(False, "--local-times", help="Write the scanner's times as local wall clock without a UTC offset, as most scanners do."),
 ) -> None:
     """Synthesise a phantom scan with known truth (image, fill.yaml, truth.json)."""
     from ..outputs import KIND_SCAN, check_output_folder, existing_inputs
@@ -264,7 +275,7 @@ def synth_cmd(
         slice_artefact=vec(slice_artefact, 2, "--slice-artefact") if slice_artefact else None,
         radial_gain_pct=radial,
     )
-    paths = write_synthetic(synthesize(spec), out, fmt, overwrite=overwrite, inputs=inputs)
+    paths = write_synthetic(synthesize(spec), out, fmt, overwrite=overwrite, inputs=inputs, local_times=local_times)
     print_written(paths["written"])
     console.print(f"wrote {paths['image']}, {paths['fill']}, {paths['truth']}", markup=False)
 

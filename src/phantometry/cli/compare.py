@@ -67,6 +67,7 @@ def compare_cmd(
     workers: Optional[int] = typer.Option(None, "--workers", "-j", help="Worker processes (default: one per CPU)."),
     report: bool = typer.Option(False, "--report", help="Also write report.html (self-contained)."),
     templates_dir: Optional[List[Path]] = typer.Option(None, "--templates", help="Extra folder of templates."),
+    timezone: Optional[str] = typer.Option(None, "--timezone", help="Site time zone (IANA name, e.g. Europe/Berlin) of scanner times written without a UTC offset; one for all series."),
 ) -> None:
     """Compare reconstruction settings: measure every PET series with one fill record and rank them.
 
@@ -104,6 +105,7 @@ def compare_cmd(
             templates_dirs=[str(d) for d in templates_dir or []],
             progress=progress,
             overwrite=overwrite,
+            timezone=timezone,
         )
     print_ranking(result, report)
     print_written(result.written)

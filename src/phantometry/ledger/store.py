@@ -76,8 +76,9 @@ LEDGER_CSV_COLUMNS = [
     "reconstruction",
     "tool_version",
     "settings_hash",
-    # then the measurement columns of measurements.csv, from roi on, in the same order
-    *CSV_COLUMNS[CSV_COLUMNS.index("roi") :],
+    # then the measurement columns of measurements.csv from roi to note, in the same order
+    # (later measurements.csv columns, such as uncertainty_fill, are not stored in the ledger)
+    *CSV_COLUMNS[CSV_COLUMNS.index("roi") : CSV_COLUMNS.index("note") + 1],
     "baselines",
 ]
 #: Columns an import accepts missing (appended after the first exports were written).
