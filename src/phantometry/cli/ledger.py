@@ -147,7 +147,7 @@ def add_cmd(
     Every folder is tried: each one refused (duplicate, unreadable) is reported on its own
     error line, the others are recorded, and the exit code is 2 if any was refused.
     """
-    from ..ledger.store import read_result_document
+    from ..ledger.inputs import read_result_document
 
     refused = 0
 
@@ -222,6 +222,7 @@ def trend_cmd(
     db: Optional[str] = _db_option(),
 ) -> None:
     """Trend one metric of one ROI for one scanner and protocol: table, control limits, drift flags, chart."""
+    from ..ledger.chart import save_trend_chart
     from ..ledger.outfiles import check_output_file
 
     if chart is not None:
@@ -256,7 +257,7 @@ def trend_cmd(
         console.print(f"note: {note}", markup=False)
     console.print(f"{len(tr.flags)} drift flag(s)" if tr.flags else "no drift flags", markup=False)
     if chart is not None:
-        console.print(f"wrote {tr.chart(chart, overwrite=overwrite)}", markup=False)
+        console.print(f"wrote {save_trend_chart(tr, chart, overwrite=overwrite)}", markup=False)
 
 
 @ledger_app.command("baseline")
@@ -349,7 +350,7 @@ def import_cmd(
     db: Optional[str] = _db_option(),
 ) -> None:
     """Import a ledger CSV (analyses already present are skipped; baselines are kept)."""
-    from ..ledger.store import read_ledger_csv
+    from ..ledger.csvio import read_ledger_csv
 
     parsed = read_ledger_csv(path)  # a bad file is refused before any store is opened or created
     with _open(db, create=True) as ledger:
