@@ -6,7 +6,6 @@ import json
 import os
 import shutil
 import tempfile
-from datetime import datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, List, Optional
 
@@ -17,24 +16,13 @@ from rich.table import Table
 
 from ..errors import InputError
 from ..results import CAUTION
+from ..timeutil import parse_aware_time
 from . import app, templates_app
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..phantoms.base import Analysis
 
 console = Console(highlight=False)
-
-
-def _parse_time(text: Optional[str]) -> Optional[datetime]:
-    if text is None:
-        return None
-    try:
-        t = datetime.fromisoformat(text)
-    except ValueError:
-        raise InputError(f"--acquired-at {text!r}: expected ISO 8601 with a time zone, e.g. 2026-11-03T10:30:00+01:00") from None
-    if t.tzinfo is None:
-        raise InputError(f"--acquired-at {text!r}: give a time-zone offset, e.g. +01:00")
-    return t
 
 
 def _fmt(v, nd=2) -> str:
@@ -119,7 +107,7 @@ def measure_cmd(
         series=series,
         centres=centre,
         units=units,
-        acquired_at=_parse_time(acquired_at),
+        acquired_at=None if acquired_at is None else parse_aware_time(acquired_at, "--acquired-at"),
         nuclide=nuclide,
         calibration_factor=calibration,
         templates_dirs=[str(d) for d in templates_dir or []],
