@@ -169,7 +169,7 @@ def test_ledger_commands_end_to_end(capsys, tmp_path):
     for args, needle in (
         (["ledger", "trend", "sphere_10mm", "rc_max", "--scanner", "nope"], "no scanner 'nope'"),
         (["ledger", "trend", "sphere_10mm", "nope"], "no sphere_10mm nope values"),
-        (["ledger", "list", "--since", "2025-01-01T00:00:00"], "give a time-zone offset"),
+        (["ledger", "list", "--since", "2025-01-01T00:00:00"], "has no time-zone offset"),
         (["ledger", "baseline", "--ids", "1,x"], "comma-separated analysis ids"),
         (["ledger", "import", tmp_path / "missing.csv"], "missing.csv: no such file"),
         (["ledger", "remove", "999"], "no analysis #999"),

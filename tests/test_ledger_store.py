@@ -34,6 +34,7 @@ from sqlalchemy.engine import make_url
 
 from phantometry.errors import FillRecordError, InputError, LedgerError
 from phantometry.ledger import LEDGER_CSV_COLUMNS, Ledger, settings_hash
+from phantometry.ledger.chart import save_trend_chart
 from phantometry.ledger.rules import RULE_8_ONE_SIDE, RULE_BEYOND_3SIGMA
 from phantometry.ledger.schema import (
     HEAD_REVISION,
@@ -223,7 +224,7 @@ def test_bad_records_refused_with_one_line(ledger):
     doc = make_doc(0)
     naive = json.loads(json.dumps(doc))
     naive["series"]["acquired_at"] = "2025-01-06T09:30:00"
-    with pytest.raises(LedgerError, match="no time zone"):
+    with pytest.raises(LedgerError, match="has no time-zone offset"):
         ledger.record_document(naive, where="scan/measurements.json")
     twice = json.loads(json.dumps(doc))
     twice["measurements"].append(dict(twice["measurements"][0]))
@@ -301,7 +302,7 @@ def test_trend_with_baseline_limits_and_flags(ledger, tmp_path):
     assert tr.limits.source == f"baseline #{bl.id}" and tr.limits.n == 8
     assert [(f.analysis_id, f.rule) for f in tr.flags] == [(ids[9], RULE_BEYOND_3SIGMA)]
     assert tr.points[0].band_low == 0.2 and tr.points[0].band_high == 1.2 and tr.unit == "1"
-    png = tr.chart(tmp_path / "trend.png")
+    png = save_trend_chart(tr, tmp_path / "trend.png")
     assert png.read_bytes()[:4] == b"\x89PNG"
     # date-range views
     assert len(ledger.trend("PET-CT 1", "EARL1", "sphere_10mm", "rc_max", since=T0 + timedelta(days=30 * 8)).points) == 3
@@ -762,7 +763,7 @@ def _store_content(led: Ledger) -> list:
 
 def test_export_cells_are_spreadsheet_safe_and_import_restores_them_exactly(store_url, tmp_path):
     from phantometry.ledger.csvcells import TRIGGERS
-    from phantometry.ledger.store import TEXT_CSV_COLUMNS
+    from phantometry.ledger.csvio import TEXT_CSV_COLUMNS
 
     rng = random.Random(7)
     with Ledger(store_url) as led:

@@ -6,7 +6,6 @@ import json
 import os
 import shutil
 import tempfile
-from datetime import datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, List, Optional
 
@@ -18,6 +17,7 @@ from rich.table import Table
 
 from ..errors import InputError
 from ..results import CAUTION
+from ..timeutil import parse_aware_time
 from . import app, templates_app
 from .numbers import MISSING, limits_range, number, span
 from .progress import QUIET_HELP, step_printer
@@ -28,18 +28,6 @@ if TYPE_CHECKING:  # pragma: no cover
 console = Console(highlight=False)
 
 TEMPLATES_HELP = "Extra folder of templates (searched before the built-in ones); repeatable."
-
-
-def _parse_time(text: Optional[str]) -> Optional[datetime]:
-    if text is None:
-        return None
-    try:
-        t = datetime.fromisoformat(text)
-    except ValueError:
-        raise InputError(f"--acquired-at {text!r}: expected ISO 8601 with a time zone, e.g. 2026-11-03T10:30:00+01:00") from None
-    if t.tzinfo is None:
-        raise InputError(f"--acquired-at {text!r}: give a time-zone offset, e.g. +01:00")
-    return t
 
 
 def print_summary_table(analysis: Analysis) -> None:
@@ -53,6 +41,12 @@ def print_summary_table(analysis: Analysis) -> None:
     console.print(t)
     for line in st.lines:
         console.print(line, markup=False)
+    basis = analysis.volume.time_basis
+    if basis:
+        console.print(f"times: {basis}" + (f", {analysis.volume.time_zone}" if analysis.volume.time_zone else ""), markup=False)
+    for c in getattr(analysis, "protocol_checks", []):
+        if c.status == "warning":
+            console.print("[bold]PROTOCOL[/bold]: " + escape(c.message))
     for w in analysis.warnings:
         console.print("[bold]WARNING[/bold]: " + escape(strip_warning(w)))
 
@@ -94,6 +88,9 @@ def measure_cmd(
     bands: Optional[List[str]] = typer.Option(None, "--bands", metavar="NAME|FILE", help="Acceptance band set (name or YAML file; phantometry bands list); repeatable."),
     strict: bool = typer.Option(False, "--strict", help="Exit code 3 when any banded value fails (results are still written)."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help=QUIET_HELP),
+    timezone: Optional[str] = typer.Option(
+        None, "--timezone", metavar="ZONE", help="Site time zone (IANA name, e.g. Europe/Berlin) of scanner times written without a UTC offset "
+        "(default: the fill record's timezone:, else its own offset)."),
 ) -> None:
     """Measure a phantom scan: recovery coefficients, contrast, background variability, insert residual.
 
@@ -119,7 +116,7 @@ def measure_cmd(
         series=series,
         centres=centre,
         units=units,
-        acquired_at=_parse_time(acquired_at),
+        acquired_at=None if acquired_at is None else parse_aware_time(acquired_at, "--acquired-at"),
         nuclide=nuclide,
         calibration_factor=calibration,
         templates_dirs=[str(d) for d in templates_dir or []],
@@ -129,6 +126,7 @@ def measure_cmd(
         overwrite=overwrite,
         record=request,
         progress=step_printer(quiet),
+        timezone=timezone,
     )
     print_summary_table(analysis)
     _print_resolution_and_verdicts(analysis, bool(bands))
@@ -246,6 +244,7 @@ def synth_cmd(
         None, "--acquired-at", metavar="TIME", help="Scan date and time, ISO 8601 with offset, e.g. 2026-11-03T10:30:00+01:00 (default: the demo scenario's)."
     ),
     templates_dir: Optional[List[Path]] = typer.Option(None, "--templates", metavar="DIR", help=TEMPLATES_HELP),
+    local_times: bool = typer.Option(False, "--local-times", help="Write the scanner's times as local wall clock without a UTC offset, as most scanners do."),
 ) -> None:
     """Synthesise a phantom scan with known truth (image, fill.yaml, truth.json)."""
     from ..outputs import KIND_SCAN, check_output_folder, existing_inputs
@@ -258,7 +257,7 @@ def synth_cmd(
         if not Path(d).is_dir():
             raise InputError(f"--templates {d}: no such folder")
     phantom = synth_template_source(phantom, template_file, phantom_given=phantom != "iec-body")
-    when = _parse_time(acquired_at)
+    when = None if acquired_at is None else parse_aware_time(acquired_at, "--acquired-at")
     inputs = existing_inputs(phantom, dirs)
     check_output_folder(out, KIND_SCAN, inputs=inputs, overwrite=overwrite)  # before synthesising
     defaults = default_scan_settings(phantom, dirs)
@@ -297,7 +296,7 @@ def synth_cmd(
         templates_dirs=dirs,
         **({"acquired_at": when} if when is not None else {}),
     )
-    paths = write_synthetic(synthesize(spec), out, fmt, overwrite=overwrite, inputs=inputs)
+    paths = write_synthetic(synthesize(spec), out, fmt, overwrite=overwrite, inputs=inputs, local_times=local_times)
     print_written(paths["written"])
     console.print(f"wrote {paths['image']}, {paths['fill']}, {paths['truth']}", markup=False)
 

@@ -163,6 +163,7 @@ def compare_cmd(
     report: bool = typer.Option(False, "--report", help="Also write report.html (self-contained)."),
     templates_dir: Optional[List[Path]] = typer.Option(None, "--templates", metavar="DIR", help="Extra folder of templates; repeatable."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar on stderr (it appears only when stderr is a terminal)."),
+    timezone: Optional[str] = typer.Option(None, "--timezone", metavar="ZONE", help="Site time zone (IANA name, e.g. Europe/Berlin) of scanner times written without a UTC offset; one for all series."),
 ) -> None:
     """Compare reconstruction settings: measure every PET series with one fill record; rank them
     against acceptance bands, or without bands list each setting's key numbers by label.
@@ -185,6 +186,7 @@ def compare_cmd(
             templates_dirs=[str(d) for d in templates_dir or []],
             progress=progress,
             overwrite=overwrite,
+            timezone=timezone,
         )
 
     if quiet or not interactive():

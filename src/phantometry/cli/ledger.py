@@ -24,6 +24,7 @@ from rich.table import Table
 
 from ..errors import InputError, LedgerError, PhantometryError
 from ..results import CAUTION
+from ..timeutil import EXAMPLE_TIME, parse_aware_time
 from . import APP_SETTINGS, app
 from .numbers import decimals_for, limits_range, number, span, unit_suffix, with_unit
 
@@ -58,17 +59,17 @@ def parse_cli_time(text: Optional[str], option: str, *, end_of_day: bool = False
     if text is None:
         return None
     text = text.strip()
-    try:
-        if len(text) == 10:
+    if len(text) == 10:
+        try:
             d = datetime.fromisoformat(text).date()
-            t = datetime.combine(d, time(0, 0), tzinfo=timezone.utc)
-            return t + timedelta(days=1) - timedelta(microseconds=1) if end_of_day else t
-        t = datetime.fromisoformat(text)
-    except ValueError:
-        raise InputError(f"{option} {text!r}: expected a date 2026-11-03 or a time 2026-11-03T10:30:00+01:00") from None
-    if t.tzinfo is None:
-        raise InputError(f"{option} {text!r}: give a time-zone offset, e.g. +01:00 (or just a date, read as UTC)")
-    return t
+        except ValueError:
+            raise InputError(f"{option} {text!r}: expected a date 2026-11-03 or a time {EXAMPLE_TIME}") from None
+        t = datetime.combine(d, time(0, 0), tzinfo=timezone.utc)
+        return t + timedelta(days=1) - timedelta(microseconds=1) if end_of_day else t
+    try:
+        return parse_aware_time(text, option)
+    except InputError as exc:
+        raise InputError(f"{exc} (or just a date such as 2026-11-03, read as UTC)") from None
 
 
 def quiet_driver_logs() -> None:
@@ -142,7 +143,7 @@ def add_cmd(
     Every folder is tried: each one refused (duplicate, unreadable) is reported on its own
     error line, the others are recorded, and the exit code is 2 if any was refused.
     """
-    from ..ledger.store import read_result_document
+    from ..ledger.inputs import read_result_document
 
     refused = 0
 
@@ -217,6 +218,7 @@ def trend_cmd(
     db: Optional[str] = _db_option(),
 ) -> None:
     """Trend one metric of one ROI for one scanner and protocol: table, control limits, drift flags, chart."""
+    from ..ledger.chart import save_trend_chart
     from ..ledger.outfiles import check_output_file
 
     if chart is not None:
@@ -253,7 +255,7 @@ def trend_cmd(
         console.print(f"note: {note}", markup=False)
     console.print(f"{len(tr.flags)} drift flag(s)" if tr.flags else "no drift flags", markup=False)
     if chart is not None:
-        console.print(f"wrote {tr.chart(chart, overwrite=overwrite)}", markup=False)
+        console.print(f"wrote {save_trend_chart(tr, chart, overwrite=overwrite)}", markup=False)
 
 
 @ledger_app.command("baseline")
@@ -389,7 +391,7 @@ def import_cmd(
     db: Optional[str] = _db_option(),
 ) -> None:
     """Import a ledger CSV (analyses already present are skipped; baselines are kept)."""
-    from ..ledger.store import read_ledger_csv
+    from ..ledger.csvio import read_ledger_csv
 
     parsed = read_ledger_csv(path)  # a bad file is refused before any store is opened or created
     with _open(db, create=True) as ledger:

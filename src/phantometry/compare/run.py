@@ -65,6 +65,7 @@ def compare(
     overlays: bool = True,
     measure_options: dict[str, Any] | None = None,
     overwrite: bool = False,
+    timezone: str | None = None,
 ) -> ComparisonResult:
     """Measure every PET series in ``inputs`` with one fill record and rank the settings.
 
@@ -102,6 +103,9 @@ def compare(
         series (e.g. ``{"resolution": False}``).
     overwrite : bool
         Replace ``out`` when it holds earlier phantometry results (``--overwrite``).
+    timezone : str, optional
+        The site's IANA zone (``--timezone``), one for all series: scanner times written
+        without a UTC offset are read in it (:mod:`phantometry.sitetime`).
 
     Returns
     -------
@@ -127,6 +131,11 @@ def compare(
     dirs = [str(d) for d in (templates_dirs or [])]
     input_paths = existing_inputs(inputs, fill, template, list(bands), labels, dirs)
     check_output_folder(out, KIND_COMPARE, inputs=input_paths, overwrite=overwrite)
+    if timezone is not None:
+        from ..timeutil import zone_from_name
+
+        zone_from_name(timezone)  # refused here, before any series is measured
+        measure_options = {**(measure_options or {}), "timezone": timezone}
     tpl = load_template(template, dirs)
     fill_record = load_fill_record(fill)
     band_sets = _load_bands(list(bands), tpl)  # refuse bad band sets before any work

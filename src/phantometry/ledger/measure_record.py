@@ -21,8 +21,10 @@ from pathlib import Path
 from typing import Any, Sequence
 
 from ..errors import PhantometryError
+from .labels import clean_label
 from .schema import NoLedgerStore, analyses, check_text, display_url, resolve_url, scanners, sites
-from .store import Ledger, RecordResult, _label
+from .store import Ledger
+from .types import RecordResult
 
 
 @dataclass
@@ -54,7 +56,7 @@ class RecordRequest:
         for value, what, table, column in ((self.site, "site", sites, "name"), (self.scanner, "scanner", scanners, "name"),
                                            (self.protocol, "protocol", analyses, "protocol")):
             if value is not None:
-                check_text(table, {column: _label(value, what, where)}, f"{where}: --{what}")
+                check_text(table, {column: clean_label(value, what, where)}, f"{where}: --{what}")
 
     def _check(self, *, series_uid: str | None, acquired_at: datetime | None, template: str, fill: Any, where: str) -> None:
         if self.replace:

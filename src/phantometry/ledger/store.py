@@ -1,4 +1,4 @@
-"""The trend ledger: record analyses, query them, trend one metric, baselines, drift checks, CSV.
+"""The trend ledger's database access: :class:`Ledger` records analyses, queries them, trends one metric, keeps baselines, exports and imports CSV.
 
 :class:`Ledger` is the library API; the ``phantometry ledger`` commands and
 ``phantometry measure --record`` are thin wiring over it. Every write is one transaction: an
@@ -9,36 +9,43 @@ Privacy by construction: only named, non-identifying fields are taken from a ser
 and serial). Patient name, ID, birth date and accession number are never read, stored or
 exported; neither is the source file path nor the series description (free text).
 
-Text is limited the same way on every backend (:func:`phantometry.ledger.schema.check_text`,
-checked before any SQL runs), and the CSV export writes spreadsheet-safe text cells that the
-import reads back exactly (:mod:`phantometry.ledger.csvcells`).
+What is not database access lives beside it: the result types (:mod:`.types`), the checks of
+what goes in (:mod:`.inputs`: times, rows, verdicts, fill records, text limits, checked before
+any SQL runs), labels and the identity of an analysis (:mod:`.labels`), the trend statistics
+(:mod:`.trends`, over the drift rules of :mod:`.rules`) and the CSV format (:mod:`.csvio`,
+with spreadsheet-safe cells that the import reads back exactly).
 """
 
 from __future__ import annotations
 
-import csv
-import hashlib
-import json
 import math
 import os
 import random
 import time
 import uuid
 from collections import OrderedDict, defaultdict
-from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any, Callable, Iterable, Mapping, Sequence, TypeVar
+from typing import Any, Callable, Mapping, Sequence, TypeVar
 
 import sqlalchemy as sa
 from sqlalchemy.engine import Connection
 from sqlalchemy.exc import DBAPIError, IntegrityError, OperationalError
 
 from ..errors import InputError, LedgerError
-from ..results import CSV_COLUMNS, Measurement
-from .csvcells import format_row, neutralise, restore
+from ..results import Measurement
+from .csvio import LedgerCsv, LedgerCsvWriter, baselines_cell, read_ledger_csv
+from .inputs import (
+    VERDICT_ORDER,
+    analysis_verdict,
+    aware_utc,
+    check_analysis_text,
+    measurement_row,
+    read_result_document,
+    validated_fill,
+)
+from .labels import clean_label, default_protocol_label, default_scanner_label, default_site_label, record_key, settings_hash
 from .outfiles import check_output_file, write_text_atomically
-from .rules import ControlLimits, control_limits, drift_flags
 from .schema import (
     analyses,
     baseline_members,
@@ -55,362 +62,34 @@ from .schema import (
     transient,
     writing,
 )
-
-T = TypeVar("T")
-
-#: Columns of ``ledger export`` / ``ledger import`` CSV files, in order. A stable contract:
-#: columns are only ever appended. One row per measurement (long format); times are ISO 8601
-#: in UTC; numbers are written with full precision (Python ``repr``), empty when missing; text
-#: cells are spreadsheet-safe (:func:`phantometry.ledger.csvcells.neutralise`). ``baselines``
-#: (the newest column) lists the baselines the analysis belongs to as compact JSON,
-#: ``[{"created_at": ISO time, "note": text or null}, ...]`` oldest first, empty for none.
-LEDGER_CSV_COLUMNS = [
-    "analysis_uid",
-    "recorded_at",
-    "site",
-    "scanner",
-    "protocol",
-    "series_uid",
-    "template",
-    "acquired_at",
-    "reconstruction",
-    "tool_version",
-    "settings_hash",
-    # then the measurement columns of measurements.csv, from roi on, in the same order
-    *CSV_COLUMNS[CSV_COLUMNS.index("roi") :],
-    "baselines",
-]
-#: Columns an import accepts missing (appended after the first exports were written).
-OPTIONAL_CSV_COLUMNS = ("baselines",)
-_FLOAT_COLUMNS = ("value", "uncertainty", "band_low", "band_high")
-_TIME_COLUMNS = ("recorded_at", "acquired_at")
-#: Columns whose cells are text (neutralised on export, restored on import).
-TEXT_CSV_COLUMNS = tuple(c for c in LEDGER_CSV_COLUMNS if c not in _FLOAT_COLUMNS + _TIME_COLUMNS)
-_ANALYSIS_COLUMNS = (
-    "recorded_at", "site", "scanner", "protocol", "series_uid", "template", "acquired_at",
-    "reconstruction", "tool_version", "settings_hash",
+from .trends import UNTRENDED_UNITS, trend_flags, trend_limits
+from .types import (
+    AnalysisInfo,
+    BaselineInfo,
+    CheckResult,
+    ExportReport,
+    ImportReport,
+    RecordResult,
+    ScannerInfo,
+    Trend,
+    TrendPoint,
 )
 
-#: Units whose metrics ``check`` skips unless asked: positions (mm) and absolute
-#: concentrations (Bq/mL) follow the day's set-up and filling, not the scanner's performance.
-UNTRENDED_UNITS = ("mm", "Bq/mL")
-
-#: Verdict order, worst first, for the analysis-level verdict.
-VERDICT_ORDER = ("fail", "pass", "n/a")
+T = TypeVar("T")
 
 _RETRIES = 12
 
 
-# ----------------------------------------------------------------------------- results
-@dataclass(frozen=True)
-class RecordResult:
-    """What :meth:`Ledger.record` stored."""
-
-    analysis_id: int
-    uid: str
-    site: str
-    scanner: str
-    protocol: str
-    n_measurements: int
-    replaced: bool
-
-
-@dataclass(frozen=True)
-class AnalysisInfo:
-    """One recorded analysis (without its measurements). Times are aware UTC datetimes."""
-
-    id: int
-    uid: str
-    site: str
-    scanner: str
-    protocol: str
-    series_uid: str | None
-    template: str
-    acquired_at: datetime
-    recorded_at: datetime
-    reconstruction: str | None
-    nuclide: str | None
-    tool_version: str
-    verdict: str | None
-    settings_hash: str
-
-
-@dataclass(frozen=True)
-class BaselineInfo:
-    """The analyses of one scanner and protocol that control limits come from."""
-
-    id: int
-    site: str
-    scanner: str
-    protocol: str
-    created_at: datetime
-    note: str | None
-    analysis_ids: tuple[int, ...]
-    first_acquired_at: datetime | None
-    last_acquired_at: datetime | None
-
-
-@dataclass(frozen=True)
-class TrendPoint:
-    """One analysis's value of the trended metric."""
-
-    analysis_id: int
-    analysis_uid: str
-    acquired_at: datetime
-    value: float | None
-    unit: str
-    uncertainty: float | None
-    band_low: float | None
-    band_high: float | None
-    verdict: str | None
-    in_baseline: bool
-
-
-@dataclass(frozen=True)
-class TrendFlag:
-    """A drift rule that fired at one point of a trend."""
-
-    analysis_id: int
-    acquired_at: datetime
-    value: float
-    rule: str
-    description: str
-    first_acquired_at: datetime
-
-
-@dataclass
-class Trend:
-    """One metric of one ROI for one scanner and protocol over time.
-
-    Attributes
-    ----------
-    points : list of TrendPoint
-        In acquisition order.
-    limits : ControlLimits or None
-        From the current baseline, else from all points shown (``limits.source`` says which);
-        None when fewer than two values are available.
-    flags : list of TrendFlag
-        Drift rules that fired (see :mod:`phantometry.ledger.rules`).
-    notes : list of str
-        Remarks for the reader (no baseline set, few baseline points, ...).
-    """
-
-    site: str
-    scanner: str
-    protocol: str
-    roi: str
-    metric: str
-    unit: str
-    points: list[TrendPoint]
-    limits: ControlLimits | None
-    flags: list[TrendFlag]
-    notes: list[str] = field(default_factory=list)
-
-    def flags_at(self, analysis_id: int) -> list[TrendFlag]:
-        """The flags sitting on one analysis."""
-        return [f for f in self.flags if f.analysis_id == analysis_id]
-
-    def chart(self, path: str | os.PathLike, *, overwrite: bool = False) -> Path:
-        """Write the control chart PNG (see :func:`phantometry.ledger.chart.save_trend_chart`).
-
-        An existing file is replaced only with ``overwrite`` (else :class:`InputError`).
-        """
-        from .chart import save_trend_chart
-
-        return save_trend_chart(self, path, overwrite=overwrite)
-
-
-@dataclass(frozen=True)
-class CheckResult:
-    """Drift flags of one metric series found by :meth:`Ledger.check`."""
-
-    site: str
-    scanner: str
-    protocol: str
-    roi: str
-    metric: str
-    unit: str
-    n_points: int
-    limits: ControlLimits | None
-    flags: list[TrendFlag]
-
-
-@dataclass(frozen=True)
-class ExportReport:
-    """What :meth:`Ledger.export_csv` wrote. ``started_at`` is a safe next ``since``."""
-
-    path: Path
-    rows: int
-    analyses: int
-    started_at: datetime
-
-
-@dataclass(frozen=True)
-class ImportReport:
-    """What :meth:`Ledger.import_csv` did, counted in analyses (and baselines created)."""
-
-    added: int
-    replaced: int
-    skipped: int
-    rows: int
-    baselines: int = 0
-
-
-@dataclass(frozen=True)
-class ScannerInfo:
-    """A scanner known to the ledger, with its protocols and number of analyses each."""
-
-    id: int
-    site: str
-    name: str
-    manufacturer: str | None
-    model: str | None
-    serial: str | None
-    protocols: dict[str, int]
-
-
-# ----------------------------------------------------------------------------- helpers
 def _utc_now() -> datetime:
     return datetime.now(timezone.utc)
 
 
-def _aware(value: Any, what: str, where: str) -> datetime:
-    if isinstance(value, str):
-        try:
-            value = datetime.fromisoformat(value.strip())
-        except ValueError:
-            raise LedgerError(f"{where}: {what} {value!r} is not an ISO 8601 time; expected e.g. 2026-11-03T10:30:00+01:00") from None
-    if not isinstance(value, datetime):
-        raise LedgerError(f"{where}: {what} is missing; the ledger needs a timezone-aware time")
-    if value.tzinfo is None or value.utcoffset() is None:
-        raise LedgerError(f"{where}: {what} {value.isoformat()} has no time zone; give an offset such as +01:00")
-    return value.astimezone(timezone.utc)
-
-
-def _label(value: Any, what: str, where: str) -> str:
-    """A label with its white space collapsed; refused when empty (its length: check_text)."""
-    text = " ".join(str(value).split()) if value is not None else ""
-    if not text:
-        raise LedgerError(f"{where}: the {what} label is empty; give --{what} NAME")
-    return text
-
-
-def _check_analysis_text(site: str, scanner: str, make: Mapping[str, Any] | None, analysis: Mapping[str, Any],
-                         rows: Sequence[Mapping[str, Any]], where: str) -> None:
-    """Every text of one analysis within the ledger's limits (before any SQL runs)."""
-    check_text(sites, {"name": site}, where)
-    make = make or {}
-    check_text(scanners, {"name": scanner, **{k: make.get(k) for k in ("manufacturer", "model", "serial")}}, where)
-    check_text(analyses, dict(analysis), where)
-    for r in rows:
-        check_text(measurements, dict(r), f"{where}: {str(r.get('roi'))[:40]} {str(r.get('metric'))[:40]}")
-
-
-def _canonical_json(obj: Any) -> str:
-    return json.dumps(obj, sort_keys=True, separators=(",", ":"), default=str, allow_nan=False)
-
-
-def settings_hash(fill_record: Mapping[str, Any] | None, settings: Mapping[str, Any] | None = None) -> str:
-    """SHA-256 (hex) of the settings that make two analyses of one series differ.
-
-    The settings are the fill record and any extra ``settings`` mapping (canonical JSON with
-    sorted keys), so re-measuring a series with another fill record is a new analysis,
-    while recording the same measurement twice is a duplicate.
-    """
-    return hashlib.sha256(_canonical_json({"fill_record": fill_record or None, "settings": settings or None}).encode()).hexdigest()
-
-
-def _record_key(series_uid: str | None, acquired_at: datetime, template: str, settings_hash_hex: str) -> str:
-    identity = f"series:{series_uid}" if series_uid else f"acquired:{acquired_at.astimezone(timezone.utc).isoformat()}"
-    return hashlib.sha256(f"{identity}\x1f{template}\x1f{settings_hash_hex}".encode()).hexdigest()
-
-
-def analysis_verdict(verdicts: Iterable[str | None]) -> str | None:
-    """The worst of measurement verdicts: ``fail`` over ``pass`` over ``n/a``; None if none."""
-    present = {v for v in verdicts if v}
-    for v in VERDICT_ORDER:
-        if v in present:
-            return v
-    return None
-
-
-def _finite_or_none(v: Any) -> float | None:
-    if v is None or v == "":
-        return None
-    f = float(v)
-    return f if math.isfinite(f) else None
-
-
-def _row_dict(row: Measurement | Mapping[str, Any], where: str) -> dict[str, Any]:
-    d = row.as_dict() if isinstance(row, Measurement) else dict(row)
-    for key in ("roi", "metric", "unit"):
-        if not d.get(key):
-            raise LedgerError(f"{where}: a measurement row has no {key}; every row needs roi, metric, unit")
-    verdict = d.get("verdict") or None
-    if verdict is not None and verdict not in VERDICT_ORDER:
-        raise LedgerError(f"{where}: measurement {d.get('roi')} {d.get('metric')} has verdict {str(verdict)[:40]!r}; "
-                          f"expected {', '.join(VERDICT_ORDER)} or none")
-    try:
-        return {
-            "roi": str(d["roi"]),
-            "metric": str(d["metric"]),
-            "value": _finite_or_none(d.get("value")),
-            "unit": str(d["unit"]),
-            "uncertainty": _finite_or_none(d.get("uncertainty")),
-            "band": d.get("band") or None,
-            "band_low": _finite_or_none(d.get("band_low")),
-            "band_high": _finite_or_none(d.get("band_high")),
-            "verdict": d.get("verdict") or None,
-            "note": d.get("note") or None,
-        }
-    except (TypeError, ValueError):
-        raise LedgerError(f"{where}: measurement {d.get('roi')} {d.get('metric')} has a non-numeric value; fix the input") from None
-
-
-def default_scanner_label(series: Mapping[str, Any]) -> str:
-    """Scanner label from the headers: station name, else make, model and serial."""
-    sc = series.get("scanner") or {}
-    if sc.get("station"):
-        return str(sc["station"])
-    parts = [sc.get(k) for k in ("manufacturer", "model", "serial") if sc.get(k)]
-    return " ".join(str(p) for p in parts) if parts else "unknown scanner"
-
-
-def default_protocol_label(series: Mapping[str, Any]) -> str:
-    """Protocol label from the reconstruction: method, iterations x subsets, filter, voxel size.
-
-    The matrix is left out (its slice count follows the axial coverage, not the protocol).
-    """
-    rec = series.get("reconstruction") or {}
-    parts: list[str] = []
-    method = rec.get("method")
-    if method:
-        parts.append(str(method))
-    it, sub = rec.get("iterations"), rec.get("subsets")
-    if it or sub:
-        text = f"{it or '?'}i{sub or '?'}s"
-        if not method or text not in str(method):
-            parts.append(text)
-    if rec.get("filter"):
-        parts.append(str(rec["filter"]))
-    vox = rec.get("voxel_size_mm")
-    if vox and any(vox):
-        parts.append("x".join(f"{float(v):.3g}" for v in vox) + " mm")
-    return ", ".join(parts) if parts else "unspecified protocol"
-
-
-def default_site_label(fill_record: Mapping[str, Any] | None) -> str:
-    """Site label from the fill record's ``site``, else ``unspecified site``."""
-    site = (fill_record or {}).get("site")
-    return str(site) if site else "unspecified site"
-
-
 def _one_line(exc: BaseException) -> str:
+    """A database error's own message on one line (at most 300 characters)."""
     orig = getattr(exc, "orig", None) or exc
     return " ".join(str(orig).split())[:300]
 
 
-# ------------------------------------------------------------------------------ ledger
 class Ledger:
     """A trend ledger in a SQL database (SQLite by default, PostgreSQL for a shared lab store).
 
@@ -627,7 +306,7 @@ class Ledger:
         """
         if not rows:
             raise LedgerError(f"{where}: no measurement rows to record")
-        row_dicts = [_row_dict(r, where) for r in rows]
+        row_dicts = [measurement_row(r, where) for r in rows]
         seen: set[tuple[str, str]] = set()
         for r in row_dicts:
             key = (r["roi"], r["metric"])
@@ -638,21 +317,21 @@ class Ledger:
         if acquired is None:
             first = rows[0]
             acquired = first.acquired_at if isinstance(first, Measurement) else first.get("acquired_at")
-        acquired_at = _aware(acquired, "acquisition time", where)
+        acquired_at = aware_utc(acquired, "acquisition time", where)
         if not template:
             raise LedgerError(f"{where}: no template name")
         series_uid = series.get("series_uid") or None
-        fill = _validated_fill(fill_record, where)
+        fill = validated_fill(fill_record, where)
         s_hash = settings_hash(fill, settings)
         rec = series.get("reconstruction") or {}
         if tool_version is None:
             from .. import __version__ as tool_version
-        site_label = _label(site if site is not None else default_site_label(fill), "site", where)
-        scanner_label = _label(scanner if scanner is not None else default_scanner_label(series), "scanner", where)
-        protocol_label = _label(protocol if protocol is not None else default_protocol_label(series), "protocol", where)
+        site_label = clean_label(site if site is not None else default_site_label(fill), "site", where)
+        scanner_label = clean_label(scanner if scanner is not None else default_scanner_label(series), "scanner", where)
+        protocol_label = clean_label(protocol if protocol is not None else default_protocol_label(series), "protocol", where)
         analysis = {
             "uid": str(uuid.uuid4()),
-            "record_key": _record_key(series_uid, acquired_at, template, s_hash),
+            "record_key": record_key(series_uid, acquired_at, template, s_hash),
             "series_uid": series_uid,
             "template": str(template),
             "acquired_at": acquired_at,
@@ -665,7 +344,7 @@ class Ledger:
             "tool_version": str(tool_version),
             "verdict": analysis_verdict(r["verdict"] for r in row_dicts),
         }
-        _check_analysis_text(site_label, scanner_label, series.get("scanner"), analysis, row_dicts, where)
+        check_analysis_text(site_label, scanner_label, series.get("scanner"), analysis, row_dicts, where)
 
         def txn(conn: Connection) -> tuple[int, bool]:
             analysis["scanner_id"] = self._scanner_id(conn, site_label, scanner_label, series.get("scanner"))
@@ -686,8 +365,8 @@ class Ledger:
         template name; the settings hash of the validated fill record and ``settings``), so
         a duplicate can be refused before any work (``measure --record``).
         """
-        when = _aware(acquired_at, "acquisition time", where) if (acquired_at is not None or not series_uid) else None
-        key = _record_key(series_uid or None, when, template, settings_hash(_validated_fill(fill_record, where), settings))  # type: ignore[arg-type]
+        when = aware_utc(acquired_at, "acquisition time", where) if (acquired_at is not None or not series_uid) else None
+        key = record_key(series_uid or None, when, template, settings_hash(validated_fill(fill_record, where), settings))  # type: ignore[arg-type]
         found = self._read(lambda c: c.execute(sa.select(analyses.c.id).where(analyses.c.record_key == key)).scalar())
         return None if found is None else int(found)
 
@@ -698,7 +377,7 @@ class Ledger:
         found = self.recorded_id(series_uid=series_uid, acquired_at=acquired_at, template=template, fill_record=fill_record,
                                  settings=settings, where=where)
         if found is not None:
-            shown = series_uid or _aware(acquired_at, "acquisition time", where).isoformat()
+            shown = series_uid or aware_utc(acquired_at, "acquisition time", where).isoformat()
             raise LedgerError(
                 f"{where}: series {shown} with template {template} and the same settings is already recorded "
                 f"(analysis #{found}) in {self.display_url}; use --replace to replace it"
@@ -812,9 +491,9 @@ class Ledger:
         if series_uid is not None:
             q = q.where(analyses.c.series_uid == series_uid)
         if since is not None:
-            q = q.where(analyses.c.acquired_at >= _aware(since, "since", "ledger"))
+            q = q.where(analyses.c.acquired_at >= aware_utc(since, "since", "ledger"))
         if until is not None:
-            q = q.where(analyses.c.acquired_at <= _aware(until, "until", "ledger"))
+            q = q.where(analyses.c.acquired_at <= aware_utc(until, "until", "ledger"))
         if verdict is not None:
             if verdict == "none":
                 q = q.where(analyses.c.verdict.is_(None))
@@ -951,8 +630,8 @@ class Ledger:
         The query walks the (scanner, protocol, acquired_at) index and the (analysis, roi,
         metric) unique index: its cost follows the number of points, not the store size.
         """
-        since_utc = _aware(since, "since", "ledger") if since is not None else None
-        until_utc = _aware(until, "until", "ledger") if until is not None else None
+        since_utc = aware_utc(since, "since", "ledger") if since is not None else None
+        until_utc = aware_utc(until, "until", "ledger") if until is not None else None
 
         def q(conn: Connection):
             scanner_id, site_name, scanner_name, proto = self._resolve(conn, scanner, protocol, site)
@@ -997,25 +676,9 @@ class Ledger:
             TrendPoint(r.id, r.uid, r.acquired_at, r.value, r.unit, r.uncertainty, r.band_low, r.band_high, r.verdict, r.id in members)
             for r in rows
         ]
-        limits, notes = self._limits(points, baseline_id, base_values)
-        flags = _trend_flags(points, limits)
+        limits, notes = trend_limits(points, baseline_id, base_values)
+        flags = trend_flags(points, limits)
         return Trend(site_name, scanner_name, proto, roi, metric, points[0].unit, points, limits, flags, notes)
-
-    @staticmethod
-    def _limits(points: list[TrendPoint], baseline_id: int | None, base_values: list[float | None] | None) -> tuple[ControlLimits | None, list[str]]:
-        notes: list[str] = []
-        if baseline_id is not None:
-            limits = control_limits(base_values or [], source=f"baseline #{baseline_id}")
-            if limits is None:
-                notes.append(f"baseline #{baseline_id} holds fewer than 2 values of this metric: no control limits")
-        else:
-            limits = control_limits([p.value for p in points], source="all points (no baseline set)")
-            notes.append("no baseline set: limits come from all points shown; set one with phantometry ledger baseline")
-        if limits is not None and limits.n < 8:
-            notes.append(f"control limits rest on only {limits.n} values; 8 or more make the rules meaningful")
-        if limits is not None and limits.sigma == 0:
-            notes.append("the baseline values do not vary (sigma = 0): the sigma rules are off")
-        return limits, notes
 
     # ------------------------------------------------------------------ baselines
     def set_baseline(self, scanner: str, protocol: str | None = None, *, analysis_ids: Sequence[int] | None = None,
@@ -1034,8 +697,8 @@ class Ledger:
         """
         if analysis_ids is None and since is None and until is None:
             raise LedgerError("ledger baseline: give analysis ids or a date range (--from/--to)")
-        since_utc = _aware(since, "from", "ledger baseline") if since is not None else None
-        until_utc = _aware(until, "to", "ledger baseline") if until is not None else None
+        since_utc = aware_utc(since, "from", "ledger baseline") if since is not None else None
+        until_utc = aware_utc(until, "to", "ledger baseline") if until is not None else None
         check_text(baselines, {"note": note}, "ledger baseline --note")
 
         def txn(conn: Connection) -> int:
@@ -1105,7 +768,7 @@ class Ledger:
         Metrics in :data:`UNTRENDED_UNITS` are skipped unless ``all_metrics``. Returns the
         series checked, each with its flags (often none).
         """
-        since_utc = _aware(since, "since", "ledger check") if since is not None else None
+        since_utc = aware_utc(since, "since", "ledger check") if since is not None else None
 
         def q(conn: Connection):
             groups = sa.select(analyses.c.scanner_id, analyses.c.protocol, scanners.c.name.label("scanner"), sites.c.name.label("site")).select_from(
@@ -1142,8 +805,8 @@ class Ledger:
                     continue
                 points = [TrendPoint(r.id, r.uid, r.acquired_at, r.value, r.unit, r.uncertainty, r.band_low, r.band_high, r.verdict, r.id in members) for r in rs]
                 base_values = [p.value for p in points if p.in_baseline] if baseline_id is not None else None
-                limits, _notes = self._limits(points, baseline_id, base_values)
-                flags = _trend_flags(points, limits)
+                limits, _notes = trend_limits(points, baseline_id, base_values)
+                flags = trend_flags(points, limits)
                 if since_utc is not None:
                     flags = [f for f in flags if f.acquired_at >= since_utc]
                 results.append(CheckResult(g.site, g.scanner, g.protocol, roi, metric, unit, len(points), limits, flags))
@@ -1151,7 +814,7 @@ class Ledger:
 
     # ------------------------------------------------------------------ CSV
     def export_csv(self, path: str | os.PathLike, *, since: datetime | None = None, overwrite: bool = False) -> ExportReport:
-        """Write measurements as long-format CSV (:data:`LEDGER_CSV_COLUMNS`), atomically.
+        """Write measurements as long-format CSV (:data:`phantometry.ledger.csvio.LEDGER_CSV_COLUMNS`), atomically.
 
         ``since`` (aware) keeps analyses *recorded* at or after that time, for incremental
         exports to a lab database; pass the previous report's ``started_at``. Overlapping
@@ -1167,8 +830,9 @@ class Ledger:
         target = Path(path)
         check_output_file(target, overwrite, "ledger export")
         started = _utc_now()
-        since_utc = _aware(since, "since", "ledger export") if since is not None else None
+        since_utc = aware_utc(since, "since", "ledger export") if since is not None else None
         m, a = measurements, analyses
+        # the columns of LEDGER_CSV_COLUMNS up to "baselines", then the analysis id (for its baselines cell)
         stmt = (
             sa.select(a.c.uid, a.c.recorded_at, sites.c.name.label("site"), scanners.c.name.label("scanner"), a.c.protocol,
                       a.c.series_uid, a.c.template, a.c.acquired_at, a.c.reconstruction, a.c.tool_version, a.c.settings_hash,
@@ -1179,29 +843,21 @@ class Ledger:
         )
         if since_utc is not None:
             stmt = stmt.where(a.c.recorded_at >= since_utc)
-        n_rows = 0
-        uids: set[str] = set()
-        text_index = [LEDGER_CSV_COLUMNS.index(c) for c in TEXT_CSV_COLUMNS]
+        out = LedgerCsvWriter()
 
         def write(fh) -> None:
-            fh.write(format_row(LEDGER_CSV_COLUMNS))
+            out.header(fh)
 
             def q(conn: Connection) -> None:
-                nonlocal n_rows
                 membership = self._baseline_membership(conn, since_utc)
                 result = conn.execution_options(stream_results=True, yield_per=5000).execute(stmt)
                 for r in result:
-                    uids.add(r.uid)
-                    cells = [_csv_cell(v) for v in tuple(r)[:-1]] + [membership.get(r.analysis_id, "")]
-                    for i in text_index:
-                        cells[i] = neutralise(cells[i])
-                    fh.write(format_row(cells))
-                    n_rows += 1
+                    out.row(fh, tuple(r)[:-1], membership.get(r.analysis_id, ""))
 
             self._read(q)
 
         write_text_atomically(target, write)
-        return ExportReport(target, n_rows, len(uids), started)
+        return ExportReport(target, out.rows, out.analyses, started)
 
     @staticmethod
     def _baseline_membership(conn: Connection, since_utc: datetime | None) -> dict[int, str]:
@@ -1214,10 +870,10 @@ class Ledger:
         )
         if since_utc is not None:
             stmt = stmt.where(analyses.c.recorded_at >= since_utc)
-        out: dict[int, list[dict[str, Any]]] = defaultdict(list)
+        out: dict[int, list[tuple[datetime, str | None]]] = defaultdict(list)
         for r in conn.execute(stmt):
-            out[int(r.analysis_id)].append({"created_at": _csv_cell(r.created_at), "note": r.note})
-        return {k: json.dumps(v, ensure_ascii=False, separators=(",", ":")) for k, v in out.items()}
+            out[int(r.analysis_id)].append((r.created_at, r.note))
+        return {k: baselines_cell(v) for k, v in out.items()}
 
     def import_csv(self, path: "str | os.PathLike | LedgerCsv", *, replace: bool = False) -> ImportReport:
         """Read a CSV written by :meth:`export_csv` back, in one transaction.
@@ -1242,7 +898,7 @@ class Ledger:
         where = str(parsed.path)
         for uid_, (head, rows) in groups.items():
             rec = {k: head[k] for k in ("uid", "series_uid", "template", "protocol", "reconstruction", "settings_hash", "tool_version")}
-            _check_analysis_text(head["site"], head["scanner"], None, rec, rows, f"{where} (analysis {uid_})")
+            check_analysis_text(head["site"], head["scanner"], None, rec, rows, f"{where} (analysis {uid_})")
         for (site_, scanner_, proto, _created), (note, _m) in wanted.items():
             check_text(baselines, {"protocol": proto, "note": note}, f"{where} (baseline of {scanner_} / {proto})")
 
@@ -1260,7 +916,7 @@ class Ledger:
                     continue
                 record = {
                     "uid": uid_,
-                    "record_key": _record_key(head["series_uid"], head["acquired_at"], head["template"], head["settings_hash"]),
+                    "record_key": record_key(head["series_uid"], head["acquired_at"], head["template"], head["settings_hash"]),
                     "series_uid": head["series_uid"],
                     "template": head["template"],
                     "acquired_at": head["acquired_at"],
@@ -1313,200 +969,4 @@ class Ledger:
         return created
 
 
-# ------------------------------------------------------------------------------ helpers
-def read_result_document(path: str | os.PathLike) -> tuple[dict[str, Any], str]:
-    """The measurements.json of a result folder (or that file itself) and its path for messages.
-
-    Raises
-    ------
-    InputError
-        No such file, or not JSON.
-    """
-    p = Path(path)
-    json_path = p / "measurements.json" if p.is_dir() else p
-    if not json_path.is_file():
-        raise InputError(f"{json_path}: no such file; give a result folder of phantometry measure or its measurements.json")
-    try:
-        doc = json.loads(json_path.read_text(encoding="utf-8"))
-    except UnicodeDecodeError as exc:
-        raise InputError(f"{json_path}: is not UTF-8 text (byte {exc.start}); give the measurements.json phantometry wrote") from None
-    except (OSError, json.JSONDecodeError, RecursionError) as exc:
-        reason = getattr(exc, "strerror", None) or (exc.msg if isinstance(exc, json.JSONDecodeError) else "nested too deeply")
-        raise InputError(f"{json_path}: cannot be read as JSON ({reason}); give the measurements.json phantometry wrote") from None
-    if not isinstance(doc, dict):
-        raise InputError(f"{json_path}: not a phantometry measurements.json (needs 'series' and 'measurements'); give a result folder of phantometry measure")
-    return doc, str(json_path)
-
-
-@dataclass
-class LedgerCsv:
-    """A ledger CSV read and checked (:func:`read_ledger_csv`), ready for :meth:`Ledger.import_csv`."""
-
-    path: Path
-    groups: "OrderedDict[str, tuple[dict[str, Any], list[dict[str, Any]]]]"
-    baselines: "OrderedDict[tuple, tuple[str | None, list[str]]]"
-
-
-def read_ledger_csv(path: str | os.PathLike) -> LedgerCsv:
-    """Read and check a CSV written by :meth:`Ledger.export_csv` (text cells restored).
-
-    Raises
-    ------
-    InputError
-        Missing columns, unparsable numbers, times or baselines (named with file and line).
-    """
-    p = Path(path)
-    groups, wanted = _read_ledger_csv(p)
-    return LedgerCsv(p, groups, wanted)
-
-
-def _validated_fill(fill_record: Mapping[str, Any] | None, where: str) -> dict[str, Any] | None:
-    """The fill record as stored: validated, only its known keys (no personal data); None if empty."""
-    if not fill_record:
-        return None
-    from ..fill import FillRecord
-
-    return FillRecord.from_dict(dict(fill_record), source=f"{where}: fill_record").to_dict()
-
-
-def _trend_flags(points: list[TrendPoint], limits: ControlLimits | None) -> list[TrendFlag]:
-    valid = [p for p in points if p.value is not None]
-    if not valid:
-        return []
-    flags = drift_flags([p.value for p in valid], limits.mean if limits else None, limits.sigma if limits else None)
-    return [
-        TrendFlag(valid[f.index].analysis_id, valid[f.index].acquired_at, float(valid[f.index].value), f.rule, f.description,
-                  valid[f.first_index].acquired_at)
-        for f in flags
-    ]
-
-
-def _csv_cell(v: Any) -> str:
-    if v is None:
-        return ""
-    if isinstance(v, float):
-        return repr(v) if math.isfinite(v) else ""
-    if isinstance(v, datetime):
-        return v.astimezone(timezone.utc).isoformat()
-    return str(v)
-
-
-def _parse_baselines_cell(cell: str, path: Path, line: int) -> list[tuple[datetime, str | None]]:
-    """The ``baselines`` cell: a JSON list of {created_at, note}; empty for none."""
-    if not cell.strip():
-        return []
-    try:
-        items = json.loads(cell)
-        if not isinstance(items, list):
-            raise ValueError
-        out = []
-        for item in items:
-            note = item.get("note")
-            if not isinstance(note, (str, type(None))):
-                raise ValueError
-            out.append((_aware(item["created_at"], "baseline created_at", f"{path}: line {line}"), note))
-        return out
-    except (ValueError, TypeError, KeyError, AttributeError, RecursionError, LedgerError):
-        raise InputError(f"{path}: line {line}: baselines {cell[:60]!r} is not a list of {{created_at, note}}; give a CSV written by phantometry ledger export") from None
-
-
-def _read_ledger_csv(path: Path):
-    """Parse a ledger CSV into analysis heads and measurement rows, grouped by analysis_uid.
-
-    Returns ``(groups, baselines)``: ``groups`` maps analysis uid to (head, rows) with text
-    cells restored; ``baselines`` maps (site, scanner, protocol, created_at) to (note, uids).
-    """
-    if path.is_dir():
-        raise InputError(f"{path}: is a folder; give a CSV written by phantometry ledger export")
-    if not path.is_file():
-        raise InputError(f"{path}: no such file; give a CSV written by phantometry ledger export")
-    groups: "OrderedDict[str, tuple[dict[str, Any], list[dict[str, Any]]]]" = OrderedDict()
-    wanted: "OrderedDict[tuple, tuple[str | None, list[str]]]" = OrderedDict()
-    try:
-        with open(path, newline="", encoding="utf-8") as fh:
-            reader = csv.DictReader(fh)
-            fields = reader.fieldnames or []
-            missing = [c for c in LEDGER_CSV_COLUMNS if c not in fields and c not in OPTIONAL_CSV_COLUMNS]
-            if missing:
-                raise InputError(f"{path}: missing columns {', '.join(missing)}; give a CSV written by phantometry ledger export")
-            for raw in reader:
-                line = reader.line_num
-                if None in raw:
-                    raise InputError(f"{path}: line {line}: more cells than columns")
-                rec = {c: ("" if raw.get(c) is None else raw[c]) for c in LEDGER_CSV_COLUMNS}
-                for c in TEXT_CSV_COLUMNS:
-                    rec[c] = restore(rec[c])
-                uid_ = rec["analysis_uid"].strip()
-                if not uid_:
-                    raise InputError(f"{path}: line {line}: empty analysis_uid")
-                row: dict[str, Any] = {}
-                for c in _FLOAT_COLUMNS:
-                    cell = rec[c].strip()
-                    try:
-                        row[c] = _finite_or_none(cell)
-                    except ValueError:
-                        raise InputError(f"{path}: line {line}: {c} {cell[:40]!r} is not a number") from None
-                for c in ("roi", "metric", "unit"):
-                    if not rec[c]:
-                        raise InputError(f"{path}: line {line}: empty {c}")
-                    row[c] = rec[c]
-                for c in ("band", "verdict", "note"):
-                    row[c] = rec[c] or None
-                if row["verdict"] is not None and row["verdict"] not in VERDICT_ORDER:
-                    raise InputError(f"{path}: line {line}: verdict {row['verdict'][:40]!r}; expected {', '.join(VERDICT_ORDER)} or empty")
-                if uid_ not in groups:
-                    head: dict[str, Any] = {c: (rec[c] or None) for c in _ANALYSIS_COLUMNS}
-                    head["uid"] = uid_
-                    for c in ("acquired_at", "recorded_at"):
-                        try:
-                            head[c] = _aware(rec[c], c, f"{path}: line {line}")
-                        except LedgerError as exc:
-                            raise InputError(str(exc)) from None
-                    for c in ("site", "scanner", "protocol", "template", "settings_hash"):
-                        if not head[c]:
-                            raise InputError(f"{path}: line {line}: empty {c}")
-                    head["baselines"] = rec["baselines"]
-                    groups[uid_] = (head, [])
-                    for created_at, note in _parse_baselines_cell(rec["baselines"], path, line):
-                        key = (head["site"], head["scanner"], head["protocol"], created_at)
-                        if key in wanted and wanted[key][0] != note:
-                            raise InputError(f"{path}: line {line}: baseline {created_at.isoformat()} of {head['scanner']} has another note than on an earlier line; the file is inconsistent")
-                        wanted.setdefault(key, (note, []))[1].append(uid_)
-                else:
-                    head = groups[uid_][0]
-                    for c in ("site", "scanner", "protocol", "template", "series_uid", "settings_hash", "baselines"):
-                        if (rec[c] or None) != (head[c] or None):
-                            raise InputError(f"{path}: line {line}: analysis {uid_} has another {c} than on its first row; the file is inconsistent")
-                groups[uid_][1].append(row)
-    except UnicodeDecodeError as exc:
-        raise InputError(f"{path}: is not UTF-8 text (byte {exc.start}); give a CSV written by phantometry ledger export") from None
-    except (OSError, csv.Error) as exc:
-        raise InputError(f"{path}: cannot be read as CSV ({getattr(exc, 'strerror', None) or _one_line(exc)})") from None
-    return groups, wanted
-
-
-__all__ = [
-    "AnalysisInfo",
-    "BaselineInfo",
-    "CheckResult",
-    "ExportReport",
-    "ImportReport",
-    "LEDGER_CSV_COLUMNS",
-    "LedgerCsv",
-    "OPTIONAL_CSV_COLUMNS",
-    "TEXT_CSV_COLUMNS",
-    "Ledger",
-    "RecordResult",
-    "ScannerInfo",
-    "Trend",
-    "TrendFlag",
-    "TrendPoint",
-    "UNTRENDED_UNITS",
-    "analysis_verdict",
-    "read_ledger_csv",
-    "read_result_document",
-    "default_protocol_label",
-    "default_scanner_label",
-    "default_site_label",
-    "settings_hash",
-]
+__all__ = ["Ledger"]
