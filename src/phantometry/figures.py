@@ -310,22 +310,33 @@ class _Placer:
 
 
 def _wrap(text: str, width_px: float, fontsize: float, renderer, *, weight: str = "normal") -> str:
-    """``text`` broken at spaces into lines no wider than ``width_px`` (measured, not guessed)."""
+    """``text`` broken at spaces into lines no wider than ``width_px``: each word measured once
+    with the renderer, the line widths summed (2 % kept spare for kerning and hinting)."""
     from matplotlib.font_manager import FontProperties
 
     prop = FontProperties(size=fontsize, weight=weight)
+    cache: dict[str, float] = {}
+
+    def width(word: str) -> float:
+        if word not in cache:
+            cache[word] = renderer.get_text_width_height_descent(word or " ", prop, ismath=False)[0]
+        return cache[word]
+
+    space = width("a a") - 2 * width("a")
+    limit = 0.98 * width_px
     out: list[str] = []
     for para in text.split("\n"):
-        line = ""
+        line: list[str] = []
+        used = 0.0
         for word in para.split(" "):
-            trial = f"{line} {word}" if line else word
-            w, _, _ = renderer.get_text_width_height_descent(trial, prop, ismath=False)
-            if line and w > width_px:
-                out.append(line)
-                line = word
+            w = width(word)
+            if line and used + space + w > limit:
+                out.append(" ".join(line))
+                line, used = [word], w
             else:
-                line = trial
-        out.append(line)
+                used += (space if line else 0.0) + w
+                line.append(word)
+        out.append(" ".join(line))
     return "\n".join(out)
 
 
@@ -757,11 +768,13 @@ def overlay_picture(overlay: "Overlay", path: str | os.PathLike) -> Path:
     """Draw an analysis's overlay (:meth:`phantometry.phantoms.base.Analysis.overlay`) as a PNG
     (:func:`draw_overlay`)."""
     drawn = draw_overlay(overlay)
-    return _save(drawn.figure, path, dpi=110)
+    return _save(drawn.figure, path)
 
 
-def _save(fig, path: str | os.PathLike, dpi: int) -> Path:
-    """Add the caution line at the bottom and save a figure laid out by hand."""
+def _save(fig, path: str | os.PathLike, dpi: int | None = None) -> Path:
+    """Add the caution line at the bottom and save a figure laid out by hand, at the
+    resolution it was laid out at (text widths were measured at it)."""
+    dpi = fig.dpi if dpi is None else dpi
     fig.text(0.5, 0.06 / fig.get_figheight(), "Supports, does not replace, a qualified medical physicist's review.", ha="center",
              va="bottom", fontsize=8, color="#444444")
     out = Path(path)
@@ -782,12 +795,12 @@ def diagnostic_picture(volume: "Volume", path: str | os.PathLike, *, message: st
     """
     try:
         drawn = draw_diagnostic(volume, message=message, sketch=sketch)
-        return _save(drawn.figure, path, dpi=100)
+        return _save(drawn.figure, path)
     except Exception:  # noqa: BLE001  (never let the courtesy hide the real error)
         fig, renderer = _new_figure(9.0, 2.5)
         text = _wrap("Phantom not found: " + (message or "localisation failed"), 9.0 * fig.dpi - 40, 10, renderer)
         fig.text(0.5, 0.6, text, ha="center", va="center", fontsize=10, color="#8a0000")
-        return _save(fig, path, dpi=100)
+        return _save(fig, path)
 
 
 def _plane_trace(view, point: np.ndarray, normal: np.ndarray) -> np.ndarray | None:
@@ -973,13 +986,8 @@ def _panel_grid(fig, n_panels: int, ncols: int, panel_w: float, panel_h: float, 
 def _number_labels(ax, renderer, points: list[tuple[float, float, int]], bars: list[tuple[float, float, float, float]] | None = None) -> list:
     """The setting numbers beside their points, where they overlap no other text and no other
     point (a number without room is left out: the marker and colour still tell the setting)."""
-    fig = ax.figure
-    fig.canvas.draw()  # final axis limits and tick labels
+    ax.get_xlim(), ax.get_ylim()  # the final limits (autoscaled to everything plotted); the numbers stay inside the axes
     placer = _Placer(ax, renderer)
-    hidden = _hidden_tick_labels(fig)
-    for t in ax.get_xticklabels() + ax.get_yticklabels():
-        if t.get_visible() and t.get_text() and id(t) not in hidden:
-            placer.take(t)
     to_px = ax.transData.transform
     for i, (x, y, _) in enumerate(points):
         placer.outline(to_px(np.array([[x, y]])) + np.array([[-4, -4], [4, 4], [-4, 4], [4, -4], [0, 0]]), i)
@@ -1085,8 +1093,8 @@ def draw_contrast_noise(settings, sphere_diameters_mm: dict[str, float], *, titl
     return fig
 
 
-def _save_chart(fig, path: str | os.PathLike, dpi: int = 100) -> Path:
-    return _save(fig, path, dpi)
+def _save_chart(fig, path: str | os.PathLike) -> Path:
+    return _save(fig, path)
 
 
 def _spread(desired: np.ndarray, gap: float, lo: float, hi: float) -> np.ndarray:
@@ -1220,8 +1228,7 @@ def _end_labels(ax, renderer, ends: list[tuple[float, float, int]]) -> None:
     line joins a moved number to its point)."""
     if not ends:
         return
-    fig = ax.figure
-    fig.canvas.draw()
+    ax.get_xlim(), ax.get_ylim()  # the final limits
     to_px = ax.transData.transform
     pts = np.array([to_px((x, y)) for x, y, _ in ends])
     probe = ax.text(0, 0, "88", fontsize=7)
@@ -1252,7 +1259,7 @@ def recovery_curve_picture(
     see :func:`draw_recovery_curve`."""
     fig = draw_recovery_curve(rows, hot_spheres, diameters_mm, fit, band_sets, isocontour_fraction=isocontour_fraction,
                               peak_diameter_mm=peak_diameter_mm)
-    return _save(fig, path, dpi=100)
+    return _save(fig, path)
 
 
 def draw_recovery_curve(
