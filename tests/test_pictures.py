@@ -153,7 +153,7 @@ def test_body_overlay_draws_what_was_measured_and_explains_it(body10):
     assert view.vmax == pytest.approx(2.5 * c_b) and view.vmax < 0.3 * max(analysis.true_insert_bq_ml.values())
     # red/blue, the outlines and the ring match in words
     words = " ".join(drawn.legend) + " " + drawn.caption
-    for phrase in ("A50 isocontour", "peak sphere", "background ROI", "Ring match", "normalised correlation", "Red: hot, blue: cold"):
+    for phrase in ("A50 isocontour", "peak sphere", "background ROI", "Ring match", "normalised correlation", "Orange-red: hot, blue: cold"):
         assert phrase in words.replace("\n", " "), phrase
 
 

@@ -448,7 +448,7 @@ class PhantomKind(ABC):
     supports_seg: ClassVar[bool] = False
 
     # ---------------------------------------------------------------- template
-    def options(self, template: Template) -> Any:
+    def options(self, template: Template) -> KindOptions:
         """The template's ``analysis:`` block validated as this kind's :attr:`Options`.
 
         Raises

@@ -334,7 +334,7 @@ class BodyAnalysis(Analysis):
                "fill record predict (normalised correlation: 1 = identical; placements below 0.30 are refused)."]
         out.append(f"Grey scale: white 0, black {vmax:,.0f} Bq/mL and above ({vmax / c_b:.1f} x the measured background), so the "
                    "background's texture shows.")
-        out.append("Red: hot, blue: cold. The transverse view is the stored slice nearest the sphere plane with rows downwards, as viewers "
+        out.append("Orange-red: hot, blue: cold. The transverse view is the stored slice nearest the sphere plane with rows downwards, as viewers "
                    "show it; letters name the patient directions (" + ("DICOM LPS" if self.volume.frame == "LPS" else "NIfTI RAS") + " frame).")
         bp = self.background_placement
         if bp is not None and (bp.n_moved or bp.n_dropped):

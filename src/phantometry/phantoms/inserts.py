@@ -155,7 +155,7 @@ class InsertsAnalysis(Analysis):
                    "predict on a cylindrical grid about the axis (normalised correlation: 1 = identical; placements below 0.30 are "
                    "refused).",
                    f"Grey scale: white 0, black {vmax:,.0f} Bq/mL and above ({note}). The VOIs keep clear of the inserts' blurred "
-                   "edges; red: hot, blue: cold. Letters name the patient directions of each edge "
+                   "edges; orange-red: hot, blue: cold. Letters name the patient directions of each edge "
                    f"({'DICOM LPS' if self.volume.frame == 'LPS' else 'NIfTI RAS'} frame)."]
         title = f"{tpl.title} | {series_phrase(self.volume)} | image match {pl.ring_score or 0:.2f}"
         return Overlay(views, title, frame=self.volume.frame, legend=legend, caption=caption)
