@@ -330,4 +330,4 @@ def test_nifti_titles_name_the_file(tmp_path):
     assert series_name(vol) == "phantom.nii.gz"
     analysis = measure_volume(vol, load_template("iec-body"), FillRecord.from_dict(res.fill_record), uncertainties=False, resolution=False)
     title = analysis.overlay().title
-    assert "| phantom.nii.gz |" in title and "series  |" not in title and "|  |" not in title
+    assert "phantom.nii.gz |" in title and "series  |" not in title and "|  |" not in title

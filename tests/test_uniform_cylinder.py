@@ -258,6 +258,24 @@ def test_body_phantom_refused_naming_the_template_that_fits(demo_scan, tmp_path)
     assert not out.exists()
 
 
+def test_cylinder_scan_with_the_body_template_is_refused_naming_the_cylinder_template(tmp_path):
+    """The reverse case: the fill record of a cylinder (``phantom: uniform-cylinder``) does not
+    fit the body template; the one line says which template the record is for."""
+    scan = tmp_path / "scan"
+    write_synthetic(synthesize(_spec(voxel_mm=(4.0,) * 3, noise_cv=0.0)), scan)
+    before = {p: p.read_bytes() for p in scan.rglob("*") if p.is_file()}
+    out = tmp_path / "res"
+    env = dict(os.environ, MPLBACKEND="Agg", COLUMNS="200")
+    r = subprocess.run([str(SCRIPT), "measure", str(scan / "dicom"), "--fill", str(scan / "fill.yaml"), "--out", str(out)],
+                       capture_output=True, text=True, env=env, timeout=300)
+    assert r.returncode == 2, r.stderr
+    lines = [line for line in r.stderr.splitlines() if line.strip()]
+    assert len(lines) == 1 and lines[0].startswith("phantometry: error:"), r.stderr
+    assert "fill.yaml" in lines[0] and "--template uniform-cylinder" in lines[0]
+    assert not out.exists()
+    assert {p: p.read_bytes() for p in scan.rglob("*") if p.is_file()} == before
+
+
 @pytest.mark.parametrize("phantom,spec,expected", [
     ("small-animal", dict(voxel_mm=(0.6,) * 3, psf_fwhm_mm=1.8, background_kbq_ml=150.0), "small-animal"),
     ("site-rod-cylinder", dict(voxel_mm=(4.0,) * 3, noise_cv=0.05), "site-rod-cylinder"),

@@ -9,16 +9,17 @@ The phantom-specific work lives in the kind modules of :mod:`phantometry.phantom
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import os
 from pathlib import Path
-from typing import Any, Callable, Sequence
+from typing import Any, Callable, Iterator, Sequence
 
 import numpy as np
 
 from . import __version__
 from .bands import BandSet, apply_bands, check_band_set, load_band_set
-from .errors import InputError, PhantomNotFound, PhantometryError
+from .errors import FillRecordError, InputError, PhantomNotFound, PhantometryError
 from .fill import FillRecord, load_fill_record
 from .phantoms import kind_of, load_template
 from .phantoms.base import Analysis, AnalysisSettings
@@ -316,6 +317,22 @@ def parse_centre_overrides(items: Sequence[str] | None, template: Template) -> d
     return out
 
 
+@contextlib.contextmanager
+def _hint_other_phantom(fill_record: FillRecord, template: Template) -> Iterator[None]:
+    """A fill record that does not fit the template, but names another phantom (``phantom:``),
+    is refused with the hint to measure it with that phantom's template."""
+    try:
+        yield
+    except FillRecordError as exc:
+        other = (fill_record.phantom or "").strip()
+        if not other or other == template.name:
+            raise
+        raise FillRecordError(
+            f"{exc}. The fill record is for phantom {other!r}, the template is {template.name!r}: "
+            f"if the scan is of that phantom, pass --template {other}"
+        ) from None
+
+
 def measure(
     inputs: Sequence[str | os.PathLike] | str | os.PathLike,
     *,
@@ -382,7 +399,8 @@ def measure(
     tpl = load_template(template, list(templates_dirs or []))
     kind = kind_of(tpl)
     fill_record = load_fill_record(fill)
-    fill_record.check_inserts(tpl)
+    with _hint_other_phantom(fill_record, tpl):
+        fill_record.check_inserts(tpl)
     clock = site_clock(fill_record, timezone)
     overrides = parse_centre_overrides(centres, tpl)
     band_sets: list[BandSet] = []
@@ -406,14 +424,21 @@ def measure(
         check_seg_request(volume, tpl, kind, where)
     out = Path(out)
     try:
-        analysis = measure_volume(volume, tpl, fill_record, overrides=overrides, where=where, progress=progress, timezone=timezone)
-    except PhantomNotFound:
+        with _hint_other_phantom(fill_record, tpl):
+            analysis = measure_volume(volume, tpl, fill_record, overrides=overrides, where=where, progress=progress, timezone=timezone)
+    except PhantomNotFound as exc:
+        message = str(exc)
         try:
             from .figures import diagnostic_picture
             from .outputs import write_picture_beside
 
-            write_picture_beside(out.with_name(out.name + ".failed.png"), lambda p: diagnostic_picture(volume, p),
-                                 "failed localisation", inputs=input_paths)
+            try:  # where the search looked, as far as it got
+                sketch = kind.failure_sketch(volume, tpl, where)
+            except Exception:
+                sketch = None
+            write_picture_beside(out.with_name(out.name + ".failed.png"),
+                                 lambda p: diagnostic_picture(volume, p, message=message, sketch=sketch), "failed localisation",
+                                 inputs=input_paths)
         except Exception:  # the picture is a courtesy; the original error matters
             pass
         raise
