@@ -657,8 +657,8 @@ def _check_kind(template: Template) -> None:
     if not kind.supports_reread:
         able = sorted(k.name for k in kinds().values() if k.supports_reread)
         raise InputError(
-            f"template {template.name}: harmonise needs recovery coefficients to filter, which analysis kind {kind.name} does "
-            f"not measure; use a template of kind {', '.join(able)} (e.g. iec-body)"
+            f"template {template.name}: harmonise works with analysis kind {', '.join(able)} (e.g. iec-body), whose recovery "
+            f"coefficients it reads again on filtered copies of the image; analysis kind {kind.name} cannot do that (yet)"
         )
 
 

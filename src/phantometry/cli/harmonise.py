@@ -71,7 +71,7 @@ def harmonise_cmd(
     bands: List[str] = typer.Option(..., "--bands", "-b", help="Band set to aim for (name or YAML file; phantometry bands list); repeatable."),
     out: Path = typer.Option(..., "--out", "-o", help="Result folder: a new one, or earlier results with --overwrite (written atomically)."),
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace --out when it holds earlier phantometry results (never any other folder)."),
-    template: str = typer.Option("iec-body", "--template", "-t", help="Template name or YAML file (a kind with recovery coefficients)."),
+    template: str = typer.Option("iec-body", "--template", "-t", help="Template name or YAML file (the body image-quality kind, e.g. iec-body)."),
     series: Optional[str] = typer.Option(None, "--series", help="Series UID, UID prefix or series number."),
     centre: Optional[List[str]] = typer.Option(None, "--centre", help="Manual insert centre NAME=x,y,z (world mm); repeatable."),
     units: Optional[str] = typer.Option(None, "--units", help="NIfTI: pixel units (Bq/mL, kBq/mL)."),
