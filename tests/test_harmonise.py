@@ -248,8 +248,8 @@ def test_gaussians_compose(tmp_path):
 # ============================================================================== known truth: bands at 10:1
 @pytest.fixture(scope="module")
 def sharp_scan():
-    """A 2 mm scan at 4 mm FWHM, 10:1 (the harmonisation bands' ratio), modest noise."""
-    res = synthesize(SynthSpec(voxel_mm=(2.0,) * 3, psf_fwhm_mm=4.0, sphere_ratio=10.0, background_kbq_ml=2.0, noise_cv=0.05,
+    """A 2.5 mm scan at 4 mm FWHM, 10:1 (the harmonisation bands' ratio), modest noise."""
+    res = synthesize(SynthSpec(voxel_mm=(2.5,) * 3, psf_fwhm_mm=4.0, sphere_ratio=10.0, background_kbq_ml=2.0, noise_cv=0.05,
                                rotation_deg=(0.0, 0.0, 20.0), shift_mm=(3.0, -2.0, 1.0), seed=3))
     fill = FillRecord.from_dict(res.fill_record)
     return res, fill, harmonise_volume(res.volume, TPL, fill, [EANM_2015])
@@ -385,7 +385,8 @@ def test_no_passing_filter_exit_0_and_strict_3(scans, tmp_path):
     assert "already" in doc["passing_range_reason"] and "too little" in doc["passing_range_reason"]
     said = " ".join(r.stdout.split())
     assert "no filter meets every band" in said and "reconstruct the phantom on the scanner" in said
-    r = run("harmonise", s["image"], "--fill", s["fill"], "--bands", "eanm-fdg-2015", "--out", tmp_path / "h2", "--strict", "--write-filtered")
+    r = run("harmonise", s["image"], "--fill", s["fill"], "--bands", "eanm-fdg-2015", "--out", tmp_path / "h2", "--strict", "--write-filtered",
+            "--max-fwhm", "4", "--step", "1")
     assert r.returncode == 3, r.stderr
     assert (tmp_path / "h2" / "harmonisation.json").exists() and not (tmp_path / "h2" / "filtered").exists()
     assert "no filtered image written" in " ".join(r.stdout.split())
@@ -423,7 +424,8 @@ def test_command_writes_a_measurable_filtered_series(scans, tmp_path):
     again = run("harmonise", s["image"], "--fill", s["fill"], "--bands", "eanm-fdg-2015", "--out", out)
     lines = [x for x in again.stderr.splitlines() if x.strip()]
     assert again.returncode == 2 and len(lines) == 1 and "--overwrite" in lines[0]
-    again = run("harmonise", s["image"], "--fill", s["fill"], "--bands", "eanm-fdg-2015", "--out", out, "--overwrite")
+    again = run("harmonise", s["image"], "--fill", s["fill"], "--bands", "eanm-fdg-2015", "--out", out, "--overwrite", "--max-fwhm", "2",
+                "--step", "1")
     assert again.returncode == 0 and "replaced the earlier harmonise results folder" in " ".join(again.stdout.split())
     assert not (out / "filtered").exists()
 
