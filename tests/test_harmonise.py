@@ -334,6 +334,10 @@ def test_outputs_of_a_sweep(sharp_scan, tmp_path):
     at_rec = {(r["roi"], r["metric"]): r for r in rows if float(r["filter_fwhm_mm"]) == h.overall.recommended_mm}
     for r in doc["at_recommendation"]:
         assert float(at_rec[(r["roi"], r["metric"])]["value"]) == pytest.approx(r["value"], rel=1e-9)
+    # the width applied: the nominal one from about a voxel (2.5 mm) up, less below it
+    applied = {float(r["filter_fwhm_mm"]): float(r["applied_fwhm_mm"]) for r in rows}
+    assert applied[0.0] == 0.0 and applied[1.0] < 0.05 and 0.5 < applied[2.0] < 1.5
+    assert all(a == pytest.approx(f, rel=5e-3) for f, a in applied.items() if f >= 4.0)
     png = (tmp_path / "harmonisation.png").read_bytes()
     assert png[:8] == b"\x89PNG\r\n\x1a\n" and len(png) > 20_000
     # the bands shaded, the passing range shaded and the recommendation drawn

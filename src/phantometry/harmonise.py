@@ -72,7 +72,7 @@ from .measure import judge, load_image, measure_volume, parse_centre_overrides
 from .noise import NoiseModel
 from .phantoms import kind_of, kinds, load_template
 from .phantoms.base import Analysis, Reread
-from .postfilter import PostFilter, check_filterable, filtered_noise
+from .postfilter import FWHM_PER_SIGMA, PostFilter, check_filterable, filtered_noise
 from .results import CAUTION, Measurement, _fmt, to_json
 from .templates import Template
 from .threads import fft_workers, threads
@@ -123,8 +123,10 @@ PICTURE_NAME = "harmonisation.png"
 FILTERED_DICOM = "filtered"
 FILTERED_NIFTI = "filtered.nii.gz"
 #: Columns of harmonisation.csv (new columns are only ever appended).
+#: ``applied_fwhm_mm``: the width the sampled kernel applies (FWHM of a Gaussian of its
+#: variance): the nominal one for filters wider than about a voxel, less for narrower ones.
 CSV_COLUMNS = ["filter_fwhm_mm", "roi", "metric", "value", "unit", "uncertainty", "uncertainty_from", "band", "band_low",
-               "band_high", "verdict", "note"]
+               "band_high", "verdict", "note", "applied_fwhm_mm"]
 #: The caution every output of a harmonisation carries.
 FILTER_CAUTION = (
     "The filter is a shift-invariant Gaussian applied after reconstruction. Iterative reconstructions are not linear: "
@@ -161,6 +163,11 @@ class FilterStep:
     passes_by_set: dict[str, bool] = field(default_factory=dict)
     distance: float | None = None
     distance_by_set: dict[str, float | None] = field(default_factory=dict)
+
+    @property
+    def applied_fwhm_mm(self) -> float:
+        """FWHM (mm) of the Gaussian whose variance the sampled kernel applies."""
+        return FWHM_PER_SIGMA * math.sqrt(max(self.variance_mm2, 0.0))
 
     def row(self, key: Key) -> Measurement:
         for r in self.rows:
@@ -770,7 +777,7 @@ def harmonisation_csv(h: Harmonisation) -> str:
             d = r.as_dict()
             w.writerow([_fmt(s.fwhm_mm), r.roi, r.metric, _fmt(d["value"]), r.unit, _fmt(d["uncertainty"]),
                         s.uncertainty_from.get((r.roi, r.metric), "none"), _fmt(r.band), _fmt(d["band_low"]), _fmt(d["band_high"]),
-                        _fmt(r.verdict), _fmt(r.note)])
+                        _fmt(r.verdict), _fmt(r.note), _fmt(round(s.applied_fwhm_mm, 4))])
     return buf.getvalue()
 
 
