@@ -59,7 +59,7 @@ def main() -> None:
         volume = load_dicom(paths["image"])
         t_analysis = best_of(args.repeats, lambda: measure_volume(volume, tpl, fill))
         t_core = best_of(args.repeats, lambda: measure_volume(volume, tpl, fill, uncertainties=False, resolution=False))
-        del volume
+        volume = None  # release it before the end-to-end timing
         t_bare = best_of(args.repeats, lambda: [pydicom.dcmread(f).pixel_array for f in files])
         t_e2e = best_of(args.repeats, lambda: measure([paths["image"]], template="iec-body", fill=paths["fill"], out=tmp / "out", overwrite=True))
         print(f"(a) analysis after loading: {t_analysis:.3f} s (goal <= 1.0 s)")

@@ -89,7 +89,7 @@ def _scan(tmp_path, variant: str, pose: str, voxel: float = 3.0, noise: float = 
     flip, rot, shift = POSES[pose]
     spec = SynthSpec(phantom=str(tpl_path), voxel_mm=(voxel,) * 3, psf_fwhm_mm=6.0, noise_cv=noise, rotation_deg=rot, shift_mm=shift,
                      flip=flip, seed=seed)
-    return synthesize(spec), load_template_file(tpl_path)
+    return synthesize(spec), load_template_file(tpl_path, check=False)
 
 
 def _truth_to_template(res, world):

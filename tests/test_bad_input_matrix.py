@@ -361,7 +361,30 @@ def _gzip_corrupt(b: bytearray) -> bytes:
     return bytes(b[:middle] + bytes(4000) + b[middle + 4000:])
 
 
+def option(case_id: str, extra: tuple[str, ...], offending: str) -> Case:
+    """A good scan and fill record with a bad command-line option (``offending`` named)."""
+
+    def build(case: Path, src: Path) -> tuple[list[str], str]:
+        folder = _copy_dicom(case, src)
+        return _measure(case, folder, *extra), offending
+
+    return Case(case_id, build)
+
+
+def _frame_none(ds: pydicom.Dataset) -> None:
+    ds.DecayCorrection = "NONE"
+    if "ActualFrameDuration" in ds:
+        del ds.ActualFrameDuration
+
+
 CASES: list[Case] = [
+    # site time, decay semantics, fill-record uncertainties (issue 16)
+    option("cli-timezone-unknown", ("--timezone", "Mars/Olympus"), "Mars/Olympus"),
+    fill("fill-timezone-unknown", lambda r: r.update(timezone="Mars/Olympus")),
+    fill("fill-after-the-scan", _bg(measured_at="2026-11-03T11:30:00+01:00")),
+    fill("fill-uncertainty-negative", lambda r: r.update(uncertainty={"activity_pct": -2})),
+    fill("fill-uncertainty-unknown-key", lambda r: r.update(uncertainty={"volume_ml": 5})),
+    dicom("dicom-none-without-frame-duration", _frame_none, which="all"),
     # ------------------------------------------------------------------ fill records
     fill_text("fill-utf16", lambda t: t.encode("utf-16")),
     fill_text("fill-utf16-no-bom", lambda t: t.encode("utf-16-le")),

@@ -126,7 +126,8 @@ def test_comparison_csv_is_the_measure_rows_plus_label(run):
     out = run["out"]
     with open(out / "comparison.csv", newline="") as fh:
         header = next(csv.reader(fh))
-    assert header == CSV_COLUMNS + ["label"]
+    # label keeps its place after note; later measurement columns are appended after it
+    assert header == CSV_COLUMNS[: CSV_COLUMNS.index("note") + 1] + ["label"] + CSV_COLUMNS[CSV_COLUMNS.index("note") + 1 :]
     back = rk.read_comparison_csv(out / "comparison.csv")
     assert len(back) == sum(len(o.rows) for o in res.succeeded)
     for o in res.succeeded:

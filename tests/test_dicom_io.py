@@ -6,6 +6,7 @@ All data are invented (synthetic volumes, invented scanner and patient placehold
 from __future__ import annotations
 
 import json
+import math
 import random
 import shutil
 import warnings
@@ -344,16 +345,26 @@ def test_suv_admin_decay_correction_does_not_decay_the_dose(series_copy):
 
 
 def test_suv_not_decay_corrected_uses_each_slice_time(series_copy):
-    # DecayCorrection NONE: each slice's SUV refers to its own Acquisition Time. Slice k is set
-    # k minutes after the series time, so its dose has decayed one half-life plus 60k s more:
-    # C_k = 5000 x 2^(-60 k / 6586.2) Bq/mL (same worked numbers as above).
+    # DecayCorrection NONE: each slice's SUV refers to its own Acquisition Time (frame start)
+    # and is a frame average. Slice k is set k minutes after the series time, so its dose has
+    # decayed one half-life plus 60k s more: its frame average is
+    # C_k = 5000 x 2^(-60 k / 6586.2) Bq/mL (same worked numbers as above). Referred to
+    # t_ref = t_0 + Delta (Delta: the moment whose activity equals the frame mean,
+    # exp(-lambda Delta) = f = (1 - exp(-lambda T)) / (lambda T), T = ActualFrameDuration):
+    # C_k x exp(-lambda (t_ref - t_k)) / f = 5000 x 2^(-60k/T_half) x 2^((60k - Delta)/T_half) / f
+    # = 5000 for every slice, and acquired_at = t_ref.
     folder, _, paths = series_copy
     _hand_worked_suv_files(folder, paths, DecayCorrection="NONE")
     _edit(paths, lambda ds, k: setattr(ds, "AcquisitionTime", (SCAN_TIME + timedelta(minutes=k)).strftime("%H%M%S")))
     loaded = load_dicom(folder)
-    expected = 5000.0 * 2.0 ** (-60.0 * np.arange(SHAPE[0]) / 6586.2)
-    np.testing.assert_allclose(loaded.data.mean(axis=(1, 2)), expected, rtol=1e-6)
-    assert loaded.acquired_at == SCAN_TIME
+    np.testing.assert_allclose(loaded.data.mean(axis=(1, 2)), 5000.0, rtol=1e-6)
+    lam = math.log(2) / 6586.2
+    t_frame = float(pydicom.dcmread(paths[0]).ActualFrameDuration) / 1000.0
+    f = (1 - math.exp(-lam * t_frame)) / (lam * t_frame)
+    delta = -math.log(f) / lam
+    assert abs((loaded.acquired_at - (SCAN_TIME + timedelta(seconds=delta))).total_seconds()) < 1e-3
+    assert loaded.scan_start == SCAN_TIME and loaded.frame_duration_s == t_frame
+    assert "frame-average" in loaded.decay_reference
 
 
 @pytest.mark.parametrize(
@@ -425,13 +436,32 @@ def test_timezone_offset_is_applied(tmp_path):
     assert loaded.acquired_at == datetime(2031, 1, 2, 13, 0, tzinfo=timezone.utc)
 
 
-def test_missing_timezone_assumes_utc_and_warns(series_copy):
+def test_missing_timezone_without_site_zone_is_unresolved_and_warns(series_copy):
+    # no offset and no site zone: the scanner's wall clock, held (as UTC) until a zone is known,
+    # shown without an offset and never called UTC
     folder, _, paths = series_copy
     _edit(paths, lambda ds, k: delattr(ds, "TimezoneOffsetFromUTC"))
     assert discover_series(folder)[0].time_zone_assumed
-    with pytest.warns(TimeZoneAssumedWarning, match="UTC"):
+    with pytest.warns(TimeZoneAssumedWarning, match="wall clock"):
         loaded = load_dicom(folder)
-    assert loaded.acquired_at == SCAN_TIME.replace(tzinfo=timezone.utc)
+    assert loaded.time_basis == "unresolved"
+    assert loaded.acquired_at.replace(tzinfo=None) == SCAN_TIME.replace(tzinfo=None)
+    assert loaded.summary()["acquired_at"] == SCAN_TIME.replace(tzinfo=None).isoformat()
+
+
+def test_missing_timezone_read_in_the_site_zone(series_copy):
+    # the same series read with a site zone: Europe/Berlin is +01:00 on the (invented) scan date
+    from zoneinfo import ZoneInfo
+
+    from phantometry.sitetime import SiteClock
+
+    folder, _, paths = series_copy
+    _edit(paths, lambda ds, k: delattr(ds, "TimezoneOffsetFromUTC"))
+    clock = SiteClock(ZoneInfo("Europe/Berlin"), "given zone", "Europe/Berlin (--timezone)")
+    loaded = load_dicom(folder, site_clock=clock)
+    assert loaded.time_basis == "given zone" and loaded.time_zone == "Europe/Berlin (--timezone)"
+    assert loaded.acquired_at.replace(tzinfo=None) == SCAN_TIME.replace(tzinfo=None)
+    assert loaded.acquired_at.utcoffset() == ZoneInfo("Europe/Berlin").utcoffset(SCAN_TIME.replace(tzinfo=None))
 
 
 def test_radiopharmaceutical_datetime_with_own_offset(series_copy):

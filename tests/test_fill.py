@@ -270,7 +270,7 @@ def test_empty_activity_entry(tmp_path):
 
 def test_naive_time(tmp_path):
     msg = _error(tmp_path, CANONICAL.replace("2026-11-03T09:40:00+01:00", "2026-11-03T09:40:00"))
-    assert "background.measured_at: time 2026-11-03T09:40:00 has no time-zone offset" in msg
+    assert "background.measured_at: 2026-11-03T09:40:00 has no time-zone offset" in msg
 
 
 def test_date_without_time(tmp_path):

@@ -531,3 +531,25 @@ def test_compare_harmonise(tmp_path):
     r = run("compare", tmp_path / "recons", "--fill", fam["fill"], "--out", tmp_path / "cmp2", "--harmonise")
     lines = [x for x in r.stderr.splitlines() if x.strip()]
     assert r.returncode == 2 and len(lines) == 1 and "--harmonise" in lines[0] and not (tmp_path / "cmp2").exists()
+
+
+# ============================================================================== site time
+def test_timezone_is_read_as_measure_reads_it(tmp_path):
+    # a scan whose DICOM times carry no UTC offset: --timezone gives the site's zone, as for
+    # measure (phantometry.sitetime); a zone that does not exist is refused in one line
+    from datetime import datetime
+    from zoneinfo import ZoneInfo
+
+    spec = SynthSpec(voxel_mm=(4.0,) * 3, psf_fwhm_mm=4.0, sphere_ratio=10.0, background_kbq_ml=2.0, noise_cv=0.04,
+                     acquired_at=datetime(2026, 10, 25, 3, 10, tzinfo=ZoneInfo("Europe/Berlin")), fill_measured_before_s=7200.0)
+    s = write_synthetic(synthesize(spec), tmp_path / "scan", "dicom", local_times=True)
+    out = tmp_path / "h"
+    r = run("harmonise", s["image"], "--fill", s["fill"], "--bands", "eanm-fdg-2015", "--out", out, "--max-fwhm", "2", "--step", "1",
+            "--timezone", "Europe/Berlin")
+    assert r.returncode == 0, r.stderr
+    doc = json.loads((out / "harmonisation.json").read_text(encoding="utf-8"))
+    assert doc["series"]["time_basis"] == "given zone" and doc["series"]["time_zone"] == "Europe/Berlin (--timezone)"
+    assert doc["series"]["acquired_at"].endswith("+01:00")  # 03:10 on the night the clocks went back: winter time
+    bad = run("harmonise", s["image"], "--fill", s["fill"], "--bands", "eanm-fdg-2015", "--out", tmp_path / "h2", "--timezone", "Mars/Olympus")
+    lines = [x for x in bad.stderr.splitlines() if x.strip()]
+    assert bad.returncode == 2 and len(lines) == 1 and "Mars/Olympus" in lines[0] and not (tmp_path / "h2").exists()

@@ -34,15 +34,22 @@ def one_error_line(err: str) -> str:
 def test_measure_record_then_duplicate_then_replace(capsys, demo_scan, tmp_path, monkeypatch):
     import phantometry.measure as measure_module
 
-    real_measure = measure_module.measure
-    cache = {}
+    real_measure_volume, real_load_image = measure_module.measure_volume, measure_module.load_image
+    cache: dict = {}
+    calls = {"load_image": 0, "measure_volume": 0}
 
-    def measure_once(*a, **kw):  # the first call measures for real; later calls reuse its analysis
+    def measure_volume_once(*a, **kw):  # the first call measures for real; later calls reuse its analysis
+        calls["measure_volume"] += 1
         if "analysis" not in cache:
-            cache["analysis"] = real_measure(*a, **kw)
+            cache["analysis"] = real_measure_volume(*a, **kw)
         return cache["analysis"]
 
-    monkeypatch.setattr(measure_module, "measure", measure_once)
+    def counting_load_image(*a, **kw):
+        calls["load_image"] += 1
+        return real_load_image(*a, **kw)
+
+    monkeypatch.setattr(measure_module, "measure_volume", measure_volume_once)
+    monkeypatch.setattr(measure_module, "load_image", counting_load_image)
     db = tmp_path / "ledger.sqlite3"
     args = ["measure", demo_scan["image"], "--fill", demo_scan["fill"], "--out", tmp_path / "r1", "--record", "--db", db,
             "--scanner", "PET-CT 1", "--protocol", "EARL1"]
@@ -59,14 +66,16 @@ def test_measure_record_then_duplicate_then_replace(capsys, demo_scan, tmp_path,
     # the same result folder through `ledger add` is the same series + template + settings
     code, out, err = run(capsys, "ledger", "add", tmp_path / "r1", "--db", db, "--scanner", "PET-CT 1", "--protocol", "EARL1")
     assert code == 2 and "already recorded" in one_error_line(err) and "--replace" in err
-    # measuring the same series again (the first analysis is reused to keep the test fast) is refused ...
+    # measuring the same series again is refused before the image is read: nothing loaded, nothing written
+    assert calls == {"load_image": 1, "measure_volume": 1}
     args[args.index("--out") + 1] = tmp_path / "r2"
     code, out, err = run(capsys, *args)
-    assert code == 2 and "already recorded" in one_error_line(err)
-    # ... unless --replace
+    assert code == 2 and "already recorded (analysis #1)" in one_error_line(err)
+    assert calls == {"load_image": 1, "measure_volume": 1} and not (tmp_path / "r2").exists()
+    # ... unless --replace (the first analysis is reused to keep the test fast)
     code, out, err = run(capsys, *args, "--replace")
     assert code == 0, err
-    assert f"replaced analysis #{a.id}" in out
+    assert f"replaced analysis #{a.id}" in out and (tmp_path / "r2" / "measurements.json").is_file()
     with Ledger(db) as led:
         assert len(led.analyses()) == 1
 
@@ -160,7 +169,7 @@ def test_ledger_commands_end_to_end(capsys, tmp_path):
     for args, needle in (
         (["ledger", "trend", "sphere_10mm", "rc_max", "--scanner", "nope"], "no scanner 'nope'"),
         (["ledger", "trend", "sphere_10mm", "nope"], "no sphere_10mm nope values"),
-        (["ledger", "list", "--since", "2025-01-01T00:00:00"], "give a time-zone offset"),
+        (["ledger", "list", "--since", "2025-01-01T00:00:00"], "has no time-zone offset"),
         (["ledger", "baseline", "--ids", "1,x"], "comma-separated analysis ids"),
         (["ledger", "import", tmp_path / "missing.csv"], "missing.csv: no such file"),
         (["ledger", "remove", "999"], "no analysis #999"),

@@ -150,3 +150,16 @@ def test_chart_draws_limits_bands_and_flags(tmp_path):
     data = out.read_bytes()
     assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 10_000
     assert not list((tmp_path / "sub").glob(".*tmp*"))
+
+
+def test_chart_and_statistics_know_only_the_result_types():
+    # the chart draws a Trend and never reaches the store (the two once imported each other);
+    # the modules the store calls never import it back
+    from test_layers import GRAPH
+
+    inside = lambda m: {t for t in GRAPH[m] if t.startswith("phantometry.ledger.")}  # noqa: E731
+    assert inside("phantometry.ledger.chart") == {"phantometry.ledger.types", "phantometry.ledger.rules", "phantometry.ledger.outfiles"}
+    assert inside("phantometry.ledger.trends") == {"phantometry.ledger.types", "phantometry.ledger.rules"}
+    assert inside("phantometry.ledger.types") == {"phantometry.ledger.rules"}
+    users_of_store = {m for m, ts in GRAPH.items() if "phantometry.ledger.store" in ts}
+    assert users_of_store == {"phantometry.ledger", "phantometry.ledger.measure_record"}

@@ -10,7 +10,7 @@ from scipy import stats
 from phantometry.errors import InputError, PhantomNotFound
 from phantometry.fill import FillRecord
 from phantometry.measure import measure, measure_volume
-from phantometry.rois import disc_weights, sample_plane
+from phantometry.rois import disc_weights
 from phantometry.synth import FWHM_PER_SIGMA, SynthSpec, synthesize
 from phantometry.templates import load_template
 

@@ -9,6 +9,7 @@ names, sites and dates are invented.
 from __future__ import annotations
 
 import json
+import math
 from datetime import datetime, timedelta, timezone
 
 import nibabel as nib
@@ -174,10 +175,20 @@ def test_reference_time_from_bids_times(tmp_path):
     meta.update(ImageDecayCorrectionTime=3600)
     vol = load_nifti(_write_raw(tmp_path, stored, np.eye(4), meta, name="start.nii.gz"))
     assert vol.acquired_at == datetime(2026, 11, 3, 10, 0, tzinfo=CET) and vol.decay_correction == "START"
-    # not decay corrected: the values refer to the scan start
-    meta.update(ImageDecayCorrected=False, ImageDecayCorrectionTime=0)
+    # not decay corrected: the values are the frame's mean, which is the activity of the frame
+    # start plus Delta, exp(-lambda Delta) = (1 - exp(-lambda T)) / (lambda T) (DICOM / QIBA
+    # frame-average semantics); F-18 (109.77 min, EP), T = 600 s
+    meta.update(ImageDecayCorrected=False, ImageDecayCorrectionTime=0, FrameDuration=[600], TracerRadionuclide="F-18")
     vol = load_nifti(_write_raw(tmp_path, stored, np.eye(4), meta, name="none.nii.gz"))
-    assert vol.acquired_at == datetime(2026, 11, 3, 10, 0, tzinfo=CET) and vol.decay_correction == "NONE"
+    lam = math.log(2) / (109.77 * 60)
+    delta = -math.log((1 - math.exp(-lam * 600)) / (lam * 600)) / lam
+    assert abs((vol.acquired_at - datetime(2026, 11, 3, 10, 0, tzinfo=CET)).total_seconds() - delta) < 1e-3
+    assert 290 < delta < 300 and vol.decay_correction == "NONE" and vol.frame_duration_s == 600
+    # without FrameDuration the time the frame mean shows is unknown: refused
+    del meta["FrameDuration"]
+    with pytest.raises(InputError, match="FrameDuration is missing"):
+        load_nifti(_write_raw(tmp_path, stored, np.eye(4), meta, name="none2.nii.gz"))
+    meta["FrameDuration"] = 600
     # TimeZero inconsistent with AcquisitionDateTime - ScanStart: warned
     meta.update(TimeZero="08:00:00")
     with pytest.warns(SidecarTimeWarning, match="TimeZero 08:00:00"):
@@ -187,10 +198,18 @@ def test_reference_time_from_bids_times(tmp_path):
             "AcquisitionDateTime": "2026-11-03T10:00:00+01:00"}
     with pytest.raises(InputError, match="without ScanStart"):
         load_nifti(_write_raw(tmp_path, stored, np.eye(4), meta, name="noscan.nii.gz"))
-    # a naive AcquisitionDateTime is refused
+    # an AcquisitionDateTime without an offset is the scanner's wall clock: unresolved without a
+    # site zone, read in the site's zone with one (daylight-saving aware: +01:00 in November)
     meta = {"Units": "Bq/mL", "AcquisitionDateTime": "2026-11-03T10:00:00"}
-    with pytest.raises(InputError, match="AcquisitionDateTime .* no time-zone offset"):
-        load_nifti(_write_raw(tmp_path, stored, np.eye(4), meta, name="naive.nii.gz"))
+    vol = load_nifti(_write_raw(tmp_path, stored, np.eye(4), meta, name="naive.nii.gz"))
+    assert vol.time_basis == "unresolved" and vol.summary()["acquired_at"] == "2026-11-03T10:00:00"
+    from zoneinfo import ZoneInfo
+
+    from phantometry.sitetime import SiteClock
+
+    clock = SiteClock(ZoneInfo("Europe/Berlin"), "given zone", "Europe/Berlin (--timezone)")
+    vol = load_nifti(_write_raw(tmp_path, stored, np.eye(4), meta, name="naive2.nii.gz"), site_clock=clock)
+    assert vol.time_basis == "given zone" and vol.acquired_at == datetime(2026, 11, 3, 10, 0, tzinfo=CET)
 
 
 def test_reconstruction_and_scanner_from_bids_keys(tmp_path):

@@ -15,7 +15,6 @@ from phantometry.synth import (
     rotation_matrix_xyz,
     synthesize,
 )
-from phantometry.volume import Volume
 
 
 def test_fwhm_sigma_relation():

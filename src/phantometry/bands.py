@@ -40,7 +40,8 @@ from typing import TYPE_CHECKING, Any, Literal, Mapping, Sequence
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
-from .yamlfile import read_yaml_file
+from .resources import builtin_dir, is_file_reference, list_named, search_path
+from .yamlfile import read_yaml_file, validation_problems
 from .errors import BandError, PhantometryError
 from .results import Measurement
 
@@ -209,20 +210,19 @@ def _entry_label(data: Any, i: int) -> str:
 
 
 def _format_errors(source: str, data: Any, err: ValidationError) -> str:
-    problems = []
-    for e in err.errors():
-        loc = list(e["loc"])
+    def place(loc: tuple) -> str:
         if len(loc) >= 2 and loc[0] == "entries" and isinstance(loc[1], int):
-            where = _entry_label(data, loc[1]) + ("." + ".".join(str(x) for x in loc[2:]) if len(loc) > 2 else "")
-        else:
-            where = ".".join(str(x) for x in loc) or "(top level)"
-        msg = e["msg"].removeprefix("Value error, ")
+            return _entry_label(data, loc[1]) + ("." + ".".join(str(x) for x in loc[2:]) if len(loc) > 2 else "")
+        return ".".join(str(x) for x in loc) or "(top level)"
+
+    def problem(e: dict[str, Any]) -> str | None:
         if e["type"] == "extra_forbidden":
-            msg = "unknown key (check the spelling; see the README section on acceptance bands)"
-        elif e["type"] == "missing":
-            msg = "required key missing"
-        problems.append(f"{where}: {msg}")
-    return f"{source}: invalid band set: " + "; ".join(problems)
+            return "unknown key (check the spelling; see the README section on acceptance bands)"
+        if e["type"] == "literal_error":
+            return e["msg"]
+        return None
+
+    return f"{source}: invalid band set: " + "; ".join(validation_problems(err, place=place, problem=problem))
 
 
 def band_set_from_dict(data: Any, source: str = "<bands>") -> BandSet:
@@ -323,31 +323,17 @@ def unit_of_metric(metric: str) -> str:
 # =========================================================================== finding and loading
 def builtin_band_dir() -> Path:
     """Folder of the band sets shipped with phantometry."""
-    from .templates import builtin_template_dir
-
-    return builtin_template_dir() / "bands"
+    return builtin_dir() / "bands"
 
 
 def band_search_path(extra_dirs: Sequence[str | os.PathLike] | None = None) -> list[Path]:
     """Folders searched for band sets by name: ``extra_dirs``, ``$PHANTOMETRY_BANDS``, built-in."""
-    dirs = [Path(d) for d in (extra_dirs or [])]
-    env = os.environ.get(BANDS_PATH_ENV)
-    if env:
-        dirs += [Path(d) for d in env.split(os.pathsep) if d]
-    return dirs + [builtin_band_dir()]
+    return search_path(extra_dirs, BANDS_PATH_ENV, [builtin_band_dir()])
 
 
 def list_band_sets(extra_dirs: Sequence[str | os.PathLike] | None = None) -> dict[str, Path]:
     """Band-set name (file name without ``.yaml``) -> file, earlier folders winning."""
-    found: dict[str, Path] = {}
-    for d in band_search_path(extra_dirs):
-        if not d.is_dir():
-            continue
-        for f in sorted(d.glob("*.yaml")) + sorted(d.glob("*.yml")):
-            if f.name.startswith("_"):
-                continue
-            found.setdefault(f.stem, f)
-    return found
+    return list_named(band_search_path(extra_dirs))
 
 
 def load_band_set_file(path: str | os.PathLike) -> BandSet:
@@ -380,7 +366,7 @@ def load_band_set(
     if isinstance(name_or_path, BandSet):
         return name_or_path
     p = Path(name_or_path)
-    if p.suffix in (".yaml", ".yml") or p.exists():
+    if is_file_reference(p):
         if not p.exists():
             raise BandError(f"{p}: band-set file not found")
         return load_band_set_file(p)

@@ -36,6 +36,27 @@ Forms of an activity entry (exactly one per entry):
   0 MBq is allowed (a rinsed syringe); the residual must be measured at or after the syringe,
   and the net activity must be positive.
 
+**Site time zone** (optional): ``timezone: Europe/Berlin`` (an IANA name, daylight-saving
+aware) names the zone of the site's clocks. Scanner times written without a UTC offset are read
+in it (:mod:`phantometry.sitetime`); ``--timezone`` overrides it.
+
+**Uncertainties** (optional; standard uncertainties, k = 1, GUM)::
+
+    uncertainty:
+      activity_pct: 1.5      # each dose-calibrator reading (syringe, residual, concentration)
+      calibration_pct: 2.0   # the calibrator's calibration, common to every reading
+      residual_mbq: 0.02     # each residual reading, MBq (instead of activity_pct)
+      ratio_pct: 1.0         # a ratio_to_background stated without readings
+    background:
+      ...
+      volume_u_ml: 50        # (syringe form) standard uncertainty of volume_ml
+
+Readings are independent of each other except for the calibration, a factor common to all of
+them (it cancels in an activity ratio). :meth:`FillRecord.uncertainties` propagates them to
+the true concentrations and activity ratios by the law of propagation of uncertainty (GUM,
+JCGM 100:2008, eq. 10, with central-difference sensitivity coefficients); the README says how
+they reach recovery coefficients, activity recovery and percent contrast.
+
 Times must carry a time-zone offset (``2026-11-03T09:40:00+01:00``). Activities and volumes
 must be positive. Unknown keys are refused by name, so a misspelt key never goes unnoticed, and
 no personal data can be stored. The YAML holds kBq/mL and MBq; the API returns Bq/mL.
@@ -46,10 +67,12 @@ from __future__ import annotations
 import os
 import types
 import typing
-from datetime import date, datetime
+from dataclasses import dataclass
+from datetime import datetime
 from pathlib import Path
 from typing import Annotated, Any, ClassVar
 
+import numpy as np
 import yaml
 from pydantic import (
     BaseModel,
@@ -63,13 +86,16 @@ from pydantic import (
     model_validator,
 )
 
-from .yamlfile import read_yaml_file
+from .timeutil import parse_aware_time, zone_from_name
+from .yamlfile import read_yaml_file, validation_problems
 from .errors import FillRecordError, InputError
 from .nuclides import DecayGapError, Nuclide, decay_factor, get_nuclide
 
 __all__ = [
     "BackgroundFill",
     "FillRecord",
+    "FillUncertainty",
+    "FillUncertaintyInputs",
     "InsertFill",
     "SpheresFill",
     "load_fill_record",
@@ -100,18 +126,18 @@ def _number(value: Any) -> Any:
 
 def _aware_time(value: Any) -> datetime:
     """An ISO 8601 date-time with a time-zone offset (a string or a YAML timestamp)."""
-    if isinstance(value, str):
-        try:
-            value = datetime.fromisoformat(value.strip())
-        except ValueError:
-            raise ValueError(f"{value!r} is not an ISO 8601 date-time such as 2026-11-03T09:40:00+01:00") from None
-    if not isinstance(value, datetime):
-        if isinstance(value, date):
-            raise ValueError(f"{value} is a date without a time; write e.g. {value}T09:40:00+01:00")
-        raise ValueError(f"expected a date-time such as 2026-11-03T09:40:00+01:00, got {value!r}")
-    if value.tzinfo is None or value.utcoffset() is None:
-        raise ValueError(f"time {value.isoformat()} has no time-zone offset; write it as {value.isoformat()}+01:00 (your offset)")
-    return value
+    return parse_aware_time(value, "", ValueError)
+
+
+def _zone_name(value: Any) -> str:
+    """An IANA time-zone name the zoneinfo database knows (``Europe/Berlin``)."""
+    if not isinstance(value, str):
+        raise ValueError(f"expected an IANA time-zone name such as Europe/Berlin, got {value!r}")
+    try:
+        zone_from_name(value, "timezone")
+    except InputError as exc:
+        raise ValueError(str(exc).removeprefix("timezone: ")) from None
+    return value.strip()
 
 
 def _nuclide(value: Any) -> Nuclide:
@@ -126,6 +152,7 @@ def _nuclide(value: Any) -> Nuclide:
 PositiveFloat = Annotated[float, BeforeValidator(_number), Field(gt=0, allow_inf_nan=False)]
 NonNegativeFloat = Annotated[float, BeforeValidator(_number), Field(ge=0, allow_inf_nan=False)]
 AwareTime = Annotated[datetime, BeforeValidator(_aware_time)]
+ZoneName = Annotated[str, BeforeValidator(_zone_name)]
 NuclideField = Annotated[InstanceOf[Nuclide], BeforeValidator(_nuclide), PlainSerializer(lambda n: n.name, return_type=str)]
 
 
@@ -199,10 +226,27 @@ class _SyringeForm(_ActivityEntry):
     residual_mbq: NonNegativeFloat | None = None
     residual_measured_at: AwareTime | None = None
     volume_ml: PositiveFloat | None = None
+    #: standard uncertainty of ``volume_ml`` (mL), optional
+    volume_u_ml: NonNegativeFloat | None = None
+
+    @model_validator(mode="after")
+    def _volume_u_needs_volume(self) -> "_SyringeForm":
+        if self.volume_u_ml is not None and self.volume_ml is None:
+            raise ValueError("volume_u_ml is the uncertainty of volume_ml, which is not given")
+        return self
 
 
 class _RatioForm(_ActivityEntry):
     ratio_to_background: PositiveFloat | None = None
+
+
+class FillUncertaintyInputs(_Strict):
+    """Standard uncertainties (k = 1) of the fill record's inputs; see the module docstring."""
+
+    activity_pct: NonNegativeFloat | None = None
+    calibration_pct: NonNegativeFloat | None = None
+    residual_mbq: NonNegativeFloat | None = None
+    ratio_pct: NonNegativeFloat | None = None
 
 
 class BackgroundFill(_ConcentrationForm, _SyringeForm):
@@ -235,6 +279,8 @@ class FillRecord(_Strict):
     site: str | None = None
     phantom: str | None = None
     operator_note: str | None = None
+    timezone: ZoneName | None = None
+    uncertainty: FillUncertaintyInputs | None = None
 
     _source: str = PrivateAttr(default="fill record")
 
@@ -377,12 +423,17 @@ class FillRecord(_Strict):
         return self._at_scan("background", self.background, conc, ref_time, at)
 
     def _at_scan(
-        self, key: str, entry: "_ActivityEntry", conc: float, ref_time: datetime, at: datetime, target: str = "the scan time"
+        self, key: str, entry: "_ActivityEntry", conc: float, ref_time: datetime, at: datetime, target: str = "the scan time",
+        imaged: bool = True,
     ) -> float:
-        """``conc`` (Bq/mL at ``ref_time``) decayed to ``at``; refusals name the file and field."""
+        """``conc`` (Bq/mL at ``ref_time``) decayed to ``at``; refusals name the file and field.
+
+        With ``imaged``, the concentration the image shows: for a parent imaged through its
+        daughter (Ge-68/Ga-68) times :attr:`~phantometry.nuclides.Nuclide.imaged_activity_ratio`.
+        """
         time_key = "residual_measured_at" if entry.form == "syringe" else "measured_at"
         try:
-            value = conc * decay_factor(self.nuclide, ref_time, at)
+            value = conc * decay_factor(self.nuclide, ref_time, at) * (self.nuclide.imaged_activity_ratio if imaged else 1.0)
         except DecayGapError as exc:
             raise FillRecordError(f"{self._source}: {key}.{time_key} to {target}: {exc}") from None
         low, high = USABLE_BQ_ML
@@ -437,7 +488,134 @@ class FillRecord(_Strict):
             return float(entry.ratio_to_background)  # type: ignore[attr-defined]
         key = self._entry_key(name)
         bg, bg_time = self.background.reference_bq_ml(self.nuclide)  # type: ignore[misc]
-        return ref[0] / self._at_scan("background", self.background, bg, bg_time, ref[1], target=f"{key}'s time")
+        return ref[0] / self._at_scan("background", self.background, bg, bg_time, ref[1], target=f"{key}'s time", imaged=False)
+
+    # ------------------------------------------------------------------ times
+    def times(self) -> list[tuple[str, datetime]]:
+        """Every time the record holds, as (field path, time), in file order."""
+        out: list[tuple[str, datetime]] = []
+        entries = [(key, getattr(self, key)) for key in ("background", "spheres", "rods")]
+        entries += [(f"inserts.{name}", entry) for name, entry in (self.inserts or {}).items()]
+        for key, entry in entries:
+            if entry is None:
+                continue
+            for field_name in ("measured_at", "syringe_measured_at", "residual_measured_at"):
+                t = getattr(entry, field_name, None)
+                if t is not None:
+                    out.append((f"{key}.{field_name}", t))
+        return out
+
+    # ------------------------------------------------------------------ uncertainties
+    @property
+    def has_uncertainties(self) -> bool:
+        """True when the record states any input uncertainty (``uncertainty:`` or ``volume_u_ml``)."""
+        return bool(self.uncertainty is not None or any(u for _, _, u, _ in self._uncertain_inputs()))
+
+    def _uncertain_inputs(self) -> list[tuple[str, str, float, bool]]:
+        """(entry key, field, standard uncertainty in the field's unit, is a reading) of every input."""
+        u = self.uncertainty or FillUncertaintyInputs()
+        rel = (u.activity_pct or 0.0) / 100.0
+        out: list[tuple[str, str, float, bool]] = []
+        entries = [(key, getattr(self, key)) for key in ("background", "spheres", "rods")]
+        entries += [(f"inserts.{name}", entry) for name, entry in (self.inserts or {}).items()]
+        for key, entry in entries:
+            if entry is None:
+                continue
+            form = entry.form
+            if form == "concentration":
+                out.append((key, "concentration_kbq_ml", rel * entry.concentration_kbq_ml, True))
+            elif form == "ratio":
+                out.append((key, "ratio_to_background", (u.ratio_pct or 0.0) / 100.0 * entry.ratio_to_background, False))
+            else:
+                out.append((key, "syringe_mbq", rel * entry.syringe_mbq, True))
+                u_res = u.residual_mbq if u.residual_mbq is not None else rel * entry.residual_mbq
+                out.append((key, "residual_mbq", u_res, True))
+                out.append((key, "volume_ml", entry.volume_u_ml or 0.0, False))
+        return out
+
+    def _perturbed(self, deltas: dict[tuple[str, str], float], calibration: float = 1.0) -> "FillRecord":
+        """A copy with inputs moved by ``deltas`` (in their units) and every reading scaled by
+        ``calibration`` (no validation: a step of the propagation, not a record)."""
+        readings = {(k, f) for k, f, _, is_reading in self._uncertain_inputs() if is_reading}
+        updates: dict[str, Any] = {}
+        inserts = dict(self.inserts or {})
+        keys = {k for k, _, _, _ in self._uncertain_inputs()}
+        for key in keys:
+            entry = inserts[key.split(".", 1)[1]] if key.startswith("inserts.") else getattr(self, key)
+            change = {}
+            for (k, f), d in deltas.items():
+                if k == key:
+                    change[f] = getattr(entry, f) + d
+            for k, f in readings:
+                if k == key:
+                    change[f] = change.get(f, getattr(entry, f)) * calibration
+            if not change:
+                continue
+            new_entry = entry.model_copy(update=change)
+            if key.startswith("inserts."):
+                inserts[key.split(".", 1)[1]] = new_entry
+            else:
+                updates[key] = new_entry
+        if self.inserts is not None:
+            updates["inserts"] = inserts
+        copy = self.model_copy(update=updates)
+        copy._source = self._source
+        return copy
+
+    def uncertainties(self, at: datetime, names: list[str]) -> "FillUncertainty":
+        """Relative standard uncertainties of the true concentrations at ``at`` and standard
+        uncertainties of the activity ratios of the inserts ``names``.
+
+        Law of propagation of uncertainty for uncorrelated inputs (GUM, JCGM 100:2008, eq. 10)
+        with the calibration as one more input common to every reading; sensitivity
+        coefficients by central differences of the record's own rules (steps of 1/1000 of each
+        standard uncertainty, where the model is linear to far better than 1e-6).
+        """
+        inputs = [(k, f, u) for k, f, u, _ in self._uncertain_inputs() if u > 0]
+        u_cal = ((self.uncertainty.calibration_pct or 0.0) / 100.0) if self.uncertainty else 0.0
+        hot = [n for n in names if not self.is_cold(n)]
+
+        def outputs(record: "FillRecord") -> np.ndarray:
+            vals = [record.background_bq_ml(at)]
+            vals += [record.insert_bq_ml(n, at) for n in hot]
+            vals += [record.activity_ratio(n) for n in hot]
+            return np.array(vals, float)
+
+        y0 = outputs(self)
+        var = np.zeros_like(y0)
+        steps: list[tuple[dict[tuple[str, str], float], float, float]] = [({(k, f): 1e-3 * u}, 1.0, u) for k, f, u in inputs]
+        for delta, _, u in steps:
+            (key, val), = delta.items()
+            up = outputs(self._perturbed({key: val}))
+            down = outputs(self._perturbed({key: -val}))
+            var += ((up - down) / (2e-3 * u) * u) ** 2
+        if u_cal > 0:
+            h = 1e-3 * u_cal
+            up = outputs(self._perturbed({}, 1.0 + h))
+            down = outputs(self._perturbed({}, 1.0 - h))
+            var += ((up - down) / (2 * h) * u_cal) ** 2
+        sd = np.sqrt(var)
+        n = len(hot)
+        rel_bg = float(sd[0] / y0[0]) if y0[0] > 0 else 0.0
+        rel_ins = {name: float(sd[1 + i] / y0[1 + i]) if y0[1 + i] > 0 else 0.0 for i, name in enumerate(hot)}
+        u_ratio = {name: float(sd[1 + n + i]) for i, name in enumerate(hot)}
+        return FillUncertainty(rel_bg, rel_ins, u_ratio)
+
+
+@dataclass(frozen=True)
+class FillUncertainty:
+    """What the fill record's stated uncertainties mean for the truth (:meth:`FillRecord.uncertainties`).
+
+    Attributes
+    ----------
+    background_rel : relative standard uncertainty of the true background concentration.
+    insert_rel : insert -> relative standard uncertainty of its true concentration (hot inserts).
+    ratio : insert -> standard uncertainty of its activity ratio a_H/a_B (hot inserts).
+    """
+
+    background_rel: float
+    insert_rel: dict[str, float]
+    ratio: dict[str, float]
 
 
 # ---------------------------------------------------------------------------- errors
@@ -474,27 +652,26 @@ def _model_at(loc: tuple[Any, ...]) -> type[BaseModel] | None:
 
 def _flatten(exc: ValidationError) -> str:
     """Pydantic's errors as ``field.path: problem; ...`` on one line."""
-    parts = []
-    for err in exc.errors():
-        loc = tuple(err["loc"])
-        path = ".".join(str(p) for p in loc) or "(top level)"
-        kind = err["type"]
-        if kind == "extra_forbidden":
+
+    def place(loc: tuple) -> str | None:
+        return ".".join(str(p) for p in loc) if loc else None  # record-level checks name their own fields
+
+    def problem(e: dict[str, Any]) -> str | None:
+        loc = tuple(e["loc"])
+        if e["type"] == "extra_forbidden":
             model = _model_at(loc)
             allowed = f"; allowed here: {', '.join(model.model_fields)}" if model else ""
-            problem = f"unknown key {loc[-1]!r}{allowed}"
-        elif kind == "missing":
-            problem = "missing (required)"
-        elif kind in ("greater_than", "greater_than_equal"):
-            bound = "positive" if kind == "greater_than" else "zero or more"
-            problem = f"must be {bound}, got {err.get('input')!r}"
-        else:
-            problem = err["msg"].removeprefix("Value error, ")
-        if not loc:  # record-level checks name their own fields
-            parts.append(problem)
-        else:
-            parts.append(f"{path}: {problem}")
-    return "; ".join(parts)
+            return f"unknown key {loc[-1]!r}{allowed}"
+        if e["type"] == "missing":
+            return "missing (required)"
+        if e["type"] in ("greater_than", "greater_than_equal"):
+            bound = "positive" if e["type"] == "greater_than" else "zero or more"
+            return f"must be {bound}, got {e.get('input')!r}"
+        if e["type"] == "literal_error":
+            return e["msg"]
+        return None
+
+    return "; ".join(validation_problems(exc, place=place, problem=problem))
 
 
 # ---------------------------------------------------------------------------- files

@@ -74,6 +74,7 @@ from .phantoms import kind_of, kinds, load_template
 from .phantoms.base import Analysis, Reread
 from .postfilter import FWHM_PER_SIGMA, PostFilter, check_filterable, filtered_noise
 from .results import CAUTION, Measurement, _fmt, to_json
+from .sitetime import site_clock
 from .templates import Template
 from .threads import fft_workers, threads
 from .volume import Volume
@@ -691,14 +692,17 @@ def harmonise_volume(
     overrides: dict[str, np.ndarray] | None = None,
     where: str | None = None,
     n_draws: int | None = None,
+    timezone: str | None = None,
 ) -> Harmonisation:
     """Analyse a loaded volume once (no uncertainties) and sweep the filters on it
-    (:func:`harmonise_analysis`); the unfiltered analysis is judged by the bands too."""
+    (:func:`harmonise_analysis`); the unfiltered analysis is judged by the bands too.
+    ``timezone``: the site's zone for a volume loaded without one, as
+    :func:`phantometry.measure.measure_volume` takes it."""
     filter_grid(max_fwhm_mm, step_mm)
     _check_kind(template)
     sets = [load_band_set(b) for b in band_sets]
     check_filterable(volume, where or volume.source or "image")
-    analysis = measure_volume(volume, template, fill, overrides=overrides, where=where, uncertainties=False)
+    analysis = measure_volume(volume, template, fill, overrides=overrides, where=where, uncertainties=False, timezone=timezone)
     if sets:
         judge(analysis, sets)
     return harmonise_analysis(analysis, sets, max_fwhm_mm=max_fwhm_mm, step_mm=step_mm, n_draws=n_draws)
@@ -964,8 +968,12 @@ def harmonise(
     step_mm: float = DEFAULT_STEP_MM,
     write_filtered: bool = False,
     overwrite: bool = False,
+    timezone: str | None = None,
 ) -> Harmonisation:
     """Find the harmonising filter of a phantom scan from files and write ``out/``.
+
+    ``timezone`` (``--timezone``, an IANA name) is the site's zone, in which scanner times
+    written without a UTC offset are read, as :func:`phantometry.measure.measure` reads them.
 
     ``out`` follows the rules of :mod:`phantometry.outputs` (the same as ``measure``; marker
     kind ``harmonise``), checked before anything is loaded. The folder holds
@@ -994,15 +1002,18 @@ def harmonise(
     _check_kind(tpl)
     fill_record = load_fill_record(fill)
     fill_record.check_inserts(tpl)
+    clock = site_clock(fill_record, timezone)
     overrides = parse_centre_overrides(centres, tpl)
     known = kind_of(tpl).known_metrics(tpl)
     sets = [load_band_set(b) for b in band_list]
     for bs in sets:
         check_band_set(bs, tpl.name, known)
-    volume = load_image(inputs, series=series, units=units, acquired_at=acquired_at, nuclide=nuclide, calibration_factor=calibration_factor)
+    volume = load_image(inputs, series=series, units=units, acquired_at=acquired_at, nuclide=nuclide, calibration_factor=calibration_factor,
+                        site_clock=clock)
     where = str(inputs if isinstance(inputs, (str, os.PathLike)) else ", ".join(map(str, inputs)))
     check_filterable(volume, where)
-    h = harmonise_volume(volume, tpl, fill_record, sets, max_fwhm_mm=max_fwhm_mm, step_mm=step_mm, overrides=overrides, where=where)
+    h = harmonise_volume(volume, tpl, fill_record, sets, max_fwhm_mm=max_fwhm_mm, step_mm=step_mm, overrides=overrides, where=where,
+                         timezone=timezone)
     fmt = "nifti" if (volume.source or "").lower().endswith((".nii", ".nii.gz")) else "dicom"
     with output_folder(out, KIND_HARMONISE, inputs=input_paths, overwrite=overwrite) as staging:
         if write_filtered:

@@ -22,7 +22,9 @@ from .errors import InputError, PhantomNotFound, PhantometryError
 from .fill import FillRecord, load_fill_record
 from .phantoms import kind_of, load_template
 from .phantoms.base import Analysis, AnalysisSettings
+from .protocol import protocol_checks
 from .results import CAUTION, measurements_csv, to_json
+from .sitetime import resolve_volume_time, site_clock
 from .templates import Template
 from .volume import Volume
 
@@ -42,6 +44,7 @@ def measure_volume(
     uncertainties: bool = True,
     resolution: bool = True,
     variance_power: float = 1.0,
+    timezone: str | None = None,
 ) -> Analysis:
     """Locate the phantom and compute every metric its template's analysis kind defines.
 
@@ -58,6 +61,14 @@ def measure_volume(
     uncertainties : estimate the noise and give every metric it can its standard uncertainty.
     resolution : fit the effective resolution (kinds with a model for it).
     variance_power : ``p`` of the noise level law ``var ~ level^p`` (1: Poisson-like).
+    timezone : IANA zone of the site (``--timezone``) for a volume loaded without one
+        (time basis ``unresolved``); else the fill record's ``timezone:`` or its offset
+        (:mod:`phantometry.sitetime`).
+
+    Before the analysis the site time is settled and the fill record checked against the scan
+    (a fill time after the scan start is refused); after it, the fill record's stated
+    uncertainties fill the rows' ``uncertainty_fill`` (:func:`apply_fill_uncertainty`) and
+    the protocol checks are made (:mod:`phantometry.protocol`).
 
     Returns
     -------
@@ -66,12 +77,76 @@ def measure_volume(
     where = where or volume.source or "image"
     fill.check_inserts(template)
     kind = kind_of(template)
+    volume, time_warnings = settle_site_time(volume, fill, timezone, where)
     settings = AnalysisSettings(uncertainties=uncertainties, resolution=resolution, variance_power=variance_power)
     analysis = kind.analyse(volume, template, fill, overrides=overrides, where=where, settings=settings)
-    # the loader's warnings about the image (Volume.warnings) come first
-    analysis.warnings[:0] = [w for w in volume.warnings if w not in analysis.warnings]
+    # the loader's warnings about the image (Volume.warnings) and the clock come first
+    analysis.warnings[:0] = [w for w in (*volume.warnings, *time_warnings) if w not in analysis.warnings]
+    apply_fill_uncertainty(analysis)
+    analysis.protocol_checks = protocol_checks(analysis)
     if bands:
         judge(analysis, [load_band_set(b) for b in bands])
+    return analysis
+
+
+def settle_site_time(volume: Volume, fill: FillRecord, timezone: str | None, where: str) -> tuple[Volume, list[str]]:
+    """The volume with its times in the site's zone, and what the user must know about them.
+
+    A volume loaded without a zone (basis ``unresolved``) gets the site's zone
+    (:func:`phantometry.sitetime.site_clock`); an inferred basis (the fill record's offset)
+    is warned about; a header offset that disagrees with a given zone at the scan time is
+    warned about; a fill time after the scan start is refused and a long gap for a
+    short-lived nuclide warned about (:func:`phantometry.sitetime.check_fill_against_scan`).
+    """
+    from .sitetime import BASIS_FILL_OFFSET, BASIS_HEADER, BASIS_UNRESOLVED, check_fill_against_scan, offset_text, site_clock
+
+    warns: list[str] = []
+    clock = site_clock(fill, timezone) if (volume.time_basis in (BASIS_UNRESOLVED, BASIS_FILL_OFFSET, BASIS_HEADER)) else None
+    if volume.time_basis == BASIS_UNRESOLVED and clock is not None:
+        volume = resolve_volume_time(volume, clock)
+    if volume.time_basis == BASIS_FILL_OFFSET and clock is not None and clock.note:
+        warns.append(f"time basis inferred: {clock.note}")
+    if volume.time_basis == BASIS_HEADER and clock is not None and not clock.inferred and volume.acquired_at is not None:
+        try:
+            local = volume.acquired_at.astimezone(clock.zone)
+        except OverflowError:  # a time at the calendar's end: the fill checks below refuse it
+            local = volume.acquired_at
+        if local.utcoffset() != volume.acquired_at.utcoffset():
+            warns.append(
+                f"the image's TimezoneOffsetFromUTC ({offset_text(volume.acquired_at)}) differs from the given zone "
+                f"{clock.label} ({offset_text(local)} at the scan time); the image's own offset is used"
+            )
+    warns += check_fill_against_scan(fill, volume, where)
+    return volume, warns
+
+
+def apply_fill_uncertainty(analysis: Analysis) -> Analysis:
+    """Fill every fill-dependent row's ``uncertainty_fill`` (in place) from the fill record's
+    stated input uncertainties (:meth:`phantometry.fill.FillRecord.uncertainties`) and the
+    row's sensitivity (:meth:`phantometry.phantoms.base.Analysis.fill_sensitivity`).
+
+    Nothing changes when the fill record states no uncertainty.
+    """
+    fill = analysis.fill
+    if not fill.has_uncertainties or analysis.volume.acquired_at is None:
+        return analysis
+    names = [n for n in analysis.true_insert_bq_ml if analysis.true_insert_bq_ml[n] > 0]
+    fu = fill.uncertainties(analysis.volume.acquired_at, names)
+    analysis.fill_uncertainty = fu
+    for i, row in enumerate(analysis.rows):
+        sens = analysis.fill_sensitivity(row)
+        if sens is None:
+            continue
+        what, name, factor = sens
+        if what == "background":
+            u = factor * fu.background_rel
+        elif what == "insert" and name in fu.insert_rel:
+            u = factor * fu.insert_rel[name]
+        elif what == "ratio" and name in fu.ratio:
+            u = factor * fu.ratio[name]
+        else:
+            continue
+        analysis.rows[i] = dataclasses.replace(row, uncertainty_fill=float(u))
     return analysis
 
 
@@ -85,6 +160,7 @@ def judge(analysis: Analysis, band_sets: Sequence[BandSet]) -> Analysis:
     for bs in band_sets:
         check_band_set(bs, analysis.template.name, known)
     rows, warns = apply_bands(analysis.rows, band_sets, fill=analysis.fill)
+    analysis.protocol_checks = protocol_checks(analysis, band_sets)
     doubtful = {key: c for c in analysis.placement_checks if not c.confirmed for key in c.rows}
     for i, r in enumerate(rows):
         check = doubtful.get((r.roi, r.metric))
@@ -112,12 +188,27 @@ def analysis_json(analysis: Analysis) -> dict[str, Any]:
                      "analysis_kind": analysis.template.analysis.kind},
         "fill_record": analysis.fill.to_dict(),
         "true_concentrations_bq_ml": {"background": analysis.true_background_bq_ml, **analysis.true_insert_bq_ml},
+        "fill_uncertainty": _fill_uncertainty_json(analysis),
+        "protocol_checks": [c.as_dict() for c in analysis.protocol_checks],
         "localisation": analysis.placement.as_dict(),
         "placement_quality": [c.as_dict() for c in analysis.placement_checks],
         "warnings": analysis.warnings,
         **analysis.json_extras(),
         "bands": [{k: v for k, v in b.summary().items() if k != "entries"} for b in analysis.band_sets],
         "measurements": [r.as_dict() for r in analysis.rows],
+    }
+
+
+def _fill_uncertainty_json(analysis: Analysis) -> dict[str, Any] | None:
+    """Relative standard uncertainties of the true concentrations and standard uncertainties
+    of the activity ratios from the fill record's inputs (None when it states none)."""
+    fu = analysis.fill_uncertainty
+    if fu is None:
+        return None
+    return {
+        "true_concentration_relative": {"background": fu.background_rel, **fu.insert_rel},
+        "activity_ratio": fu.ratio,
+        "method": "GUM law of propagation (JCGM 100:2008) of the fill record's stated standard uncertainties",
     }
 
 
@@ -172,8 +263,13 @@ def load_image(
     acquired_at: Any = None,
     nuclide: str | None = None,
     calibration_factor: float | None = None,
+    site_clock: Any = None,
 ) -> Volume:
-    """Load a DICOM series (file, folder or list) or a NIfTI file, whichever the input is."""
+    """Load a DICOM series (file, folder or list) or a NIfTI file, whichever the input is.
+
+    ``site_clock`` (:class:`phantometry.sitetime.SiteClock`) is the zone of times written
+    without an offset.
+    """
     paths = [Path(p) for p in ([inputs] if isinstance(inputs, (str, os.PathLike)) else inputs)]
     if not paths:
         raise InputError("no input given: name a DICOM folder or file, or a NIfTI file")
@@ -183,14 +279,15 @@ def load_image(
     if len(paths) == 1 and paths[0].is_file() and paths[0].name.lower().endswith((".nii", ".nii.gz")):
         from .io.nifti import load_nifti
 
-        return load_nifti(paths[0], units=units, acquired_at=acquired_at, nuclide=nuclide, calibration_factor=calibration_factor)
+        return load_nifti(paths[0], units=units, acquired_at=acquired_at, nuclide=nuclide, calibration_factor=calibration_factor,
+                          site_clock=site_clock)
     from .io.dicom import load_dicom
+    from .sitetime import BASIS_GIVEN_TIME, offset_text
 
-    vol = load_dicom(paths if len(paths) > 1 else paths[0], series=series, calibration_factor=calibration_factor)
+    vol = load_dicom(paths if len(paths) > 1 else paths[0], series=series, calibration_factor=calibration_factor, site_clock=site_clock)
     if acquired_at is not None:
-        import dataclasses
-
-        vol = dataclasses.replace(vol, acquired_at=acquired_at)
+        vol = dataclasses.replace(vol, acquired_at=acquired_at, time_basis=BASIS_GIVEN_TIME,
+                                  time_zone=f"{offset_text(acquired_at)} (--acquired-at)")
     return vol
 
 
@@ -233,8 +330,14 @@ def measure(
     seg: bool = False,
     bands: Sequence[BandSet | str | os.PathLike] | None = None,
     overwrite: bool = False,
+    record: Any = None,
+    timezone: str | None = None,
 ) -> Analysis:
     """Measure a phantom scan from files and write ``out/`` (CSV, JSON, pictures).
+
+    ``timezone`` (``--timezone``, an IANA name) is the site's zone, in which scanner times
+    written without a UTC offset are read (:mod:`phantometry.sitetime`); by default the fill
+    record's ``timezone:``, else its own offset (warned).
 
     ``report=True`` adds ``report.html`` (:mod:`phantometry.report`); ``seg=True`` adds
     ``rois_seg.dcm``, the placed ROIs as a DICOM Segmentation (:mod:`phantometry.seg`; DICOM
@@ -242,6 +345,10 @@ def measure(
 
     ``bands`` (names or files of acceptance band sets, :mod:`phantometry.bands`) fill the
     rows' verdicts; they are loaded and checked against the template before measuring.
+
+    ``record`` (a :class:`phantometry.ledger.measure_record.RecordRequest`) records the
+    analysis in the trend ledger once the folder is written; a duplicate is refused before the
+    image is read and before anything is written.
 
     The folder appears only when everything succeeded; if localisation fails, a diagnostic
     picture is written to ``out.failed.png`` beside it (unless a file phantometry did not
@@ -268,6 +375,7 @@ def measure(
     kind = kind_of(tpl)
     fill_record = load_fill_record(fill)
     fill_record.check_inserts(tpl)
+    clock = site_clock(fill_record, timezone)
     overrides = parse_centre_overrides(centres, tpl)
     band_sets: list[BandSet] = []
     if bands:
@@ -275,15 +383,20 @@ def measure(
         band_sets = [load_band_set(b) for b in bands]
         for b in band_sets:
             check_band_set(b, tpl.name, known)
-    volume = load_image(inputs, series=series, units=units, acquired_at=acquired_at, nuclide=nuclide, calibration_factor=calibration_factor)
+    if record is not None:  # a duplicate is refused before the pixels are read
+        record.check_inputs(inputs, series=series, acquired_at=acquired_at, template=tpl.name, fill=fill_record)
+    volume = load_image(inputs, series=series, units=units, acquired_at=acquired_at, nuclide=nuclide, calibration_factor=calibration_factor,
+                        site_clock=clock)
     where = str(inputs if isinstance(inputs, (str, os.PathLike)) else ", ".join(map(str, inputs)))
+    if record is not None:
+        record.check_volume(volume, template=tpl.name, fill=fill_record)
     if seg:
         from .seg import check_seg_request
 
         check_seg_request(volume, tpl, kind, where)
     out = Path(out)
     try:
-        analysis = measure_volume(volume, tpl, fill_record, overrides=overrides, where=where)
+        analysis = measure_volume(volume, tpl, fill_record, overrides=overrides, where=where, timezone=timezone)
     except PhantomNotFound:
         try:
             from .figures import diagnostic_picture
@@ -300,7 +413,9 @@ def measure(
         write_results(analysis, staging.path, overlay=overlay, pictures=overlay, report=report, seg=seg,
                       source_paths=[inputs] if isinstance(inputs, (str, os.PathLike)) else list(inputs))
     analysis.written = staging.written
+    if record is not None:
+        record.record(analysis)
     return analysis
 
 
-__all__ = ["measure", "measure_volume", "judge", "write_results", "load_image", "analysis_json", "parse_centre_overrides", "PhantometryError"]
+__all__ = ["measure", "measure_volume", "judge", "settle_site_time", "apply_fill_uncertainty", "write_results", "load_image", "analysis_json", "parse_centre_overrides", "PhantometryError"]

@@ -21,6 +21,10 @@ from typing import TYPE_CHECKING, Any, Sequence
 from .results import CSV_COLUMNS, Measurement, _fmt
 from .volume import Reconstruction
 
+#: Columns of comparison.csv: measurements.csv's up to ``note``, then ``label``, then the
+#: measurement columns added after ``label`` existed (columns are only ever appended).
+COMPARISON_COLUMNS = [*CSV_COLUMNS[: CSV_COLUMNS.index("note") + 1], "label", *CSV_COLUMNS[CSV_COLUMNS.index("note") + 1 :]]
+
 if TYPE_CHECKING:  # pragma: no cover
     from .outputs import WrittenFolder
     from .templates import Template
@@ -393,11 +397,11 @@ def comparison_csv(outcomes: Sequence[SeriesOutcome]) -> str:
     """``comparison.csv``: the measurement columns plus ``label``, every measured series."""
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
-    w.writerow([*CSV_COLUMNS, "label"])
+    w.writerow(COMPARISON_COLUMNS)
     for o in outcomes:
         for r in o.rows:
             d = r.as_dict()
-            w.writerow([*(_fmt(d[c]) for c in CSV_COLUMNS), o.label])
+            w.writerow([o.label if c == "label" else _fmt(d[c]) for c in COMPARISON_COLUMNS])
     return buf.getvalue()
 
 

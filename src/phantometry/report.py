@@ -178,7 +178,7 @@ def _verdict_summary(rows: Sequence[Measurement]) -> str:
 
 
 def _measurements_table(rows: Sequence[Measurement], table_id: str = "measurements") -> str:
-    head = ("<thead><tr><th>ROI</th><th>metric</th><th class=\"num\">value &plusmn; u</th><th>unit</th>"
+    head = ("<thead><tr><th>ROI</th><th>metric</th><th class=\"num\">value &plusmn; u</th><th class=\"num\">u (fill)</th><th>unit</th>"
             "<th>band</th><th class=\"num\">limits</th><th>verdict</th><th>note</th></tr></thead>")
     body = []
     for r in rows:
@@ -190,9 +190,31 @@ def _measurements_table(rows: Sequence[Measurement], table_id: str = "measuremen
             limits = f"{lo} &ndash; {hi}"
         body.append(
             f"<tr><td>{esc(r.roi)}</td><td>{esc(r.metric)}</td><td class=\"num\">{format_value(r.value, r.unit, r.uncertainty)}</td>"
-            f"<td>{esc(r.unit)}</td><td>{esc(r.band)}</td><td class=\"num\">{limits}</td>{verdict_cell(r.verdict)}<td>{esc(r.note)}</td></tr>"
+            f"<td class=\"num\">{_fill_u(r)}</td><td>{esc(r.unit)}</td><td>{esc(r.band)}</td><td class=\"num\">{limits}</td>{verdict_cell(r.verdict)}<td>{esc(r.note)}</td></tr>"
         )
-    return f'<table id="{esc(table_id)}"><caption>Every (ROI, metric) row, as in measurements.csv; u is the standard uncertainty.</caption>{head}<tbody>{"".join(body)}</tbody></table>'
+    return f'<table id="{esc(table_id)}"><caption>Every (ROI, metric) row, as in measurements.csv; u is the standard uncertainty from the image, u (fill) the one from the fill record\'s stated uncertainties (verdicts are on the value).</caption>{head}<tbody>{"".join(body)}</tbody></table>'
+
+
+def _fill_u(row: Measurement) -> str:
+    """The row's standard uncertainty from the fill record, formatted like its value ('' if none)."""
+    u = getattr(row, "uncertainty_fill", None)
+    if not _finite(u):
+        return ""
+    return f"{u:.{_decimals(row.unit, u)}f}"
+
+
+def _protocol_table(checks: Sequence[Any]) -> str:
+    """The protocol checks (:mod:`phantometry.protocol`) as a table; '' when there are none."""
+    if not checks:
+        return ""
+    body = "".join(
+        f'<tr><td>{esc(c.check)}</td><td class="{"v-fail" if c.status == "warning" else ""}">{esc(c.status)}</td>'
+        f"<td>{esc(c.message)}</td><td>{esc(c.source)}</td></tr>"
+        for c in checks
+    )
+    return ('<section id="protocol"><h2>Protocol checks</h2><table id="protocol-checks"><caption>Acquisition conditions against '
+            "the standard or band set (information and warnings, never errors).</caption><thead><tr><th>check</th><th>status</th>"
+            f"<th>what</th><th>recommended by</th></tr></thead><tbody>{body}</tbody></table></section>")
 
 
 def _grid_table(rows: Sequence[Measurement], grid: "ResultGrid") -> str:
@@ -215,7 +237,8 @@ def _grid_table(rows: Sequence[Measurement], grid: "ResultGrid") -> str:
             verdicts.append(v)
             mark = " &#10007;" if v == "fail" else ""
             cls = ' v-fail' if v == "fail" else ""
-            cells.append(f'<td class="num{cls}">{format_value(rs[0].value, rs[0].unit, rs[0].uncertainty)}{mark}</td>')
+            fill_u = f' <span class="fill-u">(fill &plusmn; {_fill_u(rs[0])})</span>' if _finite(rs[0].uncertainty_fill) else ""
+            cells.append(f'<td class="num{cls}">{format_value(rs[0].value, rs[0].unit, rs[0].uncertainty)}{fill_u}{mark}</td>')
         body.append(f"<tr><td>{esc(roi)}</td>" + "".join(f"<td>{esc(d)}</td>" for d in descriptors)
                     + f"{''.join(cells)}{verdict_cell(_worst(verdicts))}</tr>")
     return f'<table id="{esc(grid.table_id)}"><caption>{grid.caption}</caption>{head}<tbody>{"".join(body)}</tbody></table>'
@@ -278,6 +301,10 @@ def measure_report_html(analysis: "Analysis", *, folder: str | os.PathLike | Non
         ("station", vol.scanner.station),
         ("reconstruction", rec.label()),
         ("reference time", vol.acquired_at.isoformat() if vol.acquired_at else None),
+        ("scan start", vol.scan_start.isoformat() if getattr(vol, "scan_start", None) else None),
+        ("time basis", (f"{vol.time_basis}, {vol.time_zone}" if vol.time_zone else vol.time_basis) if getattr(vol, "time_basis", None) else None),
+        ("decay reference", getattr(vol, "decay_reference", None)),
+        ("frame duration", f"{vol.frame_duration_s / 60:.3g} min" if getattr(vol, "frame_duration_s", None) else None),
         ("nuclide", vol.nuclide),
         ("source units", vol.original_units),
         ("matrix (z, y, x)", " x ".join(str(n) for n in vol.shape)),
@@ -293,6 +320,8 @@ def measure_report_html(analysis: "Analysis", *, folder: str | os.PathLike | Non
         ("background at scan time", f"{analysis.true_background_bq_ml / 1000:.3f} kBq/mL" if _finite(getattr(analysis, "true_background_bq_ml", None)) else None),
         ("hot inserts : background", ratio),
         ("cold inserts", ", ".join(fill.cold) if fill.cold else "none"),
+        ("true background uncertainty", f"{100 * analysis.fill_uncertainty.background_rel:.2g} % (k = 1, from the fill record)"
+         if getattr(analysis, "fill_uncertainty", None) is not None else None),
         ("site", getattr(fill, "site", None)),
         ("phantom", getattr(fill, "phantom", None)),
         ("note", getattr(fill, "operator_note", None)),
@@ -322,6 +351,7 @@ def measure_report_html(analysis: "Analysis", *, folder: str | os.PathLike | Non
         '<section id="results"><h2>Results</h2>' + "".join(_grid_table(rows, g) for g in analysis.result_grids())
         + "".join(_figure(png, name, analysis.picture_captions().get(name) or _PICTURE_CAPTIONS.get(name, name)) for name, png in extra)
         + f"<h2>All measurements</h2>{_measurements_table(rows)}</section>"
+        + _protocol_table(getattr(analysis, "protocol_checks", []))
         + (f'<section id="warnings"><h2>Warnings</h2><ul class="warnings">{warn}</ul></section>' if warn else "")
     )
     title = "Phantom image-quality report"

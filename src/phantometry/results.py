@@ -29,6 +29,7 @@ CSV_COLUMNS = [
     "band_high",
     "verdict",
     "note",
+    "uncertainty_fill",
 ]
 
 CAUTION = (
@@ -51,7 +52,13 @@ class Measurement:
     unit : str
         ``%``, ``1`` (dimensionless ratio), ``Bq/mL``, ``mm``.
     uncertainty : float or None
-        Standard uncertainty in the unit of ``value``, where estimated.
+        Standard uncertainty in the unit of ``value`` from the image (noise, fit), where estimated.
+    uncertainty_fill : float or None
+        Standard uncertainty in the unit of ``value`` from the fill record's stated input
+        uncertainties (dose calibrator, residual, volume; GUM), for values that depend on the
+        fill record (recovery coefficients, activity recovery, percent contrast); None where
+        the value does not depend on it or the record states no uncertainty. Kept apart from
+        ``uncertainty``: verdicts are on the value alone.
     """
 
     series_uid: str | None
@@ -67,10 +74,11 @@ class Measurement:
     band_high: float | None = None
     verdict: str | None = None
     note: str | None = None
+    uncertainty_fill: float | None = None
 
     def as_dict(self) -> dict[str, Any]:
         d = asdict(self)
-        for k in ("value", "uncertainty", "band_low", "band_high"):
+        for k in ("value", "uncertainty", "band_low", "band_high", "uncertainty_fill"):
             v = d[k]
             if isinstance(v, float) and not math.isfinite(v):
                 d[k] = None
@@ -109,7 +117,7 @@ def measurement_from_record(rec: dict[str, Any]) -> Measurement:
     kw: dict[str, Any] = {}
     for f in fields(Measurement):
         raw = rec.get(f.name, "")
-        if f.name in ("value", "uncertainty", "band_low", "band_high"):
+        if f.name in ("value", "uncertainty", "band_low", "band_high", "uncertainty_fill"):
             kw[f.name] = float(raw) if raw not in ("", None) else (math.nan if f.name == "value" else None)
         else:
             kw[f.name] = raw if raw not in ("", None) else None

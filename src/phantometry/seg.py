@@ -19,8 +19,31 @@ gained and lost roughly balance). Circles sampled on a plane are discs one slice
 cylinder of the slice spacing along the phantom axis, centred on the plane), so their mask is
 the slice (or, for an oblique axis, the slices) the circle was sampled from.
 
-No patient identity is written: Patient Name, Patient ID and Patient Birth Date are left empty
-(the SEG is tied to the images by Study, Series, SOP Instance and Frame of Reference UIDs).
+What leaves the tool: the DICOM Basic Application Level Confidentiality Profile
+----------------------------------------------------------------------------------
+The SEG is written de-identified as DICOM PS3.15 Annex E describes, with the *Retain UIDs*
+option (the references to the source images are its purpose):
+
+* Only what referencing the source needs is taken from the source headers (:data:`SOURCE_KEPT`):
+  the Study, Series and SOP Instance UIDs of the source slices, the Frame of Reference UID,
+  the SOP Class, modality and the slice geometry (position, orientation, spacing, size). Nothing
+  else of the source reaches highdicom, so nothing else can be copied: no patient
+  characteristics, no physicians, no study description or ID, no institution, station or
+  device serial number (highdicom's acquisition-equipment item is not written at all).
+* The result is then checked against :data:`BASIC_PROFILE` (the attributes of PS3.15 Table
+  E.1-1 a SEG could carry, with the table's action): ``X`` attributes are removed, ``Z`` ones
+  are emptied (Patient Name, Patient ID, Birth Date, Sex, Study Date and Time, Accession
+  Number, Study ID, Referring Physician: type 2, so present and empty), at any depth, and so
+  is every private attribute. Attributes the table would give a dummy value (``D``) are not
+  written, except the SEG's own required ones: Device Serial Number is the dummy ``none`` and
+  Content Date/Time are the SEG's creation time (nothing of the source).
+* Patient Identity Removed is ``YES``; De-identification Method names the profile and the
+  option; De-identification Method Code Sequence holds ``(113100, DCM, "Basic Application
+  Confidentiality Profile")`` and ``(113110, DCM, "Retain UIDs Option")`` (DICOM PS3.16 CID
+  7050, as in pydicom's code dictionary ``pydicom.sr.codedict.codes.cid7050``).
+
+Patient's Sex is type 2 in the source: a phantom series often lacks it, and the SEG is written
+all the same (empty, as the profile asks anyway).
 """
 
 from __future__ import annotations
@@ -38,8 +61,74 @@ from .templates import Template
 from .volume import Volume
 
 
-#: Identity attributes blanked in the source headers before highdicom copies the patient module.
-_IDENTITY_KEYWORDS = ("PatientName", "PatientID", "PatientBirthDate", "OtherPatientIDs", "OtherPatientNames", "AccessionNumber")
+#: Source header attributes handed to highdicom: the references and the slice geometry only.
+SOURCE_KEPT = (
+    "SpecificCharacterSet", "SOPClassUID", "SOPInstanceUID", "StudyInstanceUID", "SeriesInstanceUID",
+    "FrameOfReferenceUID", "PositionReferenceIndicator", "Modality", "InstanceNumber", "ImagePositionPatient",
+    "ImageOrientationPatient", "PixelSpacing", "SliceThickness", "SpacingBetweenSlices", "Rows", "Columns",
+    "SamplesPerPixel", "PhotometricInterpretation", "BitsAllocated", "BitsStored", "HighBit", "PixelRepresentation",
+    "NumberOfFrames",
+)
+#: Type 2 attributes of the source highdicom reads: given to it empty (the profile's Z action).
+SOURCE_EMPTY = (
+    "PatientName", "PatientID", "PatientBirthDate", "PatientSex", "AccessionNumber", "StudyID", "StudyDate", "StudyTime",
+    "ReferringPhysicianName",
+)
+
+#: DICOM PS3.15 Annex E, Table E.1-1, Basic Profile column, for the attributes of the modules a
+#: SEG can carry (Patient, Clinical Trial, Study, Series, Equipment, Image, SOP Common): X remove,
+#: Z empty. ``D`` (dummy) and ``X/Z/D`` rows are removed (X) since no source value is copied;
+#: UIDs (``U``) are kept under the Retain UIDs Option. Actions as extracted from the standard in
+#: innolitics/dicom-standard (standard/confidentiality_profile_attributes.json).
+BASIC_PROFILE: dict[str, str] = {
+    # patient
+    "PatientName": "Z", "PatientID": "Z", "PatientBirthDate": "Z", "PatientSex": "Z", "IssuerOfPatientID": "X",
+    "PatientBirthTime": "X", "OtherPatientIDs": "X", "OtherPatientIDsSequence": "X", "OtherPatientNames": "X",
+    "PatientBirthName": "X", "PatientMotherBirthName": "X", "PatientAddress": "X", "PatientTelephoneNumbers": "X",
+    "PatientTelecomInformation": "X", "EthnicGroup": "X", "PatientComments": "X", "PatientAge": "X", "PatientSize": "X",
+    "PatientWeight": "X", "Occupation": "X", "AdditionalPatientHistory": "X", "PatientSexNeutered": "X", "MedicalAlerts": "X",
+    "Allergies": "X", "PregnancyStatus": "X", "SmokingStatus": "X", "PatientReligiousPreference": "X", "MilitaryRank": "X",
+    "BranchOfService": "X", "CountryOfResidence": "X", "RegionOfResidence": "X", "ResponsiblePerson": "X",
+    "ResponsibleOrganization": "X", "PatientInsurancePlanCodeSequence": "X", "PatientPrimaryLanguageCodeSequence": "X",
+    "ReferencedPatientSequence": "X", "ReferencedPatientPhotoSequence": "X", "MedicalRecordLocator": "X", "PatientState": "X",
+    "InsurancePlanIdentification": "X", "LastMenstrualDate": "X", "SpecialNeeds": "X",
+    # clinical trial subject / study / series
+    "ClinicalTrialSponsorName": "X", "ClinicalTrialProtocolID": "X", "ClinicalTrialProtocolName": "X",
+    "ClinicalTrialSiteID": "X", "ClinicalTrialSiteName": "X", "ClinicalTrialSubjectID": "X",
+    "ClinicalTrialSubjectReadingID": "X", "ClinicalTrialTimePointID": "X", "ClinicalTrialTimePointDescription": "X",
+    "ClinicalTrialCoordinatingCenterName": "X", "ClinicalTrialSeriesID": "X", "ClinicalTrialSeriesDescription": "X",
+    "ClinicalTrialProtocolEthicsCommitteeName": "X", "ClinicalTrialProtocolEthicsCommitteeApprovalNumber": "X",
+    # study
+    "StudyDate": "Z", "StudyTime": "Z", "AccessionNumber": "Z", "StudyID": "Z", "ReferringPhysicianName": "Z",
+    "ReferringPhysicianIdentificationSequence": "X", "ReferringPhysicianAddress": "X",
+    "ReferringPhysicianTelephoneNumbers": "X", "ConsultingPhysicianName": "X", "StudyDescription": "X",
+    "PhysiciansOfRecord": "X", "PhysiciansOfRecordIdentificationSequence": "X", "NameOfPhysiciansReadingStudy": "X",
+    "PhysiciansReadingStudyIdentificationSequence": "X", "RequestingPhysician": "X", "RequestingService": "X",
+    "ReasonForStudy": "X", "StudyComments": "X", "AdmittingDiagnosesDescription": "X", "AdmittingDiagnosesCodeSequence": "X",
+    "AdmissionID": "X", "IssuerOfAdmissionID": "X", "ReferencedStudySequence": "X", "ReasonForVisit": "X",
+    "ServiceEpisodeID": "X", "ServiceEpisodeDescription": "X", "RequestAttributesSequence": "X", "StudyIDIssuer": "X",
+    # series, acquisition, procedure step
+    "SeriesDate": "X", "SeriesTime": "X", "SeriesDescription": "X", "OperatorsName": "X", "OperatorIdentificationSequence": "X",
+    "PerformingPhysicianName": "X", "PerformingPhysicianIdentificationSequence": "X", "ProtocolName": "X",
+    "PerformedProcedureStepDescription": "X", "PerformedProcedureStepID": "X", "PerformedProcedureStepStartDate": "X",
+    "PerformedProcedureStepStartTime": "X", "PerformedProcedureStepEndDate": "X", "PerformedProcedureStepEndTime": "X",
+    "ReferencedPerformedProcedureStepSequence": "X", "CommentsOnThePerformedProcedureStep": "X", "AcquisitionDate": "X",
+    "AcquisitionTime": "X", "AcquisitionDateTime": "X", "AcquisitionComments": "X", "PerformedLocation": "X",
+    "ScheduledProcedureStepDescription": "X", "ScheduledProcedureStepID": "X", "RequestedProcedureDescription": "X",
+    "RequestedProcedureID": "X", "PlacerOrderNumberImagingServiceRequest": "X", "FillerOrderNumberImagingServiceRequest": "X",
+    # equipment
+    "InstitutionName": "X", "InstitutionAddress": "X", "InstitutionalDepartmentName": "X", "InstitutionCodeSequence": "X",
+    "InstitutionalDepartmentTypeCodeSequence": "X", "StationName": "X", "DeviceUID": "X", "GantryID": "X", "DetectorID": "X",
+    "UDISequence": "X", "UniqueDeviceIdentifier": "X", "ContributionDescription": "X", "PerformedStationName": "X",
+    # image, SOP common
+    "ImageComments": "X", "DerivationDescription": "X", "FrameComments": "X", "IconImageSequence": "X",
+    "TimezoneOffsetFromUTC": "X", "InstanceCoercionDateTime": "X", "DigitalSignaturesSequence": "X",
+    "DataSetTrailingPadding": "X", "OriginalAttributesSequence": "X", "ModifiedAttributesSequence": "X",
+    "ContentCreatorName": "X", "ContentCreatorIdentificationCodeSequence": "X", "PersonName": "X",
+    "VerifyingObserverName": "X", "IdentifyingComments": "X",
+}
+#: Dummy Device Serial Number (the SEG's equipment module needs one; the profile's D action).
+DUMMY_SERIAL = "none"
 
 
 def check_seg_source(volume: Volume, where: str | None = None) -> None:
@@ -93,14 +182,65 @@ def _source_datasets(volume: Volume, source_paths: Sequence[str | os.PathLike] |
     missing = [u for u in volume.sop_instance_uids if u not in by_uid]
     if missing:
         raise InputError(f"{where}: {len(missing)} source slices of series {volume.series_uid} are missing (e.g. {missing[0]}); give the complete series")
-    out = []
-    for uid in volume.sop_instance_uids:
-        ds = copy.deepcopy(by_uid[uid])
-        for kw in _IDENTITY_KEYWORDS:
-            if kw in ds:
-                setattr(ds, kw, "")
-        out.append(ds)
+    return [_referencing_copy(by_uid[uid]) for uid in volume.sop_instance_uids]
+
+
+def _referencing_copy(ds):
+    """A new header holding only :data:`SOURCE_KEPT` of ``ds`` and the empty :data:`SOURCE_EMPTY`."""
+    from pydicom.dataset import Dataset, FileMetaDataset
+
+    out = Dataset()
+    for kw in SOURCE_KEPT:
+        if kw in ds:
+            out[kw] = copy.deepcopy(ds[kw])
+    for kw in SOURCE_EMPTY:
+        setattr(out, kw, "")
+    out.file_meta = FileMetaDataset()
+    for kw in ("TransferSyntaxUID", "MediaStorageSOPClassUID", "MediaStorageSOPInstanceUID"):
+        if kw in getattr(ds, "file_meta", {}):
+            out.file_meta[kw] = copy.deepcopy(ds.file_meta[kw])
     return out
+
+
+def _apply_profile(ds) -> None:
+    """Apply :data:`BASIC_PROFILE` to ``ds`` at every depth; private attributes are removed."""
+    for elem in list(ds):
+        if elem.tag.is_private:
+            del ds[elem.tag]
+            continue
+        action = BASIC_PROFILE.get(elem.keyword)
+        if action == "X":
+            del ds[elem.tag]
+        elif action == "Z":
+            elem.value = [] if elem.VR == "SQ" else ""
+        elif elem.VR == "SQ":
+            for item in elem.value:
+                _apply_profile(item)
+
+
+def deidentify(ds) -> None:
+    """De-identify a dataset we write (see the module notes): the profile, then its markers.
+
+    Sets Patient Identity Removed ``YES``, De-identification Method and the De-identification
+    Method Code Sequence (DICOM PS3.16 CID 7050: 113100 Basic Application Confidentiality
+    Profile, 113110 Retain UIDs Option).
+    """
+    from pydicom.dataset import Dataset
+    from pydicom.sr.codedict import codes
+
+    _apply_profile(ds)
+    if "DeviceSerialNumber" in ds:
+        ds.DeviceSerialNumber = DUMMY_SERIAL
+    ds.PatientIdentityRemoved = "YES"
+    ds.DeidentificationMethod = ["DICOM PS3.15 E Basic Profile", "Retain UIDs Option"]
+    items = []
+    for code in (codes.cid7050.BasicApplicationConfidentialityProfile, codes.cid7050.RetainUidsOption):
+        item = Dataset()
+        item.CodeValue = code.value
+        item.CodingSchemeDesignator = code.scheme_designator
+        item.CodeMeaning = code.meaning
+        items.append(item)
+    ds.DeidentificationMethodCodeSequence = items
 
 
 def _segment_descriptions(kinds: Iterable[RoiKindMask], algorithm_type: str):
@@ -171,7 +311,6 @@ def write_seg(
     sources = _source_datasets(volume, source_paths)
     manual = any(f.source == "override" for f in analysis.placement.fits.values())
     pixels = np.stack([k.mask for k in kinds], axis=-1)  # (frames = slices, rows, cols, segments)
-    scanner = volume.scanner
     seg = hd.seg.Segmentation(
         source_images=sources,
         pixel_array=pixels,
@@ -184,15 +323,24 @@ def write_seg(
         manufacturer="phantometry",
         manufacturer_model_name="phantometry",
         software_versions=__version__,
-        device_serial_number=scanner.serial or "none",
+        device_serial_number=DUMMY_SERIAL,
         content_description=f"phantometry ROIs, template {analysis.template.name}, voxel weight >= 0.5",
         content_label="PHANTOMROIS",
         series_description=f"phantometry ROIs ({analysis.template.name})",
     )
+    deidentify(seg)
     out = Path(path)
     out.parent.mkdir(parents=True, exist_ok=True)
     seg.save_as(out)
     return out
 
 
-__all__ = ["RoiKindMask", "check_seg_source", "check_seg_request", "write_seg"]
+__all__ = [
+    "BASIC_PROFILE",
+    "SOURCE_KEPT",
+    "RoiKindMask",
+    "check_seg_request",
+    "check_seg_source",
+    "deidentify",
+    "write_seg",
+]

@@ -43,7 +43,7 @@ import json
 import math
 import os
 from dataclasses import asdict, dataclass, field
-from datetime import datetime, timedelta
+from datetime import datetime, timedelta, timezone
 from pathlib import Path
 from typing import Any, Sequence
 
@@ -138,6 +138,9 @@ class SynthSpec:
     axial_slope_pct_per_100mm: float = 0.0
     slice_artefact: tuple[float, float] | None = None
     radial_gain_pct: float = 0.0
+    #: how long before the scan the fill record's background was measured (s); a sealed
+    #: Ge-68 phantom's calibration may be many months old
+    fill_measured_before_s: float = 3000.0
 
     @property
     def has_imperfections(self) -> bool:
@@ -187,7 +190,7 @@ def synth_template_source(phantom: str, template_file: str | os.PathLike | None,
     path = Path(template_file)
     if not path.is_file():
         raise InputError(f"{path}: no such template file")
-    load_template(path)  # validates (raises TemplateError naming the file)
+    load_template(path, check=False)  # validates the schema (raises TemplateError naming the file)
     return str(path)
 
 
@@ -195,7 +198,7 @@ def default_scan_settings(phantom: str, templates_dirs: list[str] | None = None)
     """Typical voxel size (mm), PSF FWHM (mm) and background (kBq/mL) for a phantom kind:
     clinical scanners for body phantoms, preclinical ones for the small-animal phantom
     (common practice; about 3.7 MBq in the ~20 mL small-animal phantom, recalled)."""
-    kind = load_template(phantom, templates_dirs).analysis.kind
+    kind = load_template(phantom, templates_dirs, check=False).analysis.kind
     if kind == "small_animal_image_quality":
         return {"voxel_mm": 0.5, "psf_fwhm_mm": 1.8, "background_kbq_ml": 150.0}
     return {"voxel_mm": 2.0, "psf_fwhm_mm": 6.0, "background_kbq_ml": 5.3}
@@ -442,7 +445,7 @@ def imperfection_gains(spec: SynthSpec, template: Template, volume: Volume, rot:
 def synthesize(spec: SynthSpec) -> SynthResult:
     """Make a synthetic phantom scan (noise-free truth, blurred, with noise) and its truth."""
     spec.validate()
-    template = resized_template(load_template(spec.phantom, spec.templates_dirs), spec.diameter_mm, spec.length_mm)
+    template = resized_template(load_template(spec.phantom, spec.templates_dirs, check=False), spec.diameter_mm, spec.length_mm)
     rot, t = phantom_pose(spec, template)
     matrix = spec.matrix or auto_matrix(spec, template, rot, t)
     shape = (int(matrix[2]), int(matrix[1]), int(matrix[0]))
@@ -487,7 +490,7 @@ def synthesize(spec: SynthSpec) -> SynthResult:
         source="synthetic",
     )
     truth = _truth(spec, template, rot, t, conc, bg)
-    return SynthResult(volume, template, rot, t, truth, fill_record_for(spec, template))
+    return SynthResult(volume, template, rot, t, truth, fill_record_for(spec, template, spec.fill_measured_before_s))
 
 
 def _truth(spec: SynthSpec, template: Template, rot: np.ndarray, t: np.ndarray, conc: dict[str, float], bg: float) -> dict[str, Any]:
@@ -540,11 +543,14 @@ def fill_record_for(spec: SynthSpec, template: Template, measured_before_s: floa
     """The fill record a physicist would have written for this synthetic scan.
 
     The background is stated as measured ``measured_before_s`` before the scan, so reading it
-    back exercises the decay correction.
+    back exercises the decay correction. For a nuclide imaged through its daughter (Ge-68) the
+    record states the parent's activity, the imaged one divided by
+    :attr:`~phantometry.nuclides.Nuclide.imaged_activity_ratio`.
     """
-    measured_at = spec.acquired_at - timedelta(seconds=measured_before_s)
+    nuclide = get_nuclide(spec.nuclide)
+    measured_at = _earlier(spec.acquired_at, measured_before_s)
     # concentration at the measurement time decays to spec.background_kbq_ml at the scan
-    kbq_at_measure = spec.background_kbq_ml / decay_factor(spec.nuclide, measured_at, spec.acquired_at)
+    kbq_at_measure = spec.background_kbq_ml / decay_factor(nuclide, measured_at, spec.acquired_at) / nuclide.imaged_activity_ratio
     record: dict[str, Any] = {
         "nuclide": get_nuclide(spec.nuclide).name,
         "site": DEMO_SITE,
@@ -558,6 +564,14 @@ def fill_record_for(spec: SynthSpec, template: Template, measured_before_s: floa
     return record
 
 
+def _earlier(moment: datetime, seconds: float) -> datetime:
+    """``seconds`` of elapsed time before ``moment``, on ``moment``'s clock (a ZoneInfo zone
+    keeps its own offset at that instant: across a daylight-saving change the wall clock moves
+    by more or less than ``seconds``)."""
+    tz = moment.tzinfo
+    return (moment.astimezone(timezone.utc) - timedelta(seconds=seconds)).astimezone(tz)
+
+
 def write_synthetic(
     result: SynthResult,
     out_dir: str | os.PathLike,
@@ -565,12 +579,17 @@ def write_synthetic(
     *,
     overwrite: bool = False,
     inputs: Sequence[str | os.PathLike] = (),
+    local_times: bool = False,
 ) -> dict[str, Any]:
     """Write a synthetic scan: image (DICOM series or NIfTI + sidecar), ``fill.yaml``, ``truth.json``.
 
     The folder is written by :func:`phantometry.outputs.output_folder` (kind ``synthetic-scan``):
     it must not exist, be empty, or (with ``overwrite=True``) hold an earlier phantometry
     folder; ``inputs`` (e.g. a user template file) may not lie in it.
+
+    ``local_times`` writes the scanner's times as a local wall clock without a UTC offset
+    (no Timezone Offset From UTC; a sidecar ``AcquisitionDateTime`` without offset), as most
+    scanners do; the fill record keeps its offsets.
 
     Returns the paths written, keyed ``image``, ``fill``, ``truth``, and ``written`` (the
     :class:`phantometry.outputs.WrittenFolder`, which says whether an earlier folder was replaced).
@@ -593,14 +612,15 @@ def write_synthetic(
                 patient_name="PHANTOM^QC",
                 patient_weight_kg=10.0,
                 injected_dose_bq=_nominal_dose_bq(result),
-                injection_time=result.volume.acquired_at - timedelta(minutes=60),
+                injection_time=_earlier(result.volume.acquired_at, 3600.0),
                 series_description=result.volume.series_description,
+                timezone_offset=not local_times,
             )
             image = out / "dicom"
         else:
             from .io.nifti import write_nifti
 
-            image = out / write_nifti(result.volume, tmp / "phantom.nii.gz").name
+            image = out / write_nifti(result.volume, tmp / "phantom.nii.gz", local_times=local_times).name
         (tmp / "fill.yaml").write_text(yaml.safe_dump(result.fill_record, sort_keys=False), encoding="utf-8")
         (tmp / "truth.json").write_text(json.dumps(result.truth, indent=2), encoding="utf-8")
     return {"image": image, "fill": out / "fill.yaml", "truth": out / "truth.json", "written": staging.written}
@@ -658,7 +678,7 @@ def write_synthetic_family(
                      shift_mm=shift_mm, sphere_ratio=sphere_ratio, cold=list(cold))
     if matrix is None:  # leave room for the widest PSF of the family
         widest = SynthSpec(**{**spec.__dict__, "psf_fwhm_mm": max(float(s["fwhm_mm"]) for s in settings)})
-        tpl = load_template(spec.phantom)
+        tpl = load_template(spec.phantom, check=False)
         spec.matrix = auto_matrix(widest, tpl, *phantom_pose(widest, tpl))
     base = synthesize(spec)
     out = Path(out_dir)
@@ -693,4 +713,4 @@ def write_synthetic_family(
 def _nominal_dose_bq(result: SynthResult) -> float:
     """An injected activity consistent with the background (about 9.7 L of water), Bq at injection."""
     bg = result.truth["background_bq_ml"]
-    return float(bg * 9700.0 / decay_factor(result.volume.nuclide, result.volume.acquired_at - timedelta(minutes=60), result.volume.acquired_at))
+    return float(bg * 9700.0 / decay_factor(result.volume.nuclide, _earlier(result.volume.acquired_at, 3600.0), result.volume.acquired_at))

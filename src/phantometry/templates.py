@@ -21,7 +21,8 @@ from typing import Annotated, Any, Literal, Union
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError, field_validator, model_validator
 
-from .yamlfile import read_yaml_file
+from .resources import builtin_dir, is_file_reference, list_named, search_path
+from .yamlfile import read_yaml_file, validation_problems
 from .errors import TemplateError
 
 TEMPLATE_PATH_ENV = "PHANTOMETRY_TEMPLATES"
@@ -377,21 +378,28 @@ class Template(_Strict):
 
 
 # ----------------------------------------------------------------------------------- loading
+#: Location parts pydantic adds for discriminated unions and validators (not keys of the file).
+_UNION_TAGS = ("cylinder", "d_shape", "function-after[_shape_fields(), Insert]")
+
+
 def format_validation_error(path: str, err: ValidationError, prefix: str | None = None) -> str:
     """Pydantic's errors of a template (or of its ``analysis:`` block, ``prefix="analysis"``)
     as one line naming the file and each key at fault."""
-    problems = []
-    for e in err.errors():
-        loc = ".".join(str(x) for x in e["loc"] if not (isinstance(x, str) and x in ("cylinder", "d_shape", "function-after[_shape_fields(), Insert]")))
+
+    def place(loc: tuple) -> str:
+        key = ".".join(str(x) for x in loc if not (isinstance(x, str) and x in _UNION_TAGS))
         if prefix:
-            loc = f"{prefix}.{loc}" if loc else prefix
-        msg = e["msg"].removeprefix("Value error, ")
+            key = f"{prefix}.{key}" if key else prefix
+        return key or "(top level)"
+
+    def problem(e: dict[str, Any]) -> str | None:
         if e["type"] == "extra_forbidden":
-            msg = "unknown key (check the spelling; see the README section on ROI templates)"
-        elif e["type"] == "literal_error" and "expected" in e.get("ctx", {}):
-            msg = f"must be one of {e['ctx']['expected']}"
-        problems.append(f"{loc or '(top level)'}: {msg}")
-    return f"{path}: invalid template: " + "; ".join(problems)
+            return "unknown key (check the spelling; see the README section on ROI templates)"
+        if e["type"] == "missing":
+            return e["msg"]
+        return None
+
+    return f"{path}: invalid template: " + "; ".join(validation_problems(err, place=place, problem=problem))
 
 
 def template_from_dict(data: Any, source: str = "<template>", *, check: bool = True) -> Template:
@@ -425,58 +433,47 @@ def template_from_dict(data: Any, source: str = "<template>", *, check: bool = T
     return tpl
 
 
-def load_template_file(path: str | os.PathLike) -> Template:
-    """Load and validate one template YAML file."""
+def load_template_file(path: str | os.PathLike, *, check: bool = True) -> Template:
+    """Load and validate one template YAML file (``check``: also its geometric checks)."""
     p = Path(path)
-    return template_from_dict(read_yaml_file(p, TemplateError, "template"), source=str(p))
+    return template_from_dict(read_yaml_file(p, TemplateError, "template"), source=str(p), check=check)
 
 
 def builtin_template_dir() -> Path:
     """Folder of the templates shipped with phantometry (inside the installed package)."""
-    installed = Path(__file__).resolve().parent / "roi_templates"
-    if installed.is_dir():  # a wheel install: the folder ships inside the package
-        return installed
-    return Path(__file__).resolve().parents[2] / "roi_templates"  # a checkout (editable install)
+    return builtin_dir()
 
 
 def template_search_path(extra_dirs: list[str | os.PathLike] | None = None) -> list[Path]:
     """Folders searched for templates by name: ``--templates`` dirs, ``$PHANTOMETRY_TEMPLATES``
     (os.pathsep-separated), then the built-in folder and its ``examples/``."""
-    dirs = [Path(d) for d in (extra_dirs or [])]
-    env = os.environ.get(TEMPLATE_PATH_ENV)
-    if env:
-        dirs += [Path(d) for d in env.split(os.pathsep) if d]
     builtin = builtin_template_dir()
-    return dirs + [builtin, builtin / "examples"]
+    return search_path(extra_dirs, TEMPLATE_PATH_ENV, [builtin, builtin / "examples"])
 
 
 def list_templates(extra_dirs: list[str | os.PathLike] | None = None) -> dict[str, Path]:
     """Template name -> file, earlier folders winning (so a user folder can shadow a built-in)."""
-    found: dict[str, Path] = {}
-    for d in template_search_path(extra_dirs):
-        if not d.is_dir():
-            continue
-        for f in sorted(d.glob("*.yaml")) + sorted(d.glob("*.yml")):
-            if f.name.startswith(("bands", "_")):
-                continue
-            found.setdefault(f.stem, f)
-    return found
+    return list_named(template_search_path(extra_dirs), skip_prefixes=("bands", "_"))
 
 
-def load_template(name_or_path: str | os.PathLike, extra_dirs: list[str | os.PathLike] | None = None) -> Template:
-    """Load a template by name (searched as :func:`template_search_path` says) or by file path."""
+def load_template(name_or_path: str | os.PathLike, extra_dirs: list[str | os.PathLike] | None = None, *, check: bool = True) -> Template:
+    """Load a template by name (searched as :func:`template_search_path` says) or by file path.
+
+    ``check=False`` skips the geometric checks (:func:`check_template`): the synthesizer paints
+    variants of a phantom whose background ROI positions need not fit it.
+    """
     p = Path(name_or_path)
-    if p.suffix in (".yaml", ".yml") or p.exists():
+    if is_file_reference(p):
         if not p.exists():
             raise TemplateError(f"{p}: template file not found")
-        return load_template_file(p)
+        return load_template_file(p, check=check)
     available = list_templates(extra_dirs)
     if str(name_or_path) not in available:
         raise TemplateError(
             f"unknown template {str(name_or_path)!r}; available: {', '.join(sorted(available)) or 'none'}"
             f" (add a folder with --templates DIR or ${TEMPLATE_PATH_ENV})"
         )
-    return load_template_file(available[str(name_or_path)])
+    return load_template_file(available[str(name_or_path)], check=check)
 
 
 # ------------------------------------------------------------------------------------ checks

@@ -104,6 +104,21 @@ class Volume:
         For a series stored as body-weight SUV (``original_units == "GML"``): the Bq/mL of one
         SUV unit in each slice (array order), the factor the loader converted with, so that
         ``data[k] / bq_ml_per_suv[k]`` is the SUV the scanner stored; empty otherwise.
+    scan_start : datetime or None
+        Start of the acquisition (DICOM: Series Date/Time unless after the earliest
+        Acquisition Date/Time, QIBA), for the checks of fill against scan.
+    time_basis : str or None
+        How the times were placed on the clock (:mod:`phantometry.sitetime`): ``header
+        offset``, ``given zone``, ``fill record offset``, ``given time``, or ``unresolved``
+        (the scanner's wall clock held as UTC until the site's zone is known). None: an aware
+        time given by a program.
+    time_zone : str or None
+        The zone or offset the times were read in, as a person reads it.
+    frame_duration_s : float or None
+        Acquisition duration of a frame (bed), when the header states it.
+    decay_reference : str or None
+        What ``acquired_at`` is for these values, in words (e.g. each frame's start plus the
+        frame-average correction for DecayCorrection NONE).
     """
 
     data: np.ndarray
@@ -127,6 +142,11 @@ class Volume:
     #: replaced by the table value); measure puts these in measurements.json ``warnings``
     warnings: tuple[str, ...] = ()
     bq_ml_per_suv: tuple[float, ...] = ()
+    scan_start: datetime | None = None
+    time_basis: str | None = None
+    time_zone: str | None = None
+    frame_duration_s: float | None = None
+    decay_reference: str | None = None
 
     def __post_init__(self) -> None:
         data = np.asarray(self.data)
@@ -145,8 +165,9 @@ class Volume:
         self.affine = affine
         if self.frame not in WORLD_FRAMES:
             raise GeometryError(f"unknown world frame {self.frame!r}; expected one of {WORLD_FRAMES}")
-        if self.acquired_at is not None and self.acquired_at.tzinfo is None:
-            raise ValueError("acquired_at must be timezone-aware")
+        for moment in (self.acquired_at, self.scan_start):
+            if moment is not None and moment.tzinfo is None:
+                raise ValueError("acquired_at and scan_start must be timezone-aware")
 
     # ------------------------------------------------------------------ geometry
     @property
@@ -250,6 +271,14 @@ class Volume:
         """A copy with other voxel values on the same grid and metadata."""
         return dataclasses.replace(self, data=data)
 
+    def _time_text(self, moment: datetime | None) -> str | None:
+        """ISO 8601; an unresolved wall-clock time without an offset (it has no zone yet)."""
+        if moment is None:
+            return None
+        if self.time_basis == "unresolved":
+            return moment.replace(tzinfo=None).isoformat()
+        return moment.isoformat()
+
     def summary(self) -> dict[str, Any]:
         """JSON-ready description without voxel data (and without any patient identity)."""
         return {
@@ -261,7 +290,12 @@ class Volume:
             "shape_zyx": list(self.shape),
             "spacing_mm_zyx": [round(float(s), 6) for s in self.spacing_mm],
             "affine": [[float(v) for v in row] for row in self.affine],
-            "acquired_at": self.acquired_at.isoformat() if self.acquired_at else None,
+            "acquired_at": self._time_text(self.acquired_at),
+            "scan_start": self._time_text(self.scan_start),
+            "time_basis": self.time_basis,
+            "time_zone": self.time_zone,
+            "frame_duration_s": self.frame_duration_s,
+            "decay_reference": self.decay_reference,
             "nuclide": self.nuclide,
             "original_units": self.original_units,
             "decay_correction": self.decay_correction,

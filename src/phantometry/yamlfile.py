@@ -18,14 +18,17 @@ from __future__ import annotations
 import codecs
 import os
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any, Callable
 
 import yaml
 from yaml.constructor import ConstructorError
 
 from .errors import PhantometryError
 
-__all__ = ["MAX_BYTES", "MAX_DEPTH", "StrictLoader", "read_yaml_file", "parse_yaml_text"]
+if TYPE_CHECKING:  # pragma: no cover
+    from pydantic import ValidationError
+
+__all__ = ["MAX_BYTES", "MAX_DEPTH", "StrictLoader", "read_yaml_file", "parse_yaml_text", "validation_problems"]
 
 #: Largest YAML file read (bytes); project files are a few kilobytes.
 MAX_BYTES = 4 * 1024 * 1024
@@ -171,3 +174,33 @@ def read_yaml_file(path: str | os.PathLike, error: type[PhantometryError], what:
     if len(raw) > MAX_BYTES:
         raise error(f"{p}: larger than {MAX_BYTES // (1024 * 1024)} MB; a {what} is a small text file, check the path")
     return parse_yaml_text(_decode(raw, p, error, what), str(p), error)
+
+
+def validation_problems(
+    err: "ValidationError",
+    *,
+    place: Callable[[tuple], str | None] | None = None,
+    problem: Callable[[dict[str, Any]], str | None] | None = None,
+) -> list[str]:
+    """Pydantic's errors of a parsed file as ``key.path: problem`` texts, one per error.
+
+    The one formatting of validation errors for templates, band sets and fill records.
+    ``place(loc)`` names the key (default: the dotted path; None: the problem stands alone,
+    e.g. a record-level check that names its own fields); ``problem(error)`` words the problem
+    (default, or when it returns None: pydantic's message without "Value error, ", a literal's
+    allowed values, "required key missing").
+    """
+    out = []
+    for e in err.errors():
+        loc = tuple(e["loc"])
+        where = place(loc) if place is not None else (".".join(str(x) for x in loc) or "(top level)")
+        text = problem(e) if problem is not None else None
+        if text is None:
+            if e["type"] == "literal_error" and "expected" in e.get("ctx", {}):
+                text = f"must be one of {e['ctx']['expected']}"
+            elif e["type"] == "missing":
+                text = "required key missing"
+            else:
+                text = e["msg"].removeprefix("Value error, ")
+        out.append(text if where is None else f"{where}: {text}")
+    return out

@@ -6,7 +6,6 @@ import json
 import os
 import shutil
 import tempfile
-from datetime import datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, List, Optional
 
@@ -17,24 +16,13 @@ from rich.table import Table
 
 from ..errors import InputError
 from ..results import CAUTION
+from ..timeutil import parse_aware_time
 from . import app, templates_app
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..phantoms.base import Analysis
 
 console = Console(highlight=False)
-
-
-def _parse_time(text: Optional[str]) -> Optional[datetime]:
-    if text is None:
-        return None
-    try:
-        t = datetime.fromisoformat(text)
-    except ValueError:
-        raise InputError(f"--acquired-at {text!r}: expected ISO 8601 with a time zone, e.g. 2026-11-03T10:30:00+01:00") from None
-    if t.tzinfo is None:
-        raise InputError(f"--acquired-at {text!r}: give a time-zone offset, e.g. +01:00")
-    return t
 
 
 def _fmt(v, nd=2) -> str:
@@ -57,6 +45,12 @@ def print_summary_table(analysis: Analysis) -> None:
     console.print(t)
     for line in st.lines:
         console.print(line, markup=False)
+    basis = analysis.volume.time_basis
+    if basis:
+        console.print(f"times: {basis}" + (f", {analysis.volume.time_zone}" if analysis.volume.time_zone else ""), markup=False)
+    for c in getattr(analysis, "protocol_checks", []):
+        if c.status == "warning":
+            console.print("[bold]PROTOCOL[/bold]: " + escape(c.message))
     for w in analysis.warnings:
         console.print("[bold]WARNING[/bold]: " + escape(w))
 
@@ -85,6 +79,9 @@ def measure_cmd(
     replace: bool = typer.Option(False, "--replace", help="With --record: replace an analysis of the same series + template + settings."),
     bands: Optional[List[str]] = typer.Option(None, "--bands", help="Acceptance band set (name or YAML file; phantometry bands list); repeatable."),
     strict: bool = typer.Option(False, "--strict", help="Exit code 3 when any banded value fails (results are still written)."),
+    timezone: Optional[str] = typer.Option(
+        None, "--timezone", help="Site time zone (IANA name, e.g. Europe/Berlin) of scanner times written without a UTC offset "
+        "(default: the fill record's timezone:, else its own offset)."),
 ) -> None:
     """Measure a phantom scan: recovery coefficients, contrast, background variability, insert residual.
 
@@ -97,6 +94,11 @@ def measure_cmd(
         raise InputError("--site, --scanner, --protocol and --replace apply with --record; add --record")
     from ..measure import measure
 
+    request = None
+    if record:
+        from .ledger import record_request
+
+        request = record_request(db, site=site, scanner=scanner, protocol=protocol, replace=replace)
     analysis = measure(
         [str(p) for p in inputs],
         template=template,
@@ -105,7 +107,7 @@ def measure_cmd(
         series=series,
         centres=centre,
         units=units,
-        acquired_at=_parse_time(acquired_at),
+        acquired_at=None if acquired_at is None else parse_aware_time(acquired_at, "--acquired-at"),
         nuclide=nuclide,
         calibration_factor=calibration,
         templates_dirs=[str(d) for d in templates_dir or []],
@@ -113,6 +115,8 @@ def measure_cmd(
         seg=seg,
         bands=list(bands or []),
         overwrite=overwrite,
+        record=request,
+        timezone=timezone,
     )
     print_summary_table(analysis)
     _print_resolution_and_verdicts(analysis, bool(bands))
@@ -123,10 +127,10 @@ def measure_cmd(
         console.print(f"wrote {out}/" + ", ".join(pictures), markup=False)
     if report or seg:
         console.print(f"wrote {out}/" + ", ".join(n for n, on in (("report.html", report), ("rois_seg.dcm", seg)) if on), markup=False)
-    if record:
-        from .ledger import record_after_measure
+    if request is not None:
+        from .ledger import print_recorded
 
-        record_after_measure(analysis, db, site=site, scanner=scanner, protocol=protocol, replace=replace)
+        print_recorded(request)
     if strict:
         from ..bands import any_failed
 
@@ -214,6 +218,7 @@ def synth_cmd(
     axial_slope: float = typer.Option(0.0, "--axial-slope", help="Imperfection: axial gain slope, % per 100 mm along the slice axis."),
     slice_artefact: Optional[str] = typer.Option(None, "--slice-artefact", help="Imperfection: Z_MM,GAIN_PCT: the image slice nearest Z_MM from the phantom centre scaled by 1 + GAIN_PCT/100."),
     radial: float = typer.Option(0.0, "--radial", help="Imperfection: radial gain at the wall relative to the axis, % (positive: cupping, negative: capping)."),
+    local_times: bool = typer.Option(False, "--local-times", help="Write the scanner's times as local wall clock without a UTC offset, as most scanners do."),
 ) -> None:
     """Synthesise a phantom scan with known truth (image, fill.yaml, truth.json)."""
     from ..outputs import KIND_SCAN, check_output_folder, existing_inputs
@@ -258,7 +263,7 @@ def synth_cmd(
         slice_artefact=vec(slice_artefact, 2, "--slice-artefact") if slice_artefact else None,
         radial_gain_pct=radial,
     )
-    paths = write_synthetic(synthesize(spec), out, fmt, overwrite=overwrite, inputs=inputs)
+    paths = write_synthetic(synthesize(spec), out, fmt, overwrite=overwrite, inputs=inputs, local_times=local_times)
     print_written(paths["written"])
     console.print(f"wrote {paths['image']}, {paths['fill']}, {paths['truth']}", markup=False)
 

@@ -81,6 +81,7 @@ def compare_cmd(
     report: bool = typer.Option(False, "--report", help="Also write report.html (self-contained)."),
     templates_dir: Optional[List[Path]] = typer.Option(None, "--templates", help="Extra folder of templates."),
     harmonise: bool = typer.Option(False, "--harmonise", help="Also find each setting's harmonising Gaussian post-filter against --bands."),
+    timezone: Optional[str] = typer.Option(None, "--timezone", help="Site time zone (IANA name, e.g. Europe/Berlin) of scanner times written without a UTC offset; one for all series."),
 ) -> None:
     """Compare reconstruction settings: measure every PET series with one fill record and rank them.
 
@@ -119,6 +120,7 @@ def compare_cmd(
             progress=progress,
             overwrite=overwrite,
             harmonise=harmonise,
+            timezone=timezone,
         )
     print_ranking(result, report)
     print_written(result.written)

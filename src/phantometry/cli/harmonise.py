@@ -14,7 +14,8 @@ from rich.table import Table
 from ..errors import InputError
 from ..results import CAUTION
 from . import app
-from .commands import _fmt, _parse_time, print_written
+from ..timeutil import parse_aware_time
+from .commands import _fmt, print_written
 
 console = Console(highlight=False)
 
@@ -83,6 +84,9 @@ def harmonise_cmd(
     step: float = typer.Option(0.25, "--step", help="Step between the filters tried, mm."),
     write_filtered: bool = typer.Option(False, "--write-filtered", help="Also write the image filtered at the recommendation (DICOM series or NIfTI, as the input)."),
     strict: bool = typer.Option(False, "--strict", help="Exit code 3 when no filter meets every band (results are still written)."),
+    timezone: Optional[str] = typer.Option(
+        None, "--timezone", help="Site time zone (IANA name, e.g. Europe/Berlin) of scanner times written without a UTC offset "
+        "(default: the fill record's timezone:, else its own offset)."),
 ) -> None:
     """Find the Gaussian post-filter that brings a reconstruction inside acceptance bands.
 
@@ -103,7 +107,7 @@ def harmonise_cmd(
         series=series,
         centres=centre,
         units=units,
-        acquired_at=_parse_time(acquired_at),
+        acquired_at=None if acquired_at is None else parse_aware_time(acquired_at, "--acquired-at"),
         nuclide=nuclide,
         calibration_factor=calibration,
         templates_dirs=[str(d) for d in templates_dir or []],
@@ -111,6 +115,7 @@ def harmonise_cmd(
         step_mm=step,
         write_filtered=write_filtered,
         overwrite=overwrite,
+        timezone=timezone,
     )
     print_harmonisation(h)
     print_written(h.written)

@@ -3,10 +3,15 @@
 Every command takes ``--db URL`` (or ``$PHANTOMETRY_DB``; default a SQLite file in the user
 data directory). Times given on the command line are ISO 8601: a date (``2026-11-03``, read
 as UTC; as an end bound it covers that whole day) or a date and time with an offset.
+
+Only ``add`` and ``import`` (and ``measure --record``) create a store; the other commands
+refuse one that does not exist and create nothing. Files written (``export``, ``trend
+--chart``) never replace an existing file without ``--overwrite``.
 """
 
 from __future__ import annotations
 
+import logging
 import sys
 from datetime import datetime, time, timedelta, timezone
 from pathlib import Path
@@ -17,8 +22,9 @@ from rich.console import Console
 from rich.markup import escape
 from rich.table import Table
 
-from ..errors import InputError, LedgerError
+from ..errors import InputError, LedgerError, PhantometryError
 from ..results import CAUTION
+from ..timeutil import EXAMPLE_TIME, parse_aware_time
 from . import APP_SETTINGS, app
 
 ledger_app = typer.Typer(
@@ -52,23 +58,39 @@ def parse_cli_time(text: Optional[str], option: str, *, end_of_day: bool = False
     if text is None:
         return None
     text = text.strip()
-    try:
-        if len(text) == 10:
+    if len(text) == 10:
+        try:
             d = datetime.fromisoformat(text).date()
-            t = datetime.combine(d, time(0, 0), tzinfo=timezone.utc)
-            return t + timedelta(days=1) - timedelta(microseconds=1) if end_of_day else t
-        t = datetime.fromisoformat(text)
-    except ValueError:
-        raise InputError(f"{option} {text!r}: expected a date 2026-11-03 or a time 2026-11-03T10:30:00+01:00") from None
-    if t.tzinfo is None:
-        raise InputError(f"{option} {text!r}: give a time-zone offset, e.g. +01:00 (or just a date, read as UTC)")
-    return t
+        except ValueError:
+            raise InputError(f"{option} {text!r}: expected a date 2026-11-03 or a time {EXAMPLE_TIME}") from None
+        t = datetime.combine(d, time(0, 0), tzinfo=timezone.utc)
+        return t + timedelta(days=1) - timedelta(microseconds=1) if end_of_day else t
+    try:
+        return parse_aware_time(text, option)
+    except InputError as exc:
+        raise InputError(f"{exc} (or just a date such as 2026-11-03, read as UTC)") from None
 
 
-def _open(db: Optional[str]):
+def quiet_driver_logs() -> None:
+    """Keep database drivers' log records off stderr (their errors reach us as exceptions).
+
+    psycopg logs a warning ("error ignored terminating <psycopg.Pipeline ...>") when a
+    statement in pipeline mode fails and is then handled; without a handler Python's
+    last-resort handler would print it. A NullHandler on the driver's logger stops that; an
+    application that configures logging still receives the records.
+    """
+    for name in ("psycopg", "psycopg.pool"):
+        logger = logging.getLogger(name)
+        if not any(isinstance(h, logging.NullHandler) for h in logger.handlers):
+            logger.addHandler(logging.NullHandler())
+
+
+def _open(db: Optional[str], *, create: bool = False):
+    """The ledger; ``create`` only for commands that record (add, import, measure --record)."""
     from ..ledger import Ledger
 
-    return Ledger(db)
+    quiet_driver_logs()
+    return Ledger(db, create=create)
 
 
 def _when(t: Optional[datetime]) -> str:
@@ -91,16 +113,25 @@ def _pick_scanner(ledger, scanner: Optional[str], site: Optional[str]) -> str:
     raise LedgerError(f"ledger {ledger.display_url}: give --scanner; scanners: {names}")
 
 
-def record_after_measure(analysis, db: Optional[str], *, site: Optional[str], scanner: Optional[str],
-                         protocol: Optional[str], replace: bool) -> None:
-    """What ``phantometry measure --record`` runs once the result folder is written."""
-    with _open(db) as ledger:
-        rec = ledger.record_analysis(analysis, site=site, scanner=scanner, protocol=protocol, replace=replace)
-        console.print(
-            f"{'replaced' if rec.replaced else 'recorded'} analysis #{rec.analysis_id} ({rec.site} / {rec.scanner} / "
-            f"{rec.protocol}, {rec.n_measurements} measurements) in {ledger.display_url}",
-            markup=False,
-        )
+def record_request(db: Optional[str], *, site: Optional[str], scanner: Optional[str], protocol: Optional[str],
+                   replace: bool):
+    """The ``record=`` argument of :func:`phantometry.measure.measure` for ``measure --record``."""
+    from ..ledger.measure_record import RecordRequest
+
+    quiet_driver_logs()
+    return RecordRequest(db, site=site, scanner=scanner, protocol=protocol, replace=replace)
+
+
+def print_recorded(request) -> None:
+    """The line ``measure --record`` prints once the analysis is recorded."""
+    rec = request.result
+    if rec is None:
+        return
+    console.print(
+        f"{'replaced' if rec.replaced else 'recorded'} analysis #{rec.analysis_id} ({rec.site} / {rec.scanner} / "
+        f"{rec.protocol}, {rec.n_measurements} measurements) in {request.display_url}",
+        markup=False,
+    )
 
 
 @ledger_app.command("add")
@@ -112,15 +143,41 @@ def add_cmd(
     replace: bool = typer.Option(False, "--replace", help="Replace an analysis of the same series + template + settings."),
     db: Optional[str] = _db_option(),
 ) -> None:
-    """Record analyses from result folders into the ledger."""
-    with _open(db) as ledger:
-        for p in paths:
-            rec = ledger.add_from_result_dir(p, site=site, scanner=scanner, protocol=protocol, replace=replace)
-            console.print(
-                f"{'replaced' if rec.replaced else 'recorded'} analysis #{rec.analysis_id} from {p} "
-                f"({rec.site} / {rec.scanner} / {rec.protocol}, {rec.n_measurements} measurements)",
-                markup=False,
-            )
+    """Record analyses from result folders into the ledger.
+
+    Every folder is tried: each one refused (duplicate, unreadable) is reported on its own
+    error line, the others are recorded, and the exit code is 2 if any was refused.
+    """
+    from ..ledger.inputs import read_result_document
+
+    refused = 0
+
+    def refuse(exc: PhantometryError) -> None:
+        nonlocal refused
+        refused += 1
+        print(f"phantometry: error: {' '.join(str(exc).split())}", file=sys.stderr, flush=True)
+
+    docs = []
+    for p in paths:  # read every file first: a store is created only when something can be recorded
+        try:
+            docs.append((p, *read_result_document(p)))
+        except PhantometryError as exc:
+            refuse(exc)
+    if docs:
+        with _open(db, create=True) as ledger:
+            for p, doc, where in docs:
+                try:
+                    rec = ledger.record_document(doc, site=site, scanner=scanner, protocol=protocol, replace=replace, where=where)
+                except PhantometryError as exc:
+                    refuse(exc)
+                    continue
+                console.print(
+                    f"{'replaced' if rec.replaced else 'recorded'} analysis #{rec.analysis_id} from {p} "
+                    f"({rec.site} / {rec.scanner} / {rec.protocol}, {rec.n_measurements} measurements)",
+                    markup=False,
+                )
+    if refused:
+        raise typer.Exit(2)
 
 
 @ledger_app.command("list")
@@ -162,9 +219,17 @@ def trend_cmd(
     since: Optional[str] = typer.Option(None, "--since"),
     until: Optional[str] = typer.Option(None, "--until"),
     chart: Optional[Path] = typer.Option(None, "--chart", help="Write the control chart PNG here."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing --chart file."),
     db: Optional[str] = _db_option(),
 ) -> None:
     """Trend one metric of one ROI for one scanner and protocol: table, control limits, drift flags, chart."""
+    from ..ledger.chart import save_trend_chart
+    from ..ledger.outfiles import check_output_file
+
+    if chart is not None:
+        check_output_file(chart, overwrite, "ledger trend --chart")
+    elif overwrite:
+        raise InputError("--overwrite applies to --chart FILE; add --chart")
     with _open(db) as ledger:
         tr = ledger.trend(
             _pick_scanner(ledger, scanner, site), protocol, roi, metric, site=site,
@@ -193,7 +258,7 @@ def trend_cmd(
         console.print(f"note: {note}", markup=False)
     console.print(f"{len(tr.flags)} drift flag(s)" if tr.flags else "no drift flags", markup=False)
     if chart is not None:
-        console.print(f"wrote {tr.chart(chart)}", markup=False)
+        console.print(f"wrote {save_trend_chart(tr, chart, overwrite=overwrite)}", markup=False)
 
 
 @ledger_app.command("baseline")
@@ -266,11 +331,16 @@ def check_cmd(
 def export_cmd(
     out: Path = typer.Argument(..., help="CSV file to write (long format, one row per measurement)."),
     since: Optional[str] = typer.Option(None, "--since", help="Only analyses recorded since then (incremental export)."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing FILE."),
     db: Optional[str] = _db_option(),
 ) -> None:
-    """Export measurements as CSV for a lab database (stable columns; see the README)."""
+    """Export measurements as CSV for a lab database (stable columns; spreadsheet-safe text; see the README)."""
+    from ..ledger.outfiles import check_output_file
+
+    check_output_file(out, overwrite, "ledger export")
+    since_t = parse_cli_time(since, "--since")
     with _open(db) as ledger:
-        rep = ledger.export_csv(out, since=parse_cli_time(since, "--since"))
+        rep = ledger.export_csv(out, since=since_t, overwrite=overwrite)
     console.print(f"wrote {rep.rows} rows of {rep.analyses} analyses to {rep.path}; next incremental export: --since {rep.started_at.isoformat()}", markup=False)
 
 
@@ -280,10 +350,17 @@ def import_cmd(
     replace: bool = typer.Option(False, "--replace", help="Replace analyses of the same series + template + settings."),
     db: Optional[str] = _db_option(),
 ) -> None:
-    """Import a ledger CSV (analyses already present are skipped)."""
-    with _open(db) as ledger:
-        rep = ledger.import_csv(path, replace=replace)
-    console.print(f"imported {rep.added} analyses ({rep.rows} rows read), replaced {rep.replaced}, skipped {rep.skipped} already present", markup=False)
+    """Import a ledger CSV (analyses already present are skipped; baselines are kept)."""
+    from ..ledger.csvio import read_ledger_csv
+
+    parsed = read_ledger_csv(path)  # a bad file is refused before any store is opened or created
+    with _open(db, create=True) as ledger:
+        rep = ledger.import_csv(parsed, replace=replace)
+    console.print(
+        f"imported {rep.added} analyses ({rep.rows} rows read), replaced {rep.replaced}, skipped {rep.skipped} already present"
+        + (f", created {rep.baselines} baseline(s)" if rep.baselines else ""),
+        markup=False,
+    )
 
 
 @ledger_app.command("info")

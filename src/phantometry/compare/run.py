@@ -66,6 +66,7 @@ def compare(
     measure_options: dict[str, Any] | None = None,
     overwrite: bool = False,
     harmonise: bool | dict[str, Any] = False,
+    timezone: str | None = None,
 ) -> ComparisonResult:
     """Measure every PET series in ``inputs`` with one fill record and rank the settings.
 
@@ -109,6 +110,9 @@ def compare(
         e.g. ``{"max_fwhm_mm": 8}``): the passing range and recommendation join
         comparison.csv (ROI ``harmonisation``), ranking.csv, the ranking table and the report,
         and each series folder gets harmonisation.json and harmonisation.csv. Needs ``bands``.
+    timezone : str, optional
+        The site's IANA zone (``--timezone``), one for all series: scanner times written
+        without a UTC offset are read in it (:mod:`phantometry.sitetime`).
 
     Returns
     -------
@@ -134,6 +138,11 @@ def compare(
     dirs = [str(d) for d in (templates_dirs or [])]
     input_paths = existing_inputs(inputs, fill, template, list(bands), labels, dirs)
     check_output_folder(out, KIND_COMPARE, inputs=input_paths, overwrite=overwrite)
+    if timezone is not None:
+        from ..timeutil import zone_from_name
+
+        zone_from_name(timezone)  # refused here, before any series is measured
+        measure_options = {**(measure_options or {}), "timezone": timezone}
     tpl = load_template(template, dirs)
     fill_record = load_fill_record(fill)
     band_sets = _load_bands(list(bands), tpl)  # refuse bad band sets before any work

@@ -173,14 +173,17 @@ def _measure_into(
 
     tpl = _cached_template(template, tuple(templates_dirs))
     fill = _cached_fill(fill_path)
+    from ..sitetime import site_clock
+
+    clock = site_clock(fill, (measure_options or {}).get("timezone"))
     if job.kind == "nifti":
         from ..io.nifti import load_nifti
 
-        volume = load_nifti(job.paths[0])
+        volume = load_nifti(job.paths[0], site_clock=clock)
     else:
         from ..io.dicom import load_dicom
 
-        volume = load_dicom([Path(p) for p in job.paths], series=job.series_uid)
+        volume = load_dicom([Path(p) for p in job.paths], series=job.series_uid, site_clock=clock)
     outcome.volume_bytes = int(volume.data.nbytes)
     outcome.series = volume.summary()
     outcome.reconstruction = volume.reconstruction

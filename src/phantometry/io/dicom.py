@@ -34,7 +34,7 @@ What the loader does, in order:
        Acquisition Date/Time, else the earliest Acquisition Date/Time (QIBA pseudo-code).
      - ``ADMIN``: values refer to the administration time; the dose is not decayed.
      - ``NONE``: values are not decay corrected, so each slice's own Acquisition Date/Time
-       (frame start; decay within the frame is ignored) is used for that slice.
+       (its frame start) is used for that slice.
 
      A missing dose, weight, time or half-life raises :class:`~phantometry.errors.UnitsError`
      naming the attribute, and so does an injection after the scan. (The pseudo-code also
@@ -43,17 +43,36 @@ What the loader does, in order:
    * Anything else is refused by name.
 
    ``BQML`` and ``GML`` series must state Decay Correction (``NONE``, ``START`` or ``ADMIN``);
-   without it the time the values refer to is unknown. A Radionuclide Half Life that is not a
+   without it the time the values refer to is unknown. What the values are then referred to,
+   alike for ``BQML`` and ``GML`` (and for every bed of a multi-bed series):
+
+   - ``START``: the scan time above, for every slice (the scanner decay-corrected each bed to it);
+   - ``ADMIN``: the administration time (refused when the header has none);
+   - ``NONE``: the values are frame averages without decay correction (DICOM PS3.3 PET Image
+     module; QIBA). Slice ``k`` with frame start ``t_k`` (its Acquisition Date/Time) and
+     duration ``T_k`` (Actual Frame Duration, refused when missing) shows the activity of
+     ``t_k + Delta(T_k)``, where ``exp(-lambda Delta) = (1 - exp(-lambda T)) / (lambda T)``
+     (:func:`phantometry.nuclides.frame_reference_offset_s`). The loader refers every slice to
+     one time, ``t_ref = t_1 + Delta(T_1)`` of the earliest frame, multiplying slice ``k`` by
+     ``exp(-lambda (t_ref - t_k)) / f(T_k)`` with ``f`` the frame-average factor: a single-bed
+     series keeps its values and gets ``acquired_at = t_ref``; later beds are decayed back.
+     ``lambda`` is that of the header's half-life (or the coded nuclide's); without either
+     the series is refused. A Radionuclide Half Life that is not a
    positive number is refused; one more than 1 % from the table value of the nuclide its code
    names (:mod:`phantometry.nuclides`) is replaced by the table value, with a warning on
    ``Volume.warnings``. A decay over more than 40 half-lives (a wrong date) is refused.
 
 5. **Times.** All DA/TM/DT values are read in the zone of Timezone Offset From UTC
-   (0008,0201) (a DT with its own ``+HHMM`` suffix keeps it). Without that attribute the
-   loader assumes UTC and warns with :class:`TimeZoneAssumedWarning`
-   (``SeriesInfo.time_zone_assumed`` says so too); it never uses the machine's local zone.
-   ``Volume.acquired_at`` is the reference time of the values: the scan time above for
-   ``START`` and ``NONE`` (acquisition start), the injection time for ``ADMIN``.
+   (0008,0201) (a DT with its own ``+HHMM`` suffix keeps it); ``Volume.time_basis`` is then
+   ``header offset``. Without that attribute the times are the scanner's local wall clock,
+   read in the site's zone the caller gives (``site_clock``, :mod:`phantometry.sitetime`;
+   a ZoneInfo zone is daylight-saving aware, every time difference is taken with
+   :func:`phantometry.nuclides.seconds_between`). Without a zone either, the wall clock is
+   held as if it were UTC with ``time_basis`` ``unresolved`` and a
+   :class:`TimeZoneAssumedWarning`, until :func:`phantometry.sitetime.resolve_volume_time`
+   gives it the site's zone; it never uses the machine's local zone.
+   ``Volume.acquired_at`` is the reference time of the values (step 4);
+   ``Volume.scan_start`` the scan time; ``Volume.frame_duration_s`` the Actual Frame Duration.
 
 6. **Claims.** Before the voxel array is allocated, Rows x Columns x slices is checked against
    ``$PHANTOMETRY_MAX_VOXELS`` (:mod:`phantometry.io.limits`) and every uncompressed slice's
@@ -74,7 +93,7 @@ from collections import Counter
 from collections.abc import Iterable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
-from datetime import datetime, timedelta, timezone
+from datetime import datetime, timedelta, timezone, tzinfo
 from pathlib import Path
 from typing import Any
 
@@ -101,7 +120,17 @@ from ..errors import (
     UnitsError,
     UnsupportedSeries,
 )
-from ..nuclides import NUCLIDES, DecayGapError, Nuclide, check_decay_gap, get_nuclide
+from ..nuclides import (
+    NUCLIDES,
+    DecayGapError,
+    Nuclide,
+    check_decay_gap,
+    frame_average_factor,
+    frame_reference_offset_s,
+    get_nuclide,
+    seconds_between,
+)
+from ..sitetime import BASIS_HEADER, BASIS_UNRESOLVED, SiteClock
 from ..volume import Reconstruction, Scanner, Volume
 from .dicom_listing import ListingHeader, first_int, read_listing_header
 from .limits import check_voxel_count
@@ -129,7 +158,8 @@ _CONVERTIBLE_UNITS = "BQML, CNTS (with a calibration factor) or GML (body-weight
 
 
 class TimeZoneAssumedWarning(UserWarning):
-    """A series has no Timezone Offset From UTC; its times were read as UTC."""
+    """A series has no Timezone Offset From UTC and no site zone was given: its times are the
+    scanner's wall clock, not yet placed in a zone."""
 
 
 @dataclass(frozen=True)
@@ -355,11 +385,11 @@ def _parse_time(text: str) -> tuple[int, int, int, int]:
     return hh, mm, min(ss, 59), micro  # DICOM allows SS = 60 (leap second)
 
 
-def _combine(date_text: str, time_text: str, tz: timezone) -> datetime:
+def _combine(date_text: str, time_text: str, tz: tzinfo) -> datetime:
     return datetime(*_parse_date(date_text), *_parse_time(time_text), tzinfo=tz)
 
 
-def _parse_datetime(text: str, tz: timezone) -> datetime:
+def _parse_datetime(text: str, tz: tzinfo) -> datetime:
     """DICOM DT ``YYYYMMDDHHMMSS.FFFFFF&ZZXX``; its own offset wins over ``tz``."""
     m = re.fullmatch(r"(\d{8})(\d{2,6}(?:\.\d{1,6})?)?([+-]\d{4})?", text.strip())
     if not m:
@@ -758,18 +788,29 @@ def _geometry(entries: list[_Entry], where: str) -> _Geometry:
 # ----------------------------------------------------------------------------- times and units
 @dataclass
 class _Clock:
-    zone: timezone
-    assumed: bool
+    zone: tzinfo
+    basis: str
+    label: str | None = None
+
+    @property
+    def assumed(self) -> bool:
+        return self.basis == BASIS_UNRESOLVED
 
 
-def _clock(entry: _Entry) -> _Clock:
+def _clock(entry: _Entry, site: SiteClock | None = None) -> _Clock:
+    """The header's offset, else the site's zone, else the wall clock held as UTC (unresolved)."""
     text = _ascii(entry.ds, "TimezoneOffsetFromUTC")
     if text is None:
-        return _Clock(timezone.utc, True)
+        if site is not None:
+            return _Clock(site.zone, site.basis, site.label)
+        return _Clock(timezone.utc, BASIS_UNRESOLVED)
     try:
-        return _Clock(_parse_offset(text), False)
+        zone = _parse_offset(text)
     except ValueError as exc:
         raise InputError(f"{entry.path}: TimezoneOffsetFromUTC {exc}; fix or remove the attribute") from None
+    minutes = int(zone.utcoffset(None).total_seconds() // 60)
+    label = f"{'+' if minutes >= 0 else '-'}{abs(minutes) // 60:02d}:{abs(minutes) % 60:02d} (TimezoneOffsetFromUTC)"
+    return _Clock(zone, BASIS_HEADER, label)
 
 
 def _datetime(
@@ -835,7 +876,7 @@ def _isotope_item(entry: _Entry, item: Any, clock: _Clock, scan: datetime | None
             injection = _parse_datetime(start_dt, clock.zone)
         elif start_tm and series_date:
             injection = _combine(series_date, start_tm, clock.zone)
-            if scan is not None and injection > scan:
+            if scan is not None and seconds_between(scan, injection) > 0:
                 injection -= timedelta(days=1)  # injected before midnight, scanned after
     except ValueError as exc:
         raise InputError(f"{entry.path}: radiopharmaceutical start time {exc}; fix the header") from None
@@ -906,7 +947,7 @@ def _suv_to_bqml(
         times = [scan] * len(entries)
     else:
         times = [a if a is not None else scan for a in acquisitions]
-    elapsed = np.array([(t - isotope.injection).total_seconds() for t in times])
+    elapsed = np.array([seconds_between(isotope.injection, t) for t in times])
     if np.any(elapsed < 0):
         raise UnitsError(
             f"{first.path}: injection time {isotope.injection.isoformat()} is after the scan time "
@@ -1038,11 +1079,69 @@ class _Quantity:
     to_bqml: np.ndarray  # Bq/mL per rescaled stored value, per slice
     acquired_at: datetime | None
     nuclide: Nuclide | None
-    time_zone_assumed: bool
+    clock: _Clock
     warnings: list[str] = field(default_factory=list)
+    scan_start: datetime | None = None
+    frame_duration_s: float | None = None
+    decay_reference: str | None = None
+    #: (Bq/mL per SUV) of a GML series, per slice, before the NONE frame correction
+    suv_factor: np.ndarray | None = None
+
+    @property
+    def time_zone_assumed(self) -> bool:
+        return self.clock.assumed
 
 
-def _quantity(entries: list[_Entry], where: str, calibration_factor: float | None) -> _Quantity:
+def _frame_durations(entries: list[_Entry]) -> list[float | None]:
+    """Actual Frame Duration (0018,1242) of every slice, in s (None where absent)."""
+    out: list[float | None] = []
+    for entry in entries:
+        ms = _strict_float(entry, "ActualFrameDuration", entry.path)
+        if ms is not None and ms <= 0:
+            raise UnitsError(f"{entry.path}: ActualFrameDuration (0018,1242) is {ms:g} ms; a frame lasts a positive time, fix the header")
+        out.append(None if ms is None else ms / 1000.0)
+    return out
+
+
+def _none_correction(
+    entries: list[_Entry], starts: list[datetime | None], scan: datetime | None, durations: list[float | None], isotope: "_Isotope"
+) -> tuple[np.ndarray, datetime]:
+    """Per-slice factors that refer a NONE series' frame averages to one time, and that time
+    (module docstring, step 4)."""
+    first = entries[0]
+    missing = [e.path for e, d in zip(entries, durations) if d is None]
+    if missing:
+        raise UnitsError(
+            f"{missing[0]}: DecayCorrection NONE: the values are frame averages without decay correction, and "
+            "ActualFrameDuration (0018,1242) is missing, so the time they show is unknown; fix the header or export "
+            "the series decay corrected (START)"
+        )
+    half_life = isotope.half_life_s or (isotope.nuclide.half_life_s if isotope.nuclide else None)
+    if not half_life:
+        raise UnitsError(
+            f"{first.path}: DecayCorrection NONE: the frame averages cannot be referred to one time without "
+            "RadionuclideHalfLife (0018,1075) or a Radionuclide Code Sequence; fix the header"
+        )
+    times = [t if t is not None else scan for t in starts]
+    if any(t is None for t in times):
+        raise UnitsError(
+            f"{first.path}: DecayCorrection NONE needs each slice's AcquisitionDate/AcquisitionTime (0008,0022/0032) "
+            "or the SeriesDate/SeriesTime; fix the header"
+        )
+    nuclide = isotope.nuclide if isotope.nuclide is not None and isotope.nuclide.half_life_s == half_life else \
+        Nuclide("the nuclide of RadionuclideHalfLife", float(half_life), "header")
+    order = min(range(len(times)), key=lambda k: seconds_between(times[0], times[k]))
+    t_first = times[order]
+    t_ref = t_first + timedelta(seconds=frame_reference_offset_s(nuclide, float(durations[order])))
+    lam = nuclide.decay_constant_per_s
+    factors = np.array([
+        math.exp(-lam * seconds_between(t, t_ref)) / frame_average_factor(nuclide, float(d))
+        for t, d in zip(times, durations)
+    ])
+    return factors, t_ref
+
+
+def _quantity(entries: list[_Entry], where: str, calibration_factor: float | None, site: SiteClock | None = None) -> _Quantity:
     """Units, decay reference and conversion to Bq/mL of the slices (module docstring, step 4-5)."""
     first = entries[0]
     units_of = {}
@@ -1067,14 +1166,17 @@ def _quantity(entries: list[_Entry], where: str, calibration_factor: float | Non
             f"{first.path}: DecayCorrection (0054,1102) {stated}; a {units} series must state it as one of "
             f"{', '.join(_DECAY_CORRECTIONS)} (the time its values refer to); fix the header"
         )
-    clock = _clock(first)
+    clock = _clock(first, site)
     series_dt = _datetime(first, "SeriesDate", "SeriesTime", clock)
     acquisitions = [_datetime(e, "AcquisitionDate", "AcquisitionTime", clock, "SeriesDate") for e in entries]
     known = [a for a in acquisitions if a is not None]
-    earliest = min(known) if known else None
+    earliest = min(known, key=lambda t: seconds_between(known[0], t)) if known else None
     # QIBA pseudo-code: Series Date/Time unless it is after the (earliest) Acquisition Date/Time
-    scan = series_dt if series_dt is not None and (earliest is None or series_dt <= earliest) else earliest
+    scan = series_dt if series_dt is not None and (earliest is None or seconds_between(series_dt, earliest) >= 0) else earliest
     isotope = _isotope(first, clock, scan)
+    durations = _frame_durations(entries)
+    known_durations = [d for d in durations if d is not None]
+    frame_duration = float(np.median(known_durations)) if known_durations else None
 
     if units == "BQML":
         to_bqml = np.ones(len(entries))
@@ -1089,8 +1191,27 @@ def _quantity(entries: list[_Entry], where: str, calibration_factor: float | Non
         to_bqml = _suv_to_bqml(entries, decay_correction, scan, acquisitions, isotope)
     else:
         raise UnitsError(f"{where}: Units {units!r} cannot be converted to Bq/mL; supported: {_CONVERTIBLE_UNITS}")
-    acquired_at = isotope.injection if decay_correction == "ADMIN" else scan
-    return _Quantity(units, decay_correction, to_bqml, acquired_at, isotope.nuclide, clock.assumed, isotope.warnings)
+    suv_factor = to_bqml.copy() if units == "GML" else None
+    reference = None
+    if decay_correction == "ADMIN":
+        if isotope.injection is None and units in ("BQML", "GML"):
+            raise UnitsError(
+                f"{first.path}: DecayCorrection ADMIN: the values refer to the administration time, and the header has no "
+                "RadiopharmaceuticalStartDateTime (0018,1078) or RadiopharmaceuticalStartTime (0018,1072); fix the header"
+            )
+        acquired_at = isotope.injection
+        reference = "administration time (DecayCorrection ADMIN)"
+    elif decay_correction == "NONE" and units in ("BQML", "GML"):
+        factors, acquired_at = _none_correction(entries, acquisitions, scan, durations, isotope)
+        to_bqml = to_bqml * factors
+        reference = ("frame averages without decay correction (DecayCorrection NONE): each frame's start plus the "
+                     "frame-average correction for its ActualFrameDuration, every slice referred to the first frame's")
+    else:
+        acquired_at = scan
+        if decay_correction == "START":
+            reference = "scan start (DecayCorrection START)"
+    return _Quantity(units, decay_correction, to_bqml, acquired_at, isotope.nuclide, clock, isotope.warnings,
+                     scan_start=scan, frame_duration_s=frame_duration, decay_reference=reference, suv_factor=suv_factor)
 
 
 def _read_pixels(entries: list[_Entry], geometry: _Geometry, to_bqml: np.ndarray) -> np.ndarray:
@@ -1174,6 +1295,7 @@ def load_dicom(
     *,
     series: str | int | None = None,
     calibration_factor: float | None = None,
+    site_clock: SiteClock | None = None,
 ) -> Volume:
     """Load one classic DICOM PET series as a volume in Bq/mL.
 
@@ -1189,6 +1311,9 @@ def load_dicom(
         Series Instance UID or a unique UID prefix. Needed when several PET series are present.
     calibration_factor : float, optional
         Bq/mL per count; required for ``CNTS`` series and refused for other units.
+    site_clock : SiteClock, optional
+        The site's zone (:func:`phantometry.sitetime.site_clock`), in which times written
+        without Timezone Offset From UTC are read.
 
     Returns
     -------
@@ -1206,7 +1331,7 @@ def load_dicom(
     Warns
     -----
     TimeZoneAssumedWarning
-        When the series has no Timezone Offset From UTC and its times were read as UTC.
+        When the series has no Timezone Offset From UTC and no ``site_clock`` was given.
 
     Notes
     -----
@@ -1215,11 +1340,12 @@ def load_dicom(
     """
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", category=UserWarning, module=r"pydicom(\.|$)")
-        return _load_dicom(paths, series, calibration_factor)
+        return _load_dicom(paths, series, calibration_factor, site_clock)
 
 
 def _load_dicom(
-    paths: str | os.PathLike | Iterable[str | os.PathLike], series: str | int | None, calibration_factor: float | None
+    paths: str | os.PathLike | Iterable[str | os.PathLike], series: str | int | None, calibration_factor: float | None,
+    site_clock: SiteClock | None = None,
 ) -> Volume:
     roots = _as_path_list(paths)
     where = _describe(roots)
@@ -1244,11 +1370,12 @@ def _load_dicom(
             f"{where}: slices have {len(frames)} different FrameOfReferenceUIDs; load one consistent series"
         )
 
-    quantity = _quantity(entries, where, calibration_factor)
+    quantity = _quantity(entries, where, calibration_factor, site_clock)
     if quantity.time_zone_assumed and quantity.acquired_at is not None:
         warnings.warn(
             TimeZoneAssumedWarning(
-                f"{first.path}: no TimezoneOffsetFromUTC; times were read as UTC, check the acquisition time"
+                f"{first.path}: no TimezoneOffsetFromUTC and no site time zone given; the times are the scanner's wall "
+                "clock, not yet placed in a zone (give the site's zone, e.g. --timezone Europe/Berlin)"
             ),
             stacklevel=3,
         )
@@ -1292,4 +1419,9 @@ def _load_dicom(
         study_uid=_ascii(first.ds, "StudyInstanceUID"),
         warnings=tuple(quantity.warnings),
         bq_ml_per_suv=tuple(float(f) for f in quantity.to_bqml) if quantity.units == "GML" else (),
+        scan_start=quantity.scan_start,
+        time_basis=quantity.clock.basis,
+        time_zone=quantity.clock.label,
+        frame_duration_s=quantity.frame_duration_s,
+        decay_reference=quantity.decay_reference,
     )

@@ -33,7 +33,7 @@ from pydicom.uid import (
 from pydicom.valuerep import format_number_as_ds
 
 from ..errors import GeometryError, InputError, UnitsError
-from ..nuclides import Nuclide, get_nuclide
+from ..nuclides import Nuclide, get_nuclide, seconds_between
 from ..volume import Volume
 
 __all__ = ["write_dicom_series", "RADIONUCLIDE_CODES", "format_tz_offset"]
@@ -178,6 +178,7 @@ def write_dicom_series(
     file_prefix: str = "PT",
     image_type: tuple[str, ...] = ("ORIGINAL", "PRIMARY"),
     derivation_description: str | None = None,
+    timezone_offset: bool = True,
 ) -> list[Path]:
     """Write ``volume`` as one classic PET Image Storage file per slice.
 
@@ -232,6 +233,9 @@ def write_dicom_series(
         from another (e.g. a post-filtered copy).
     derivation_description : str, optional
         Derivation Description (0008,2111): how a derived image was made.
+    timezone_offset : bool
+        Write Timezone Offset From UTC (0008,0201). Without it the times are the local wall
+        clock of ``volume.acquired_at``, as most scanners write them.
 
     Returns
     -------
@@ -296,7 +300,7 @@ def write_dicom_series(
         if decay_correction == "ADMIN":
             decayed_dose_bq = float(injected_dose_bq)
         else:
-            elapsed_s = (series_time - injection_time).total_seconds()
+            elapsed_s = seconds_between(injection_time, series_time)
             decayed_dose_bq = float(injected_dose_bq) * 2.0 ** (-elapsed_s / nuclide.half_life_s)
         # SUVbw = C[Bq/mL] * W[g] / D[Bq]  (QIBA vendor-neutral SUV pseudo-code)
         to_stored = float(patient_weight_kg) * 1000.0 / decayed_dose_bq
@@ -320,7 +324,8 @@ def write_dicom_series(
     base.SOPClassUID = PositronEmissionTomographyImageStorage
     base.InstanceCreationDate = _da(series_time)
     base.InstanceCreationTime = _tm(series_time)
-    base.TimezoneOffsetFromUTC = tz_text
+    if timezone_offset:
+        base.TimezoneOffsetFromUTC = tz_text
     base.StudyDate = _da(series_time)
     base.SeriesDate = _da(series_time)
     base.AcquisitionDate = _da(series_time)

@@ -34,7 +34,16 @@ Loading (:func:`load_nifti`):
       AcquisitionDateTime + (ImageDecayCorrectionTime - ScanStart)   if ImageDecayCorrected
       AcquisitionDateTime                                            otherwise
 
-  ``acquired_at=`` overrides this and is taken as the reference time itself.
+  ``acquired_at=`` overrides this and is taken as the reference time itself (time basis
+  ``given time``). An ``AcquisitionDateTime`` without an offset is the scanner's wall clock,
+  read in the site's zone (``site_clock``; :mod:`phantometry.sitetime`), like DICOM times
+  without Timezone Offset From UTC; with an offset its basis is ``header offset``.
+
+  Not decay corrected (``ImageDecayCorrected`` false): the values are the frame's average
+  (DICOM/QIBA semantics), so they show the activity of the frame start plus
+  :func:`phantometry.nuclides.frame_reference_offset_s` of ``FrameDuration`` (BIDS, s; the
+  frame starts ``FrameTimesStart - ScanStart`` after ``AcquisitionDateTime``, at it when
+  ``FrameTimesStart`` is absent). Refused without ``FrameDuration`` or a nuclide.
   ``Volume.decay_correction`` is ``NONE`` when ``ImageDecayCorrected`` is false, ``ADMIN``
   when the correction time equals ``InjectionStart``, ``START`` when it equals ``ScanStart``.
   When ``TimeZero`` disagrees with ``AcquisitionDateTime - ScanStart`` (clock time, offset
@@ -47,7 +56,9 @@ Writing (:func:`write_nifti`): the volume is written as float32 ``(i, j, k)`` wi
 coordinates just change sign (LPS x = -RAS x, LPS y = -RAS y). The sidecar states the keys
 above; since a Volume keeps only the reference time, that time is written as
 ``AcquisitionDateTime`` and ``TimeZero`` with ``ScanStart = 0`` (and
-``ImageDecayCorrectionTime = 0`` when decay corrected, ``InjectionStart = 0`` for ``ADMIN``).
+``ImageDecayCorrectionTime = 0`` when decay corrected, ``InjectionStart = 0`` for ``ADMIN``). A
+volume loaded from a series without decay correction holds values referred to its
+``acquired_at`` (above), so it is written as decay corrected to it.
 """
 
 from __future__ import annotations
@@ -70,7 +81,9 @@ import numpy as np
 
 from ..errors import ImageTooLarge, InputError, UnitsError, UnsupportedSeries
 from .limits import check_voxel_count
-from ..nuclides import get_nuclide
+from ..nuclides import Nuclide, frame_reference_offset_s, get_nuclide
+from ..timeutil import parse_aware_time
+from ..sitetime import BASIS_GIVEN_TIME, BASIS_HEADER, BASIS_UNRESOLVED, SiteClock
 from ..volume import Reconstruction, Scanner, Volume
 
 __all__ = ["SidecarTimeWarning", "load_nifti", "sidecar_path", "write_nifti"]
@@ -152,16 +165,7 @@ def _seconds(meta: dict[str, Any], key: str, where: Path | None) -> float | None
 
 
 def _parse_aware(text: Any, what: str) -> datetime:
-    if isinstance(text, datetime):
-        t = text
-    else:
-        try:
-            t = datetime.fromisoformat(str(text).strip())
-        except ValueError:
-            raise InputError(f"{what} {text!r} is not ISO 8601; write e.g. 2026-11-03T10:30:00+01:00") from None
-    if t.tzinfo is None or t.utcoffset() is None:
-        raise InputError(f"{what} {t.isoformat()} has no time-zone offset; write e.g. {t.isoformat()}+01:00")
-    return t
+    return parse_aware_time(text, what)
 
 
 def _units_factor(units: str, calibration_factor: float | None, what: str) -> tuple[str, float]:
@@ -216,8 +220,32 @@ def _reconstruction(meta: dict[str, Any], where: Path | None, shape_zyx: tuple[i
     )
 
 
-def _reference_time(meta: dict[str, Any], where: Path | None) -> tuple[datetime | None, str | None]:
-    """Reference time and DICOM-style decay-correction term from the sidecar (module docstring)."""
+def _frame(meta: dict[str, Any], where: Path | None, scan_start: float | None) -> tuple[float | None, float]:
+    """(FrameDuration in s or None, frame start in s after the scan start) of a one-frame image."""
+    def first(key: str) -> float | None:
+        value = meta.get(key)
+        if isinstance(value, list):
+            if len(value) != 1:
+                raise InputError(f"{where}: {key} lists {len(value)} frames; a static image has one, fix the sidecar")
+            value = value[0]
+        if value is None:
+            return None
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) or abs(value) > _MAX_SECONDS:
+            raise InputError(f"{where}: {key} is {value!r}, expected seconds (a number); fix the sidecar")
+        return float(value)
+
+    duration = first("FrameDuration")
+    if duration is not None and duration <= 0:
+        raise InputError(f"{where}: FrameDuration is {duration:g} s; a frame lasts a positive time, fix the sidecar")
+    start = first("FrameTimesStart")
+    return duration, (start - (scan_start or 0.0)) if start is not None else 0.0
+
+
+def _reference_time(
+    meta: dict[str, Any], where: Path | None, site: SiteClock | None = None, nuclide: Nuclide | None = None
+) -> tuple[datetime | None, str | None, str | None, datetime | None, float | None]:
+    """Reference time, DICOM-style decay-correction term, time basis, scan start and frame
+    duration from the sidecar (module docstring)."""
     corrected = _get(meta, "ImageDecayCorrected", bool, where)
     scan_start = _seconds(meta, "ScanStart", where)
     injection_start = _seconds(meta, "InjectionStart", where)
@@ -233,10 +261,11 @@ def _reference_time(meta: dict[str, Any], where: Path | None) -> tuple[datetime 
         elif scan_start is not None and correction_time == scan_start:
             decay_correction = "START"
 
+    duration, frame_offset = _frame(meta, where, scan_start)
     raw = meta.get("AcquisitionDateTime")
     if raw is None:
-        return None, decay_correction
-    start = _parse_aware(raw, f"{where}: AcquisitionDateTime")
+        return None, decay_correction, None, None, duration
+    start, basis = _parse_scanner_time(raw, f"{where}: AcquisitionDateTime", site)
     zero = _get(meta, "TimeZero", str, where)
     if zero is not None and scan_start is not None:
         m = re.fullmatch(r"(\d{1,2}):(\d{2})(?::(\d{2}(?:\.\d*)?))?", zero.strip())
@@ -260,8 +289,36 @@ def _reference_time(meta: dict[str, Any], where: Path | None) -> tuple[datetime 
                 f"{where}: ImageDecayCorrectionTime is given without ScanStart, so the decay reference cannot be placed; "
                 "add ScanStart or pass --acquired-at"
             )
-        return start + timedelta(seconds=correction_time - scan_start), decay_correction
-    return start, decay_correction
+        return start + timedelta(seconds=correction_time - scan_start), decay_correction, basis, start, duration
+    if corrected is False:
+        if duration is None:
+            raise InputError(
+                f"{where}: ImageDecayCorrected is false, so the values are frame averages, and FrameDuration is missing: "
+                "the time they show is unknown; add FrameDuration (s) or pass --acquired-at"
+            )
+        if nuclide is None:
+            raise InputError(
+                f"{where}: ImageDecayCorrected is false: the frame average is referred to a time with the nuclide's "
+                "half-life, and TracerRadionuclide is missing; add it or pass --nuclide"
+            )
+        ref = start + timedelta(seconds=frame_offset + frame_reference_offset_s(nuclide, duration))
+        return ref, decay_correction, basis, start, duration
+    return start, decay_correction, basis, start, duration
+
+
+def _parse_scanner_time(text: Any, what: str, site: SiteClock | None) -> tuple[datetime, str]:
+    """A sidecar date-time and its basis: its own offset, else the site's zone, else unresolved."""
+    try:
+        t = text if isinstance(text, datetime) else datetime.fromisoformat(str(text).strip())
+    except ValueError:
+        raise InputError(f"{what} {text!r} is not ISO 8601; write e.g. 2026-11-03T10:30:00+01:00") from None
+    if t.tzinfo is not None and t.utcoffset() is not None:
+        return t, BASIS_HEADER
+    if site is not None:
+        return t.replace(tzinfo=site.zone), site.basis
+    from datetime import timezone as _tz
+
+    return t.replace(tzinfo=_tz.utc), BASIS_UNRESOLVED
 
 
 # ---------------------------------------------------------------------------- header checks
@@ -365,6 +422,7 @@ def load_nifti(
     acquired_at: datetime | str | None = None,
     nuclide: str | None = None,
     calibration_factor: float | None = None,
+    site_clock: SiteClock | None = None,
 ) -> Volume:
     """Load a NIfTI-1/2 PET image (and its BIDS-PET sidecar) as a volume in Bq/mL.
 
@@ -385,6 +443,8 @@ def load_nifti(
         Radionuclide, overriding ``TracerRadionuclide``.
     calibration_factor : float, optional
         Bq/mL per count, for ``counts`` images only.
+    site_clock : SiteClock, optional
+        The site's zone, for a sidecar ``AcquisitionDateTime`` without an offset.
 
     Returns
     -------
@@ -453,21 +513,32 @@ def load_nifti(
         )
     affine = np.asarray(img.affine, dtype=float)
 
-    try:
-        ref_time, decay_correction = _reference_time(meta, side)
-    except OverflowError:
-        raise InputError(f"{side}: AcquisitionDateTime with the sidecar's time offsets falls outside the calendar; fix the sidecar") from None
-    if acquired_at is not None:
-        ref_time = _parse_aware(acquired_at, "--acquired-at")
-
     nuclide_text = nuclide if nuclide is not None else _get(meta, "TracerRadionuclide", str, side)
-    nuclide_name = None
+    nuclide_obj = None
     if nuclide_text is not None:
         try:
-            nuclide_name = get_nuclide(nuclide_text).name
+            nuclide_obj = get_nuclide(nuclide_text)
         except InputError as exc:
             origin = "--nuclide" if nuclide is not None else f"{side}: TracerRadionuclide"
             raise InputError(f"{origin}: {exc}") from None
+    nuclide_name = nuclide_obj.name if nuclide_obj is not None else None
+
+    try:
+        if acquired_at is not None:  # the time itself is given; the sidecar's terms are kept
+            without_time = {k: v for k, v in meta.items() if k != "AcquisitionDateTime"}
+            _, decay_correction, _, _, duration = _reference_time(without_time, side, site_clock, nuclide_obj)
+            ref_time, basis, scan_start = _parse_aware(acquired_at, "--acquired-at"), BASIS_GIVEN_TIME, None
+        else:
+            ref_time, decay_correction, basis, scan_start, duration = _reference_time(meta, side, site_clock, nuclide_obj)
+    except OverflowError:
+        raise InputError(f"{side}: AcquisitionDateTime with the sidecar's time offsets falls outside the calendar; fix the sidecar") from None
+    zone_label = None
+    if basis == BASIS_HEADER and ref_time is not None:
+        from ..sitetime import offset_text
+
+        zone_label = f"{offset_text(ref_time)} (sidecar)"
+    elif site_clock is not None and basis == site_clock.basis:
+        zone_label = site_clock.label
 
     spacing_xyz = tuple(np.linalg.norm(affine[:3, :3], axis=0))
     return Volume(
@@ -485,21 +556,28 @@ def load_nifti(
         ),
         reconstruction=_reconstruction(meta, side, data_kji.shape, spacing_xyz),
         source=str(p),
+        scan_start=scan_start,
+        time_basis=basis,
+        time_zone=zone_label,
+        frame_duration_s=duration,
+        decay_reference=("frame average without decay correction: the frame start plus the frame-average correction "
+                         "for FrameDuration" if decay_correction == "NONE" and acquired_at is None else None),
     )
 
 
 # ---------------------------------------------------------------------------- writing
-def _sidecar_dict(volume: Volume) -> dict[str, Any]:
+def _sidecar_dict(volume: Volume, local_times: bool = False) -> dict[str, Any]:
     meta: dict[str, Any] = {"Modality": "PT", "Units": "Bq/mL"}
     if volume.nuclide:
         meta["TracerRadionuclide"] = volume.nuclide
     if volume.acquired_at is not None:
         meta["TimeZero"] = volume.acquired_at.strftime("%H:%M:%S")
         meta["ScanStart"] = 0
-        meta["AcquisitionDateTime"] = volume.acquired_at.isoformat()
-    if volume.decay_correction == "NONE":
-        meta["ImageDecayCorrected"] = False
-    elif volume.decay_correction in ("START", "ADMIN"):
+        moment = volume.acquired_at.replace(tzinfo=None) if local_times else volume.acquired_at
+        meta["AcquisitionDateTime"] = moment.isoformat()
+    if volume.decay_correction in ("START", "ADMIN", "NONE"):
+        # a Volume's values show the activity of acquired_at (a NONE series' frame averages
+        # were referred to it when loaded), so they are written as decay corrected to it
         meta["ImageDecayCorrected"] = True
         meta["ImageDecayCorrectionTime"] = 0
         if volume.decay_correction == "ADMIN":
@@ -525,7 +603,7 @@ def _sidecar_dict(volume: Volume) -> dict[str, Any]:
     return meta
 
 
-def write_nifti(volume: Volume, path: str | os.PathLike, *, sidecar: bool = True) -> Path:
+def write_nifti(volume: Volume, path: str | os.PathLike, *, sidecar: bool = True, local_times: bool = False) -> Path:
     """Write a volume as NIfTI-1 (float32, Bq/mL) and, by default, a BIDS-PET JSON sidecar.
 
     Parameters
@@ -535,6 +613,8 @@ def write_nifti(volume: Volume, path: str | os.PathLike, *, sidecar: bool = True
         Output file; ``.nii.gz`` is appended unless the name ends in ``.nii`` or ``.nii.gz``.
     sidecar : bool
         Also write the ``.json`` sidecar (keys in the module docstring).
+    local_times : bool
+        Write ``AcquisitionDateTime`` as the local wall clock without a UTC offset.
 
     Returns
     -------
@@ -559,5 +639,5 @@ def write_nifti(volume: Volume, path: str | os.PathLike, *, sidecar: bool = True
     p.parent.mkdir(parents=True, exist_ok=True)
     nib.save(img, str(p))
     if sidecar:
-        sidecar_path(p).write_text(json.dumps(_sidecar_dict(volume), indent=2) + "\n", encoding="utf-8")
+        sidecar_path(p).write_text(json.dumps(_sidecar_dict(volume, local_times), indent=2) + "\n", encoding="utf-8")
     return p

@@ -8,6 +8,9 @@ Statistical Quality Control Handbook, 1956), the acceptance-band limits of each 
 numbers of the rules that fired (key under the chart). Line styles differ as well as colours,
 so the chart reads in greyscale print.
 
+It knows only the result types (:class:`phantometry.ledger.types.Trend`), never the store:
+``phantometry ledger trend --chart`` calls :func:`save_trend_chart` on the trend it was given.
+
 Each drawn element carries a ``gid`` (``values``, ``mean``, ``warning_high``,
 ``warning_low``, ``action_high``, ``action_low``, ``band_low``, ``band_high``,
 ``baseline_points``, ``flagged``) so tests and callers can find it.
@@ -27,7 +30,7 @@ from .rules import RULE_NUMBERS, RULES
 if TYPE_CHECKING:  # pragma: no cover
     from matplotlib.figure import Figure
 
-    from .store import Trend
+    from .types import Trend
 
 
 def trend_figure(trend: "Trend") -> "Figure":
@@ -85,15 +88,17 @@ def trend_figure(trend: "Trend") -> "Figure":
     return fig
 
 
-def save_trend_chart(trend: "Trend", path: str | os.PathLike) -> Path:
-    """Write the control chart of ``trend`` as PNG to ``path`` (written to a temporary name, then moved)."""
+def save_trend_chart(trend: "Trend", path: str | os.PathLike, *, overwrite: bool = False) -> Path:
+    """Write the control chart of ``trend`` as PNG to ``path`` (written to a temporary name, then moved).
+
+    Raises
+    ------
+    InputError
+        ``path`` exists and ``overwrite`` is False, is a folder, or cannot be written.
+    """
+    from .outfiles import check_output_file, save_figure_atomically
+
     target = Path(path)
-    target.parent.mkdir(parents=True, exist_ok=True)
-    fig = trend_figure(trend)
-    tmp = target.with_name(f".{target.name}.tmp-{os.getpid()}.png")
-    try:
-        fig.savefig(tmp, format="png")
-        os.replace(tmp, target)
-    finally:
-        tmp.unlink(missing_ok=True)
+    check_output_file(target, overwrite, "ledger trend --chart")
+    save_figure_atomically(trend_figure(trend), target)
     return target

@@ -32,15 +32,33 @@ The migrations live in ``migrations/`` beside this module and run programmatical
 ``alembic.ini``): :func:`ensure_schema` brings a store to the newest revision under a lock
 (``BEGIN IMMEDIATE`` on SQLite, an advisory transaction lock on PostgreSQL), so several
 processes opening a new store at once create it exactly once.
+
+Opening is retried on lock conflicts. SQLite does not call its busy handler when a connection
+that already reads must become a writer (it would risk a deadlock); switching a new file to
+write-ahead logging is such a case, so several processes creating one store at once could get
+"database is locked" at once. :func:`set_wal` and :func:`ensure_schema` therefore retry
+themselves, with jittered back-off, for up to :data:`SQLITE_BUSY_TIMEOUT_S`.
+
+A store is created only when asked (``create=True``): read-only commands open with
+``create=False`` and get :class:`~phantometry.errors.LedgerError` for a SQLite file that does
+not exist, or a database without the ledger's tables, and nothing is created (no folder, no
+file, no table).
+
+Text limits are the column lengths below, the same on every backend: :func:`check_text`
+refuses a longer value (and the NUL character, which PostgreSQL cannot store) before the
+database sees it, so SQLite, which does not enforce ``VARCHAR`` lengths, keeps exactly what
+PostgreSQL keeps.
 """
 
 from __future__ import annotations
 
 import functools
 import os
+import random
+import time
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any
+from typing import Any, Callable, TypeVar
 
 import sqlalchemy as sa
 from sqlalchemy import event
@@ -48,6 +66,13 @@ from sqlalchemy.engine import URL, Connection, Engine, make_url
 from sqlalchemy.exc import ArgumentError, DBAPIError, NoSuchModuleError
 
 from ..errors import LedgerError
+
+T = TypeVar("T")
+
+
+class NoLedgerStore(LedgerError):
+    """The store named does not exist (no SQLite file, or a database without the ledger's tables)."""
+
 
 #: Environment variable selecting the ledger database (any SQLAlchemy URL, or a file path).
 DB_ENV = "PHANTOMETRY_DB"
@@ -237,20 +262,54 @@ def display_url(url: URL | str) -> str:
 
 
 # ---------------------------------------------------------------------------- engines
-def make_engine(url: URL) -> Engine:
+def sqlite_path(url: URL) -> Path | None:
+    """The file of a SQLite URL (None for other backends, in-memory and ``file:`` URI stores)."""
+    if url.get_backend_name() != "sqlite":
+        return None
+    db = url.database
+    if not db or db == ":memory:" or db.startswith("file:"):
+        return None
+    return Path(db)
+
+
+def check_store_exists(url: URL) -> None:
+    """Refuse a SQLite store whose file does not exist (read-only opening creates nothing).
+
+    Raises
+    ------
+    LedgerError
+        The file is missing, or the path is a folder.
+    """
+    path = sqlite_path(url)
+    if path is None:
+        return
+    if path.is_dir():
+        raise LedgerError(f"ledger {display_url(url)}: {path} is a folder, not a ledger file; give the ledger.sqlite3 file with --db")
+    if not path.exists():
+        raise NoLedgerStore(
+            f"ledger {display_url(url)}: no such store ({path} does not exist); check --db / ${DB_ENV}, "
+            "or record an analysis first (phantometry ledger add, measure --record)"
+        )
+
+
+def make_engine(url: URL, *, create: bool = True) -> Engine:
     """An engine with the settings the ledger relies on.
 
-    SQLite: write-ahead log (readers never block the writer), a busy timeout of
-    :data:`SQLITE_BUSY_TIMEOUT_S`, foreign keys on, and transactions begun by us so that a
-    writing transaction takes the lock at ``BEGIN IMMEDIATE`` (the busy timeout then applies
-    instead of a deadlock error on lock upgrade). PostgreSQL: pre-ping pooled connections.
+    SQLite: a busy timeout of :data:`SQLITE_BUSY_TIMEOUT_S`, foreign keys on, and transactions
+    begun by us so that a writing transaction takes the lock at ``BEGIN IMMEDIATE`` (the busy
+    timeout then applies instead of a deadlock error on lock upgrade); the write-ahead log is
+    switched on by :func:`ensure_schema` (:func:`set_wal`). With ``create`` the folder of a new
+    SQLite file is made; without it nothing is created. PostgreSQL: pre-ping pooled connections.
     """
     backend = url.get_backend_name()
     try:
         if backend == "sqlite":
-            db = url.database
-            if db and db != ":memory:" and not db.startswith("file:"):
-                Path(db).parent.mkdir(parents=True, exist_ok=True)
+            path = sqlite_path(url)
+            if path is not None and create:
+                try:
+                    path.parent.mkdir(parents=True, exist_ok=True)
+                except OSError as exc:
+                    raise LedgerError(f"ledger {display_url(url)}: cannot create the folder {path.parent} ({exc.strerror or exc})") from None
             engine = sa.create_engine(url, connect_args={"timeout": SQLITE_BUSY_TIMEOUT_S})
             _sqlite_events(engine)
         else:
@@ -269,13 +328,69 @@ def _sqlite_events(engine: Engine) -> None:
         cur = dbapi_conn.cursor()
         cur.execute(f"PRAGMA busy_timeout = {int(SQLITE_BUSY_TIMEOUT_S * 1000)}")
         cur.execute("PRAGMA foreign_keys = ON")
-        cur.execute("PRAGMA journal_mode = WAL")
         cur.close()
 
     @event.listens_for(engine, "begin")
     def _on_begin(conn: Connection):  # pragma: no cover
         mode = "IMMEDIATE" if conn.get_execution_options().get(WRITE_OPTION) else "DEFERRED"
         conn.exec_driver_sql(f"BEGIN {mode}")
+
+
+def transient(exc: BaseException) -> bool:
+    """A lock, deadlock or serialisation conflict worth retrying (SQLite or PostgreSQL)."""
+    orig = getattr(exc, "orig", exc)
+    text = str(orig).lower()
+    if "database is locked" in text or "database table is locked" in text or "busy" in text:
+        return True
+    return getattr(orig, "sqlstate", None) in ("40001", "40P01", "55P03")
+
+
+def retry_transient(fn: Callable[[], T], *, budget_s: float = SQLITE_BUSY_TIMEOUT_S) -> T:
+    """Call ``fn`` until it does not fail with a transient lock error, for up to ``budget_s``.
+
+    Jittered exponential back-off from 20 ms to 1 s; the last error is raised when the time
+    is up. This is the busy handler for the cases where SQLite returns "database is locked"
+    without calling its own (a reader that must become a writer).
+    """
+    deadline = time.monotonic() + budget_s
+    delay = 0.02
+    while True:
+        try:
+            return fn()
+        except (DBAPIError, *_sqlite_errors()) as exc:
+            if not transient(exc) or time.monotonic() + delay > deadline:
+                raise
+        time.sleep(delay * (1.0 + random.random()))
+        delay = min(delay * 2.0, 1.0)
+
+
+def _sqlite_errors() -> tuple[type[BaseException], ...]:
+    import sqlite3
+
+    return (sqlite3.Error,)
+
+
+def set_wal(engine: Engine) -> None:
+    """Switch a SQLite store to write-ahead logging (readers never block the writer); once.
+
+    The mode is kept in the file, so this writes only the first time. The switch upgrades a
+    read transaction to a write one, which SQLite refuses at once (without its busy handler)
+    while another connection writes, hence :func:`retry_transient` around it.
+    """
+    if engine.dialect.name != "sqlite" or sqlite_path(engine.url) is None:
+        return
+
+    def switch() -> None:
+        raw = engine.raw_connection()  # outside any transaction: the mode cannot change inside one
+        try:
+            cur = raw.cursor()
+            if str(cur.execute("PRAGMA journal_mode").fetchone()[0]).lower() != "wal":
+                cur.execute("PRAGMA journal_mode = WAL")
+            cur.close()
+        finally:
+            raw.close()
+
+    retry_transient(switch)
 
 
 def writing(conn: Connection) -> Connection:
@@ -341,19 +456,34 @@ def upgrade(engine: Engine, revision: str = "head") -> str:
     return reached or ""
 
 
-def ensure_schema(engine: Engine, where: str, *, allow_upgrade: bool = True) -> str:
+def ensure_schema(engine: Engine, where: str, *, allow_upgrade: bool = True, create: bool = True) -> str:
     """Check the store's revision and bring it to the newest one.
+
+    Lock conflicts while opening (several processes creating one store at once) are retried
+    (:func:`retry_transient`). Without ``create``, a database that holds no ledger yet is
+    refused and left untouched.
 
     Raises
     ------
     LedgerError
         When the store was written by a newer phantometry (unknown revision), or an upgrade
-        is needed and ``allow_upgrade`` is False, or the database cannot be reached.
+        is needed and ``allow_upgrade`` is False, or there is no ledger and ``create`` is
+        False, or the database cannot be reached.
     """
-    try:
+    def read_revision() -> str | None:
         with engine.connect() as conn:
             rev = current_revision(conn)
             conn.rollback()
+        return rev
+
+    try:
+        rev = retry_transient(read_revision)
+        if rev is None and not create:
+            raise NoLedgerStore(
+                f"ledger {where}: no ledger in this database yet (no phantometry tables); check --db / ${DB_ENV}, "
+                "or record an analysis first (phantometry ledger add, measure --record)"
+            )
+        set_wal(engine)
         if rev == HEAD_REVISION:  # the usual case: no Alembic import, one small query
             return rev
         head = head_revision()
@@ -364,9 +494,68 @@ def ensure_schema(engine: Engine, where: str, *, allow_upgrade: bool = True) -> 
             )
         if not allow_upgrade:
             raise LedgerError(f"ledger {where}: schema revision {rev or 'none'} needs an upgrade to {head}; open it with upgrades allowed")
-        return upgrade(engine)
-    except DBAPIError as exc:
+        return retry_transient(lambda: upgrade(engine))
+    except (DBAPIError, *_sqlite_errors()) as exc:
         raise LedgerError(f"ledger {where}: cannot open the database ({_one_line(exc)}); check the URL and that the server runs") from None
+
+
+# ---------------------------------------------------------------------------- text limits
+#: Words for the columns in messages (the limit itself is the column's length).
+_COLUMN_WORDS = {
+    ("phantometry_sites", "name"): "site label",
+    ("phantometry_scanners", "name"): "scanner label",
+    ("phantometry_scanners", "manufacturer"): "scanner manufacturer",
+    ("phantometry_scanners", "model"): "scanner model",
+    ("phantometry_scanners", "serial"): "scanner serial number",
+    ("phantometry_analyses", "uid"): "analysis uid",
+    ("phantometry_analyses", "series_uid"): "series UID",
+    ("phantometry_analyses", "template"): "template name",
+    ("phantometry_analyses", "protocol"): "protocol label",
+    ("phantometry_analyses", "reconstruction"): "reconstruction label",
+    ("phantometry_analyses", "nuclide"): "nuclide",
+    ("phantometry_analyses", "settings_hash"): "settings hash",
+    ("phantometry_analyses", "tool_version"): "tool version",
+    ("phantometry_analyses", "verdict"): "verdict",
+    ("phantometry_measurements", "roi"): "ROI name",
+    ("phantometry_measurements", "metric"): "metric name",
+    ("phantometry_measurements", "unit"): "unit",
+    ("phantometry_measurements", "band"): "band name",
+    ("phantometry_measurements", "verdict"): "verdict",
+    ("phantometry_measurements", "note"): "note",
+    ("phantometry_baselines", "protocol"): "protocol label",
+    ("phantometry_baselines", "note"): "baseline note",
+}
+
+
+def text_limit(table: sa.Table, column: str) -> int | None:
+    """The most characters a text column keeps (None: unlimited)."""
+    return getattr(table.c[column].type, "length", None)
+
+
+def check_text(table: sa.Table, values: dict[str, Any], where: str) -> None:
+    """Refuse text the database would refuse or that SQLite alone would keep.
+
+    Every string value of a column with a length must fit it (characters, as PostgreSQL
+    counts them), and no string may hold the NUL character. Checked before any SQL runs, so
+    both backends keep the same values.
+
+    Raises
+    ------
+    LedgerError
+        One line naming the field, its length and the limit.
+    """
+    for key, value in values.items():
+        if not isinstance(value, str) or key not in table.c:
+            continue
+        what = _COLUMN_WORDS.get((table.name, key), key.replace("_", " "))
+        if "\x00" in value:
+            raise LedgerError(f"{where}: the {what} holds a NUL character, which the ledger cannot store; remove it")
+        limit = text_limit(table, key)
+        if limit is not None and len(value) > limit:
+            shown = value[:40] + ("..." if len(value) > 40 else "")
+            raise LedgerError(
+                f"{where}: the {what} {shown!r} is {len(value)} characters long; the ledger keeps at most {limit}; shorten it"
+            )
 
 
 def _one_line(exc: BaseException) -> str:

@@ -1,4 +1,4 @@
-"""The trend ledger: record analyses, query them, trend one metric, baselines, drift checks, CSV.
+"""The trend ledger's database access: :class:`Ledger` records analyses, queries them, trends one metric, keeps baselines, exports and imports CSV.
 
 :class:`Ledger` is the library API; the ``phantometry ledger`` commands and
 ``phantometry measure --record`` are thin wiring over it. Every write is one transaction: an
@@ -8,36 +8,50 @@ Privacy by construction: only named, non-identifying fields are taken from a ser
 (series UID, acquisition time, nuclide, reconstruction label, scanner make, model, station
 and serial). Patient name, ID, birth date and accession number are never read, stored or
 exported; neither is the source file path nor the series description (free text).
+
+What is not database access lives beside it: the result types (:mod:`.types`), the checks of
+what goes in (:mod:`.inputs`: times, rows, verdicts, fill records, text limits, checked before
+any SQL runs), labels and the identity of an analysis (:mod:`.labels`), the trend statistics
+(:mod:`.trends`, over the drift rules of :mod:`.rules`) and the CSV format (:mod:`.csvio`,
+with spreadsheet-safe cells that the import reads back exactly).
 """
 
 from __future__ import annotations
 
-import csv
-import hashlib
-import json
 import math
 import os
 import random
-import tempfile
 import time
 import uuid
 from collections import OrderedDict, defaultdict
-from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any, Callable, Iterable, Mapping, Sequence, TypeVar
+from typing import Any, Callable, Mapping, Sequence, TypeVar
 
 import sqlalchemy as sa
 from sqlalchemy.engine import Connection
 from sqlalchemy.exc import DBAPIError, IntegrityError, OperationalError
 
 from ..errors import InputError, LedgerError
-from ..results import CSV_COLUMNS, Measurement
-from .rules import ControlLimits, control_limits, drift_flags
+from ..results import Measurement
+from .csvio import LedgerCsv, LedgerCsvWriter, baselines_cell, read_ledger_csv
+from .inputs import (
+    VERDICT_ORDER,
+    analysis_verdict,
+    aware_utc,
+    check_analysis_text,
+    measurement_row,
+    read_result_document,
+    validated_fill,
+)
+from .labels import clean_label, default_protocol_label, default_scanner_label, default_site_label, record_key, settings_hash
+from .outfiles import check_output_file, write_text_atomically
 from .schema import (
     analyses,
     baseline_members,
     baselines,
+    check_store_exists,
+    check_text,
     display_url,
     ensure_schema,
     make_engine,
@@ -45,347 +59,37 @@ from .schema import (
     resolve_url,
     scanners,
     sites,
+    transient,
     writing,
+)
+from .trends import UNTRENDED_UNITS, trend_flags, trend_limits
+from .types import (
+    AnalysisInfo,
+    BaselineInfo,
+    CheckResult,
+    ExportReport,
+    ImportReport,
+    RecordResult,
+    ScannerInfo,
+    Trend,
+    TrendPoint,
 )
 
 T = TypeVar("T")
 
-#: Columns of ``ledger export`` / ``ledger import`` CSV files, in order. A stable contract:
-#: columns are only ever appended. One row per measurement (long format); times are ISO 8601
-#: in UTC; numbers are written with full precision (Python ``repr``), empty when missing.
-LEDGER_CSV_COLUMNS = [
-    "analysis_uid",
-    "recorded_at",
-    "site",
-    "scanner",
-    "protocol",
-    "series_uid",
-    "template",
-    "acquired_at",
-    "reconstruction",
-    "tool_version",
-    "settings_hash",
-    # then the measurement columns of measurements.csv, from roi on, in the same order
-    *CSV_COLUMNS[CSV_COLUMNS.index("roi") :],
-]
-_FLOAT_COLUMNS = ("value", "uncertainty", "band_low", "band_high")
-_ANALYSIS_COLUMNS = (
-    "recorded_at", "site", "scanner", "protocol", "series_uid", "template", "acquired_at",
-    "reconstruction", "tool_version", "settings_hash",
-)
-
-#: Units whose metrics ``check`` skips unless asked: positions (mm) and absolute
-#: concentrations (Bq/mL) follow the day's set-up and filling, not the scanner's performance.
-UNTRENDED_UNITS = ("mm", "Bq/mL")
-
-#: Verdict order, worst first, for the analysis-level verdict.
-VERDICT_ORDER = ("fail", "pass", "n/a")
-
-_LABEL_MAX = 200
 _RETRIES = 12
 
 
-# ----------------------------------------------------------------------------- results
-@dataclass(frozen=True)
-class RecordResult:
-    """What :meth:`Ledger.record` stored."""
-
-    analysis_id: int
-    uid: str
-    site: str
-    scanner: str
-    protocol: str
-    n_measurements: int
-    replaced: bool
-
-
-@dataclass(frozen=True)
-class AnalysisInfo:
-    """One recorded analysis (without its measurements). Times are aware UTC datetimes."""
-
-    id: int
-    uid: str
-    site: str
-    scanner: str
-    protocol: str
-    series_uid: str | None
-    template: str
-    acquired_at: datetime
-    recorded_at: datetime
-    reconstruction: str | None
-    nuclide: str | None
-    tool_version: str
-    verdict: str | None
-    settings_hash: str
-
-
-@dataclass(frozen=True)
-class BaselineInfo:
-    """The analyses of one scanner and protocol that control limits come from."""
-
-    id: int
-    site: str
-    scanner: str
-    protocol: str
-    created_at: datetime
-    note: str | None
-    analysis_ids: tuple[int, ...]
-    first_acquired_at: datetime | None
-    last_acquired_at: datetime | None
-
-
-@dataclass(frozen=True)
-class TrendPoint:
-    """One analysis's value of the trended metric."""
-
-    analysis_id: int
-    analysis_uid: str
-    acquired_at: datetime
-    value: float | None
-    unit: str
-    uncertainty: float | None
-    band_low: float | None
-    band_high: float | None
-    verdict: str | None
-    in_baseline: bool
-
-
-@dataclass(frozen=True)
-class TrendFlag:
-    """A drift rule that fired at one point of a trend."""
-
-    analysis_id: int
-    acquired_at: datetime
-    value: float
-    rule: str
-    description: str
-    first_acquired_at: datetime
-
-
-@dataclass
-class Trend:
-    """One metric of one ROI for one scanner and protocol over time.
-
-    Attributes
-    ----------
-    points : list of TrendPoint
-        In acquisition order.
-    limits : ControlLimits or None
-        From the current baseline, else from all points shown (``limits.source`` says which);
-        None when fewer than two values are available.
-    flags : list of TrendFlag
-        Drift rules that fired (see :mod:`phantometry.ledger.rules`).
-    notes : list of str
-        Remarks for the reader (no baseline set, few baseline points, ...).
-    """
-
-    site: str
-    scanner: str
-    protocol: str
-    roi: str
-    metric: str
-    unit: str
-    points: list[TrendPoint]
-    limits: ControlLimits | None
-    flags: list[TrendFlag]
-    notes: list[str] = field(default_factory=list)
-
-    def flags_at(self, analysis_id: int) -> list[TrendFlag]:
-        """The flags sitting on one analysis."""
-        return [f for f in self.flags if f.analysis_id == analysis_id]
-
-    def chart(self, path: str | os.PathLike) -> Path:
-        """Write the control chart PNG (see :func:`phantometry.ledger.chart.save_trend_chart`)."""
-        from .chart import save_trend_chart
-
-        return save_trend_chart(self, path)
-
-
-@dataclass(frozen=True)
-class CheckResult:
-    """Drift flags of one metric series found by :meth:`Ledger.check`."""
-
-    site: str
-    scanner: str
-    protocol: str
-    roi: str
-    metric: str
-    unit: str
-    n_points: int
-    limits: ControlLimits | None
-    flags: list[TrendFlag]
-
-
-@dataclass(frozen=True)
-class ExportReport:
-    """What :meth:`Ledger.export_csv` wrote. ``started_at`` is a safe next ``since``."""
-
-    path: Path
-    rows: int
-    analyses: int
-    started_at: datetime
-
-
-@dataclass(frozen=True)
-class ImportReport:
-    """What :meth:`Ledger.import_csv` did, counted in analyses."""
-
-    added: int
-    replaced: int
-    skipped: int
-    rows: int
-
-
-@dataclass(frozen=True)
-class ScannerInfo:
-    """A scanner known to the ledger, with its protocols and number of analyses each."""
-
-    id: int
-    site: str
-    name: str
-    manufacturer: str | None
-    model: str | None
-    serial: str | None
-    protocols: dict[str, int]
-
-
-# ----------------------------------------------------------------------------- helpers
 def _utc_now() -> datetime:
     return datetime.now(timezone.utc)
 
 
-def _aware(value: Any, what: str, where: str) -> datetime:
-    if isinstance(value, str):
-        try:
-            value = datetime.fromisoformat(value.strip())
-        except ValueError:
-            raise LedgerError(f"{where}: {what} {value!r} is not an ISO 8601 time; expected e.g. 2026-11-03T10:30:00+01:00") from None
-    if not isinstance(value, datetime):
-        raise LedgerError(f"{where}: {what} is missing; the ledger needs a timezone-aware time")
-    if value.tzinfo is None or value.utcoffset() is None:
-        raise LedgerError(f"{where}: {what} {value.isoformat()} has no time zone; give an offset such as +01:00")
-    return value.astimezone(timezone.utc)
-
-
-def _label(value: Any, what: str, where: str) -> str:
-    text = " ".join(str(value).split()) if value is not None else ""
-    if not text:
-        raise LedgerError(f"{where}: the {what} label is empty; give --{what} NAME")
-    if len(text) > _LABEL_MAX:
-        raise LedgerError(f"{where}: the {what} label is longer than {_LABEL_MAX} characters; shorten it")
-    return text
-
-
-def _canonical_json(obj: Any) -> str:
-    return json.dumps(obj, sort_keys=True, separators=(",", ":"), default=str, allow_nan=False)
-
-
-def settings_hash(fill_record: Mapping[str, Any] | None, settings: Mapping[str, Any] | None = None) -> str:
-    """SHA-256 (hex) of the settings that make two analyses of one series differ.
-
-    The settings are the fill record and any extra ``settings`` mapping (canonical JSON with
-    sorted keys), so re-measuring a series with another fill record is a new analysis,
-    while recording the same measurement twice is a duplicate.
-    """
-    return hashlib.sha256(_canonical_json({"fill_record": fill_record or None, "settings": settings or None}).encode()).hexdigest()
-
-
-def _record_key(series_uid: str | None, acquired_at: datetime, template: str, settings_hash_hex: str) -> str:
-    identity = f"series:{series_uid}" if series_uid else f"acquired:{acquired_at.astimezone(timezone.utc).isoformat()}"
-    return hashlib.sha256(f"{identity}\x1f{template}\x1f{settings_hash_hex}".encode()).hexdigest()
-
-
-def analysis_verdict(verdicts: Iterable[str | None]) -> str | None:
-    """The worst of measurement verdicts: ``fail`` over ``pass`` over ``n/a``; None if none."""
-    present = {v for v in verdicts if v}
-    for v in VERDICT_ORDER:
-        if v in present:
-            return v
-    return None
-
-
-def _finite_or_none(v: Any) -> float | None:
-    if v is None or v == "":
-        return None
-    f = float(v)
-    return f if math.isfinite(f) else None
-
-
-def _row_dict(row: Measurement | Mapping[str, Any], where: str) -> dict[str, Any]:
-    d = row.as_dict() if isinstance(row, Measurement) else dict(row)
-    for key in ("roi", "metric", "unit"):
-        if not d.get(key):
-            raise LedgerError(f"{where}: a measurement row has no {key}; every row needs roi, metric, unit")
-    try:
-        return {
-            "roi": str(d["roi"]),
-            "metric": str(d["metric"]),
-            "value": _finite_or_none(d.get("value")),
-            "unit": str(d["unit"]),
-            "uncertainty": _finite_or_none(d.get("uncertainty")),
-            "band": d.get("band") or None,
-            "band_low": _finite_or_none(d.get("band_low")),
-            "band_high": _finite_or_none(d.get("band_high")),
-            "verdict": d.get("verdict") or None,
-            "note": d.get("note") or None,
-        }
-    except (TypeError, ValueError):
-        raise LedgerError(f"{where}: measurement {d.get('roi')} {d.get('metric')} has a non-numeric value; fix the input") from None
-
-
-def default_scanner_label(series: Mapping[str, Any]) -> str:
-    """Scanner label from the headers: station name, else make, model and serial."""
-    sc = series.get("scanner") or {}
-    if sc.get("station"):
-        return str(sc["station"])
-    parts = [sc.get(k) for k in ("manufacturer", "model", "serial") if sc.get(k)]
-    return " ".join(str(p) for p in parts) if parts else "unknown scanner"
-
-
-def default_protocol_label(series: Mapping[str, Any]) -> str:
-    """Protocol label from the reconstruction: method, iterations x subsets, filter, voxel size.
-
-    The matrix is left out (its slice count follows the axial coverage, not the protocol).
-    """
-    rec = series.get("reconstruction") or {}
-    parts: list[str] = []
-    method = rec.get("method")
-    if method:
-        parts.append(str(method))
-    it, sub = rec.get("iterations"), rec.get("subsets")
-    if it or sub:
-        text = f"{it or '?'}i{sub or '?'}s"
-        if not method or text not in str(method):
-            parts.append(text)
-    if rec.get("filter"):
-        parts.append(str(rec["filter"]))
-    vox = rec.get("voxel_size_mm")
-    if vox and any(vox):
-        parts.append("x".join(f"{float(v):.3g}" for v in vox) + " mm")
-    return ", ".join(parts) if parts else "unspecified protocol"
-
-
-def default_site_label(fill_record: Mapping[str, Any] | None) -> str:
-    """Site label from the fill record's ``site``, else ``unspecified site``."""
-    site = (fill_record or {}).get("site")
-    return str(site) if site else "unspecified site"
-
-
 def _one_line(exc: BaseException) -> str:
+    """A database error's own message on one line (at most 300 characters)."""
     orig = getattr(exc, "orig", None) or exc
     return " ".join(str(orig).split())[:300]
 
 
-def _transient(exc: DBAPIError) -> bool:
-    """A lock, deadlock or serialisation conflict worth retrying."""
-    text = str(getattr(exc, "orig", exc)).lower()
-    if "database is locked" in text or "database table is locked" in text or "busy" in text:
-        return True
-    sqlstate = getattr(getattr(exc, "orig", None), "sqlstate", None)
-    return sqlstate in ("40001", "40P01", "55P03")
-
-
-# ------------------------------------------------------------------------------ ledger
 class Ledger:
     """A trend ledger in a SQL database (SQLite by default, PostgreSQL for a shared lab store).
 
@@ -398,11 +102,16 @@ class Ledger:
     upgrade : bool
         Bring an older schema to the newest revision on open (default). With False an
         out-of-date store raises :class:`LedgerError`.
+    create : bool
+        Create the store when it does not exist yet (default). With False (read-only use) a
+        missing SQLite file, or a database without the ledger's tables, raises
+        :class:`LedgerError` and nothing is created: no folder, no file, no table.
 
     Raises
     ------
     LedgerError
-        The database cannot be reached, or its schema is newer than this phantometry.
+        The database cannot be reached, its schema is newer than this phantometry, or (with
+        ``create=False``) there is no store.
 
     Examples
     --------
@@ -411,12 +120,14 @@ class Ledger:
     ...     trend = ledger.trend("PET-CT 1", "EARL1", "sphere_10mm", "rc_max")
     """
 
-    def __init__(self, url: str | os.PathLike | None = None, *, upgrade: bool = True) -> None:
+    def __init__(self, url: str | os.PathLike | None = None, *, upgrade: bool = True, create: bool = True) -> None:
         self.url = resolve_url(url)
         self.display_url = display_url(self.url)
-        self.engine = make_engine(self.url)
+        if not create:
+            check_store_exists(self.url)
+        self.engine = make_engine(self.url, create=create)
         try:
-            self.revision = ensure_schema(self.engine, self.display_url, allow_upgrade=upgrade)
+            self.revision = ensure_schema(self.engine, self.display_url, allow_upgrade=upgrade, create=create)
         except BaseException:
             self.engine.dispose()
             raise
@@ -459,7 +170,7 @@ class Ledger:
                     raise on_integrity(exc) from None
                 raise LedgerError(f"ledger {self.display_url}: refused by the database ({_one_line(exc)})") from None
             except OperationalError as exc:
-                if _transient(exc) and attempt < _RETRIES - 1:
+                if transient(exc) and attempt < _RETRIES - 1:
                     time.sleep(delay * (1.0 + random.random()))
                     delay = min(delay * 2.0, 1.0)
                     continue
@@ -510,8 +221,11 @@ class Ledger:
     # ------------------------------------------------------------------ recording
     def _store(self, conn: Connection, a: dict[str, Any], rows: list[dict[str, Any]], replace: bool, where: str) -> tuple[int, bool]:
         """Insert (or replace) one analysis and its rows inside the caller's transaction."""
+        # FOR UPDATE (PostgreSQL; SQLite already holds the write lock): a concurrent replacement
+        # of the same analysis waits here, and its DELETE below then sees the rows the other one
+        # committed, so the two never collide on the measurement rows.
         existing = conn.execute(
-            sa.select(analyses.c.id, analyses.c.acquired_at).where(analyses.c.record_key == a["record_key"])
+            sa.select(analyses.c.id, analyses.c.acquired_at).where(analyses.c.record_key == a["record_key"]).with_for_update()
         ).first()
         if existing is not None and not replace:
             raise LedgerError(
@@ -592,7 +306,7 @@ class Ledger:
         """
         if not rows:
             raise LedgerError(f"{where}: no measurement rows to record")
-        row_dicts = [_row_dict(r, where) for r in rows]
+        row_dicts = [measurement_row(r, where) for r in rows]
         seen: set[tuple[str, str]] = set()
         for r in row_dicts:
             key = (r["roi"], r["metric"])
@@ -603,25 +317,21 @@ class Ledger:
         if acquired is None:
             first = rows[0]
             acquired = first.acquired_at if isinstance(first, Measurement) else first.get("acquired_at")
-        acquired_at = _aware(acquired, "acquisition time", where)
+        acquired_at = aware_utc(acquired, "acquisition time", where)
         if not template:
             raise LedgerError(f"{where}: no template name")
         series_uid = series.get("series_uid") or None
-        fill = None
-        if fill_record:  # validated: only the fill record's known keys are kept (no personal data)
-            from ..fill import FillRecord
-
-            fill = FillRecord.from_dict(dict(fill_record), source=f"{where}: fill_record").to_dict()
+        fill = validated_fill(fill_record, where)
         s_hash = settings_hash(fill, settings)
         rec = series.get("reconstruction") or {}
         if tool_version is None:
             from .. import __version__ as tool_version
-        site_label = _label(site if site is not None else default_site_label(fill), "site", where)
-        scanner_label = _label(scanner if scanner is not None else default_scanner_label(series), "scanner", where)
-        protocol_label = _label(protocol if protocol is not None else default_protocol_label(series), "protocol", where)
+        site_label = clean_label(site if site is not None else default_site_label(fill), "site", where)
+        scanner_label = clean_label(scanner if scanner is not None else default_scanner_label(series), "scanner", where)
+        protocol_label = clean_label(protocol if protocol is not None else default_protocol_label(series), "protocol", where)
         analysis = {
             "uid": str(uuid.uuid4()),
-            "record_key": _record_key(series_uid, acquired_at, template, s_hash),
+            "record_key": record_key(series_uid, acquired_at, template, s_hash),
             "series_uid": series_uid,
             "template": str(template),
             "acquired_at": acquired_at,
@@ -634,6 +344,7 @@ class Ledger:
             "tool_version": str(tool_version),
             "verdict": analysis_verdict(r["verdict"] for r in row_dicts),
         }
+        check_analysis_text(site_label, scanner_label, series.get("scanner"), analysis, row_dicts, where)
 
         def txn(conn: Connection) -> tuple[int, bool]:
             analysis["scanner_id"] = self._scanner_id(conn, site_label, scanner_label, series.get("scanner"))
@@ -644,6 +355,33 @@ class Ledger:
             txn, on_integrity=self._duplicate_error(where, series_uid, template), retry_integrity=replace
         )
         return RecordResult(analysis_id, analysis["uid"], site_label, scanner_label, protocol_label, len(row_dicts), replaced)
+
+    def recorded_id(self, *, series_uid: str | None, acquired_at: datetime | str | None, template: str,
+                    fill_record: Mapping[str, Any] | None = None, settings: Mapping[str, Any] | None = None,
+                    where: str = "ledger") -> int | None:
+        """The id of the analysis of the same series + template + settings, or None.
+
+        The identity is the one :meth:`record` uses (series UID, else acquisition time; the
+        template name; the settings hash of the validated fill record and ``settings``), so
+        a duplicate can be refused before any work (``measure --record``).
+        """
+        when = aware_utc(acquired_at, "acquisition time", where) if (acquired_at is not None or not series_uid) else None
+        key = record_key(series_uid or None, when, template, settings_hash(validated_fill(fill_record, where), settings))  # type: ignore[arg-type]
+        found = self._read(lambda c: c.execute(sa.select(analyses.c.id).where(analyses.c.record_key == key)).scalar())
+        return None if found is None else int(found)
+
+    def check_not_recorded(self, *, series_uid: str | None, acquired_at: datetime | str | None, template: str,
+                           fill_record: Mapping[str, Any] | None = None, settings: Mapping[str, Any] | None = None,
+                           where: str = "ledger") -> None:
+        """Refuse (:class:`LedgerError`) an analysis that :meth:`record` would refuse as a duplicate."""
+        found = self.recorded_id(series_uid=series_uid, acquired_at=acquired_at, template=template, fill_record=fill_record,
+                                 settings=settings, where=where)
+        if found is not None:
+            shown = series_uid or aware_utc(acquired_at, "acquisition time", where).isoformat()
+            raise LedgerError(
+                f"{where}: series {shown} with template {template} and the same settings is already recorded "
+                f"(analysis #{found}) in {self.display_url}; use --replace to replace it"
+            )
 
     def record_document(self, doc: Mapping[str, Any], *, site: str | None = None, scanner: str | None = None,
                         protocol: str | None = None, replace: bool = False, where: str = "measurements.json") -> RecordResult:
@@ -670,15 +408,8 @@ class Ledger:
     def add_from_result_dir(self, path: str | os.PathLike, *, site: str | None = None, scanner: str | None = None,
                             protocol: str | None = None, replace: bool = False) -> RecordResult:
         """Record the analysis in a result folder of ``phantometry measure`` (or its measurements.json)."""
-        p = Path(path)
-        json_path = p / "measurements.json" if p.is_dir() else p
-        if not json_path.is_file():
-            raise InputError(f"{json_path}: no such file; give a result folder of phantometry measure or its measurements.json")
-        try:
-            doc = json.loads(json_path.read_text(encoding="utf-8"))
-        except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
-            raise InputError(f"{json_path}: cannot be read as JSON ({exc}); give the measurements.json phantometry wrote") from None
-        return self.record_document(doc, site=site, scanner=scanner, protocol=protocol, replace=replace, where=str(json_path))
+        doc, where = read_result_document(path)
+        return self.record_document(doc, site=site, scanner=scanner, protocol=protocol, replace=replace, where=where)
 
     def record_analysis(self, analysis, *, site: str | None = None, scanner: str | None = None,
                         protocol: str | None = None, replace: bool = False, where: str | None = None) -> RecordResult:
@@ -760,9 +491,9 @@ class Ledger:
         if series_uid is not None:
             q = q.where(analyses.c.series_uid == series_uid)
         if since is not None:
-            q = q.where(analyses.c.acquired_at >= _aware(since, "since", "ledger"))
+            q = q.where(analyses.c.acquired_at >= aware_utc(since, "since", "ledger"))
         if until is not None:
-            q = q.where(analyses.c.acquired_at <= _aware(until, "until", "ledger"))
+            q = q.where(analyses.c.acquired_at <= aware_utc(until, "until", "ledger"))
         if verdict is not None:
             if verdict == "none":
                 q = q.where(analyses.c.verdict.is_(None))
@@ -899,8 +630,8 @@ class Ledger:
         The query walks the (scanner, protocol, acquired_at) index and the (analysis, roi,
         metric) unique index: its cost follows the number of points, not the store size.
         """
-        since_utc = _aware(since, "since", "ledger") if since is not None else None
-        until_utc = _aware(until, "until", "ledger") if until is not None else None
+        since_utc = aware_utc(since, "since", "ledger") if since is not None else None
+        until_utc = aware_utc(until, "until", "ledger") if until is not None else None
 
         def q(conn: Connection):
             scanner_id, site_name, scanner_name, proto = self._resolve(conn, scanner, protocol, site)
@@ -945,25 +676,9 @@ class Ledger:
             TrendPoint(r.id, r.uid, r.acquired_at, r.value, r.unit, r.uncertainty, r.band_low, r.band_high, r.verdict, r.id in members)
             for r in rows
         ]
-        limits, notes = self._limits(points, baseline_id, base_values)
-        flags = _trend_flags(points, limits)
+        limits, notes = trend_limits(points, baseline_id, base_values)
+        flags = trend_flags(points, limits)
         return Trend(site_name, scanner_name, proto, roi, metric, points[0].unit, points, limits, flags, notes)
-
-    @staticmethod
-    def _limits(points: list[TrendPoint], baseline_id: int | None, base_values: list[float | None] | None) -> tuple[ControlLimits | None, list[str]]:
-        notes: list[str] = []
-        if baseline_id is not None:
-            limits = control_limits(base_values or [], source=f"baseline #{baseline_id}")
-            if limits is None:
-                notes.append(f"baseline #{baseline_id} holds fewer than 2 values of this metric: no control limits")
-        else:
-            limits = control_limits([p.value for p in points], source="all points (no baseline set)")
-            notes.append("no baseline set: limits come from all points shown; set one with phantometry ledger baseline")
-        if limits is not None and limits.n < 8:
-            notes.append(f"control limits rest on only {limits.n} values; 8 or more make the rules meaningful")
-        if limits is not None and limits.sigma == 0:
-            notes.append("the baseline values do not vary (sigma = 0): the sigma rules are off")
-        return limits, notes
 
     # ------------------------------------------------------------------ baselines
     def set_baseline(self, scanner: str, protocol: str | None = None, *, analysis_ids: Sequence[int] | None = None,
@@ -982,8 +697,9 @@ class Ledger:
         """
         if analysis_ids is None and since is None and until is None:
             raise LedgerError("ledger baseline: give analysis ids or a date range (--from/--to)")
-        since_utc = _aware(since, "from", "ledger baseline") if since is not None else None
-        until_utc = _aware(until, "to", "ledger baseline") if until is not None else None
+        since_utc = aware_utc(since, "from", "ledger baseline") if since is not None else None
+        until_utc = aware_utc(until, "to", "ledger baseline") if until is not None else None
+        check_text(baselines, {"note": note}, "ledger baseline --note")
 
         def txn(conn: Connection) -> int:
             scanner_id, _site, _scanner, proto = self._resolve(conn, scanner, protocol, site)
@@ -1052,7 +768,7 @@ class Ledger:
         Metrics in :data:`UNTRENDED_UNITS` are skipped unless ``all_metrics``. Returns the
         series checked, each with its flags (often none).
         """
-        since_utc = _aware(since, "since", "ledger check") if since is not None else None
+        since_utc = aware_utc(since, "since", "ledger check") if since is not None else None
 
         def q(conn: Connection):
             groups = sa.select(analyses.c.scanner_id, analyses.c.protocol, scanners.c.name.label("scanner"), sites.c.name.label("site")).select_from(
@@ -1089,76 +805,102 @@ class Ledger:
                     continue
                 points = [TrendPoint(r.id, r.uid, r.acquired_at, r.value, r.unit, r.uncertainty, r.band_low, r.band_high, r.verdict, r.id in members) for r in rs]
                 base_values = [p.value for p in points if p.in_baseline] if baseline_id is not None else None
-                limits, _notes = self._limits(points, baseline_id, base_values)
-                flags = _trend_flags(points, limits)
+                limits, _notes = trend_limits(points, baseline_id, base_values)
+                flags = trend_flags(points, limits)
                 if since_utc is not None:
                     flags = [f for f in flags if f.acquired_at >= since_utc]
                 results.append(CheckResult(g.site, g.scanner, g.protocol, roi, metric, unit, len(points), limits, flags))
         return results
 
     # ------------------------------------------------------------------ CSV
-    def export_csv(self, path: str | os.PathLike, *, since: datetime | None = None) -> ExportReport:
-        """Write measurements as long-format CSV (:data:`LEDGER_CSV_COLUMNS`), atomically.
+    def export_csv(self, path: str | os.PathLike, *, since: datetime | None = None, overwrite: bool = False) -> ExportReport:
+        """Write measurements as long-format CSV (:data:`phantometry.ledger.csvio.LEDGER_CSV_COLUMNS`), atomically.
 
         ``since`` (aware) keeps analyses *recorded* at or after that time, for incremental
         exports to a lab database; pass the previous report's ``started_at``. Overlapping
-        windows are harmless: :meth:`import_csv` skips analyses it already holds.
+        windows are harmless: :meth:`import_csv` skips analyses it already holds. Text cells
+        are spreadsheet-safe (:mod:`phantometry.ledger.csvcells`); the ``baselines`` column
+        carries baseline membership, so an import into another store keeps the baselines.
+
+        Raises
+        ------
+        InputError
+            ``path`` exists and ``overwrite`` is False, is a folder, or cannot be written.
         """
+        target = Path(path)
+        check_output_file(target, overwrite, "ledger export")
         started = _utc_now()
-        since_utc = _aware(since, "since", "ledger export") if since is not None else None
+        since_utc = aware_utc(since, "since", "ledger export") if since is not None else None
         m, a = measurements, analyses
+        # the columns of LEDGER_CSV_COLUMNS up to "baselines", then the analysis id (for its baselines cell)
         stmt = (
             sa.select(a.c.uid, a.c.recorded_at, sites.c.name.label("site"), scanners.c.name.label("scanner"), a.c.protocol,
                       a.c.series_uid, a.c.template, a.c.acquired_at, a.c.reconstruction, a.c.tool_version, a.c.settings_hash,
                       m.c.roi, m.c.metric, m.c.value, m.c.unit, m.c.uncertainty, m.c.band, m.c.band_low, m.c.band_high,
-                      m.c.verdict, m.c.note)
+                      m.c.verdict, m.c.note, a.c.id.label("analysis_id"))
             .select_from(m.join(a, a.c.id == m.c.analysis_id).join(scanners, scanners.c.id == a.c.scanner_id).join(sites, sites.c.id == scanners.c.site_id))
             .order_by(a.c.recorded_at, a.c.uid, m.c.id)
         )
         if since_utc is not None:
             stmt = stmt.where(a.c.recorded_at >= since_utc)
-        target = Path(path)
-        target.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp_name = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
-        n_rows = 0
-        uids: set[str] = set()
-        try:
-            with os.fdopen(fd, "w", newline="", encoding="utf-8") as fh:
-                w = csv.writer(fh, lineterminator="\n")
-                w.writerow(LEDGER_CSV_COLUMNS)
+        out = LedgerCsvWriter()
 
-                def q(conn: Connection) -> None:
-                    nonlocal n_rows
-                    result = conn.execution_options(stream_results=True, yield_per=5000).execute(stmt)
-                    for r in result:
-                        uids.add(r.uid)
-                        w.writerow([_csv_cell(v) for v in r])
-                        n_rows += 1
+        def write(fh) -> None:
+            out.header(fh)
 
-                self._read(q)
-            os.replace(tmp_name, target)
-        except BaseException:
-            Path(tmp_name).unlink(missing_ok=True)
-            raise
-        return ExportReport(target, n_rows, len(uids), started)
+            def q(conn: Connection) -> None:
+                membership = self._baseline_membership(conn, since_utc)
+                result = conn.execution_options(stream_results=True, yield_per=5000).execute(stmt)
+                for r in result:
+                    out.row(fh, tuple(r)[:-1], membership.get(r.analysis_id, ""))
 
-    def import_csv(self, path: str | os.PathLike, *, replace: bool = False) -> ImportReport:
+            self._read(q)
+
+        write_text_atomically(target, write)
+        return ExportReport(target, out.rows, out.analyses, started)
+
+    @staticmethod
+    def _baseline_membership(conn: Connection, since_utc: datetime | None) -> dict[int, str]:
+        """analysis id -> the ``baselines`` cell (compact JSON, oldest baseline first)."""
+        stmt = (
+            sa.select(baseline_members.c.analysis_id, baselines.c.created_at, baselines.c.note)
+            .select_from(baseline_members.join(baselines, baselines.c.id == baseline_members.c.baseline_id)
+                         .join(analyses, analyses.c.id == baseline_members.c.analysis_id))
+            .order_by(baseline_members.c.analysis_id, baselines.c.created_at, baselines.c.id)
+        )
+        if since_utc is not None:
+            stmt = stmt.where(analyses.c.recorded_at >= since_utc)
+        out: dict[int, list[tuple[datetime, str | None]]] = defaultdict(list)
+        for r in conn.execute(stmt):
+            out[int(r.analysis_id)].append((r.created_at, r.note))
+        return {k: baselines_cell(v) for k, v in out.items()}
+
+    def import_csv(self, path: "str | os.PathLike | LedgerCsv", *, replace: bool = False) -> ImportReport:
         """Read a CSV written by :meth:`export_csv` back, in one transaction.
 
         Analyses whose ``analysis_uid`` is already present are skipped (so overlapping
         incremental exports import cleanly). Another analysis of the same series + template
         + settings is refused unless ``replace``. The fill record is not part of the CSV.
+        Text cells are restored exactly (:func:`phantometry.ledger.csvcells.restore`), and
+        the baselines of the ``baselines`` column are created (once: a baseline of the same
+        scanner, protocol and creation time is reused) with their members, which makes
+        export then import into a fresh store keep baseline membership.
 
         Raises
         ------
         InputError
             Missing columns, unparsable numbers or times (named with file and line).
         LedgerError
-            Duplicates without ``replace``.
+            Duplicates without ``replace``; text beyond the ledger's limits.
         """
-        p = Path(path)
-        groups = _read_ledger_csv(p)
-        where = str(p)
+        parsed = path if isinstance(path, LedgerCsv) else read_ledger_csv(path)
+        groups, wanted = parsed.groups, parsed.baselines
+        where = str(parsed.path)
+        for uid_, (head, rows) in groups.items():
+            rec = {k: head[k] for k in ("uid", "series_uid", "template", "protocol", "reconstruction", "settings_hash", "tool_version")}
+            check_analysis_text(head["site"], head["scanner"], None, rec, rows, f"{where} (analysis {uid_})")
+        for (site_, scanner_, proto, _created), (note, _m) in wanted.items():
+            check_text(baselines, {"protocol": proto, "note": note}, f"{where} (baseline of {scanner_} / {proto})")
 
         def txn(conn: Connection) -> ImportReport:
             added = replaced = skipped = 0
@@ -1174,7 +916,7 @@ class Ledger:
                     continue
                 record = {
                     "uid": uid_,
-                    "record_key": _record_key(head["series_uid"], head["acquired_at"], head["template"], head["settings_hash"]),
+                    "record_key": record_key(head["series_uid"], head["acquired_at"], head["template"], head["settings_hash"]),
                     "series_uid": head["series_uid"],
                     "template": head["template"],
                     "acquired_at": head["acquired_at"],
@@ -1191,102 +933,40 @@ class Ledger:
                 _id, was = self._store(conn, record, rows, replace, f"{where} (analysis {uid_})")
                 replaced += int(was)
                 added += int(not was)
-            return ImportReport(added, replaced, skipped, sum(len(r) for _h, r in groups.values()))
+            created = self._import_baselines(conn, wanted, cache, where)
+            return ImportReport(added, replaced, skipped, sum(len(r) for _h, r in groups.values()), created)
 
         return self._write(txn)
 
-
-# ------------------------------------------------------------------------------ helpers
-def _trend_flags(points: list[TrendPoint], limits: ControlLimits | None) -> list[TrendFlag]:
-    valid = [p for p in points if p.value is not None]
-    if not valid:
-        return []
-    flags = drift_flags([p.value for p in valid], limits.mean if limits else None, limits.sigma if limits else None)
-    return [
-        TrendFlag(valid[f.index].analysis_id, valid[f.index].acquired_at, float(valid[f.index].value), f.rule, f.description,
-                  valid[f.first_index].acquired_at)
-        for f in flags
-    ]
-
-
-def _csv_cell(v: Any) -> str:
-    if v is None:
-        return ""
-    if isinstance(v, float):
-        return repr(v) if math.isfinite(v) else ""
-    if isinstance(v, datetime):
-        return v.astimezone(timezone.utc).isoformat()
-    return str(v)
-
-
-def _read_ledger_csv(path: Path) -> "OrderedDict[str, tuple[dict[str, Any], list[dict[str, Any]]]]":
-    """Parse a ledger CSV into analysis heads and measurement rows, grouped by analysis_uid."""
-    if not path.is_file():
-        raise InputError(f"{path}: no such file; give a CSV written by phantometry ledger export")
-    groups: "OrderedDict[str, tuple[dict[str, Any], list[dict[str, Any]]]]" = OrderedDict()
-    try:
-        with open(path, newline="", encoding="utf-8") as fh:
-            reader = csv.DictReader(fh)
-            missing = [c for c in LEDGER_CSV_COLUMNS if c not in (reader.fieldnames or [])]
-            if missing:
-                raise InputError(f"{path}: missing columns {', '.join(missing)}; give a CSV written by phantometry ledger export")
-            for rec in reader:
-                line = reader.line_num
-                uid_ = (rec["analysis_uid"] or "").strip()
-                if not uid_:
-                    raise InputError(f"{path}: line {line}: empty analysis_uid")
-                row: dict[str, Any] = {}
-                for c in _FLOAT_COLUMNS:
-                    raw = (rec[c] or "").strip()
-                    try:
-                        row[c] = _finite_or_none(raw)
-                    except ValueError:
-                        raise InputError(f"{path}: line {line}: {c} {raw!r} is not a number") from None
-                for c in ("roi", "metric", "unit"):
-                    if not rec[c]:
-                        raise InputError(f"{path}: line {line}: empty {c}")
-                    row[c] = rec[c]
-                for c in ("band", "verdict", "note"):
-                    row[c] = rec[c] or None
-                if uid_ not in groups:
-                    head: dict[str, Any] = {c: (rec[c] or None) for c in _ANALYSIS_COLUMNS}
-                    for c in ("acquired_at", "recorded_at"):
-                        try:
-                            head[c] = _aware(rec[c], c, f"{path}: line {line}")
-                        except LedgerError as exc:
-                            raise InputError(str(exc)) from None
-                    for c in ("site", "scanner", "protocol", "template", "settings_hash"):
-                        if not head[c]:
-                            raise InputError(f"{path}: line {line}: empty {c}")
-                    groups[uid_] = (head, [])
-                else:
-                    head = groups[uid_][0]
-                    for c in ("site", "scanner", "protocol", "template", "series_uid", "settings_hash"):
-                        if (rec[c] or None) != head[c]:
-                            raise InputError(f"{path}: line {line}: analysis {uid_} has another {c} than on its first row; the file is inconsistent")
-                groups[uid_][1].append(row)
-    except (OSError, UnicodeDecodeError, csv.Error) as exc:
-        raise InputError(f"{path}: cannot be read as CSV ({exc})") from None
-    return groups
+    def _import_baselines(self, conn: Connection, wanted: Mapping[tuple, tuple[str | None, list[str]]], cache: dict,
+                          where: str) -> int:
+        """Create the baselines named in an imported CSV (once) and add their members; returns the number created."""
+        created = 0
+        for (site_, scanner_, proto, created_at), (note, member_uids) in wanted.items():
+            scanner_id = self._scanner_id(conn, site_, scanner_, None, cache)
+            found = conn.execute(
+                sa.select(analyses.c.id, analyses.c.uid, analyses.c.scanner_id, analyses.c.protocol).where(analyses.c.uid.in_(member_uids))
+            ).all()
+            for r in found:
+                if (r.scanner_id, r.protocol) != (scanner_id, proto):
+                    raise LedgerError(
+                        f"{where}: analysis {r.uid} of a baseline of {scanner_} / {proto} is held in this ledger under another "
+                        "scanner or protocol; the baseline cannot be imported"
+                    )
+            baseline_id = conn.execute(
+                sa.select(baselines.c.id).where(baselines.c.scanner_id == scanner_id, baselines.c.protocol == proto,
+                                                baselines.c.created_at == created_at).order_by(baselines.c.id).limit(1)
+            ).scalar()
+            if baseline_id is None:
+                baseline_id = int(conn.execute(
+                    baselines.insert().values(scanner_id=scanner_id, protocol=proto, created_at=created_at, note=note)
+                ).inserted_primary_key[0])
+                created += 1
+            have = set(conn.execute(sa.select(baseline_members.c.analysis_id).where(baseline_members.c.baseline_id == baseline_id)).scalars())
+            new = sorted({int(r.id) for r in found} - have)
+            if new:
+                conn.execute(baseline_members.insert(), [{"baseline_id": baseline_id, "analysis_id": i} for i in new])
+        return created
 
 
-__all__ = [
-    "AnalysisInfo",
-    "BaselineInfo",
-    "CheckResult",
-    "ExportReport",
-    "ImportReport",
-    "LEDGER_CSV_COLUMNS",
-    "Ledger",
-    "RecordResult",
-    "ScannerInfo",
-    "Trend",
-    "TrendFlag",
-    "TrendPoint",
-    "UNTRENDED_UNITS",
-    "analysis_verdict",
-    "default_protocol_label",
-    "default_scanner_label",
-    "default_site_label",
-    "settings_hash",
-]
+__all__ = ["Ledger"]

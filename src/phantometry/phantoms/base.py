@@ -256,6 +256,10 @@ class Analysis(ABC):
     placement_checks: list[RoiSetCheck] = field(default_factory=list)
     #: the result folder written (phantometry.outputs.WrittenFolder), once ``measure`` wrote one
     written: Any = None
+    #: acquisition conditions against the standard (phantometry.protocol.ProtocolCheck)
+    protocol_checks: list[Any] = field(default_factory=list)
+    #: what the fill record's stated uncertainties mean for the truth (phantometry.fill.FillUncertainty)
+    fill_uncertainty: Any = None
 
     # ---------------------------------------------------------------- queries
     def value(self, roi: str, metric: str) -> float | None:
@@ -308,6 +312,40 @@ class Analysis(ABC):
     def roi_masks(self) -> list[RoiKindMask]:
         """Masks of every ROI kind for a DICOM SEG export (kinds with ``supports_seg``)."""
         raise InputError(f"template {self.template.name}: ROI export as DICOM SEG is not available for analysis kind {self.kind}")
+
+    def fill_sensitivity(self, row: Measurement) -> tuple[str, str | None, float] | None:
+        """How a row's value depends on the fill record, for its ``uncertainty_fill``.
+
+        Returns ``(kind, insert, factor)`` or None when the value does not depend on it:
+
+        * ``("background", None, f)``: ``u_fill = f * u_rel(true background)``;
+        * ``("insert", name, f)``: ``u_fill = f * u_rel(true concentration of name)``;
+        * ``("ratio", name, f)``: ``u_fill = f * u(activity ratio of name)``.
+
+        The default follows the metric names every kind shares: ``activity_recovery`` (C/C_true:
+        ``f = |value|``), ``calibration_error_pct`` (100 (C/C_true - 1): ``f = |100 + value|``),
+        ``rc_max``/``rc_mean``/``rc_peak`` of an insert with a true concentration (C/C_true:
+        ``f = |value|``), and the NEMA NU 2 hot-sphere ``percent_contrast``
+        ``Q = (C_H/C_B - 1)/(r - 1) 100``, whose only fill input is the activity ratio r:
+        ``dQ/dr = -Q/(r - 1)``, so ``f = |Q|/(r - 1)``. Kinds with other fill-dependent
+        metrics override it.
+        """
+        m = row.metric
+        v = row.value
+        if not math.isfinite(v):
+            return None
+        if m == "activity_recovery":
+            return ("background", None, abs(v))
+        if m == "calibration_error_pct":
+            return ("background", None, abs(100.0 + v))
+        true = self.true_insert_bq_ml.get(row.roi)
+        if m in ("rc_max", "rc_mean", "rc_peak") and true:
+            return ("insert", row.roi, abs(v))
+        if m == "percent_contrast" and true and not self.fill.is_cold(row.roi):
+            ratio = float(self.fill.activity_ratio(row.roi))
+            if ratio > 1.0:
+                return ("ratio", row.roi, abs(v) / (ratio - 1.0))
+        return None
 
     def key_metrics(self) -> list[tuple[str, str]]:
         """(roi, metric) pairs that characterise a setting when comparing without bands."""
