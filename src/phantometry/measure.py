@@ -397,13 +397,19 @@ def measure(
     out = Path(out)
     try:
         analysis = measure_volume(volume, tpl, fill_record, overrides=overrides, where=where, timezone=timezone)
-    except PhantomNotFound:
+    except PhantomNotFound as exc:
+        message = str(exc)
         try:
             from .figures import diagnostic_picture
             from .outputs import write_picture_beside
 
-            write_picture_beside(out.with_name(out.name + ".failed.png"), lambda p: diagnostic_picture(volume, p),
-                                 "failed localisation", inputs=input_paths)
+            try:  # where the search looked, as far as it got
+                sketch = kind.failure_sketch(volume, tpl, where)
+            except Exception:
+                sketch = None
+            write_picture_beside(out.with_name(out.name + ".failed.png"),
+                                 lambda p: diagnostic_picture(volume, p, message=message, sketch=sketch), "failed localisation",
+                                 inputs=input_paths)
         except Exception:  # the picture is a courtesy; the original error matters
             pass
         raise

@@ -346,7 +346,8 @@ def measure_report_html(analysis: "Analysis", *, folder: str | os.PathLike | Non
         '<section id="summary" class="summary">'
         f'<div><h2>Series</h2>{_dl(series_items)}</div><div><h2>Fill record</h2>{_dl(fill_items)}</div></section>'
         f'<section id="placement"><h2>ROI placement</h2>{_dl(loc_items)}'
-        + _figure(overlay, "ROI overlay", "Every ROI as placed, drawn on the image planes named above each view.")
+        + _figure(overlay, "ROI overlay", "Every ROI where it was measured, on the image planes named above each view; the key and "
+                    "the lines under the picture say what each outline is.")
         + fit_table + "</section>"
         '<section id="results"><h2>Results</h2>' + "".join(_grid_table(rows, g) for g in analysis.result_grids())
         + "".join(_figure(png, name, analysis.picture_captions().get(name) or _PICTURE_CAPTIONS.get(name, name)) for name, png in extra)

@@ -65,6 +65,8 @@ __all__ = [
     "disc_stats",
     "peak_search",
     "isocontour_mean",
+    "isocontour_voi",
+    "slice_as_acquired",
     "max_in_sphere",
     "weighted_stats",
 ]
@@ -723,43 +725,21 @@ def peak_search(
     return float(means[loc]), _box_index_to_world(volume, cbox, loc)
 
 
-def isocontour_mean(
+def isocontour_voi(
     volume: Volume,
     centre_mm: np.ndarray,
     search_diameter_mm: float,
     background_bq_ml: float,
     fraction: float = 0.5,
-) -> tuple[float, int, float]:
-    """Mean in a background-adapted isocontour VOI (the "A50" VOI of EANM/EARL).
-
-    Boellaard et al., FDG PET/CT: EANM procedure guidelines for tumour imaging: version 2.0,
-    Eur J Nucl Med Mol Imaging 2015;42:328-354, and the EARL harmonisation: threshold ``T = B + fraction (max - B)`` where ``max`` is the
-    hottest voxel (centre) within the search sphere and ``B`` the background. For
-    ``fraction = 0.5``, ``T = (max + B) / 2``. The VOI is the 26-connected component
-    (``scipy.ndimage.label``) of voxels ``>= T`` that contains the hottest voxel, restricted to
-    voxel centres within the search sphere grown by one voxel (largest spacing) on every side,
-    i.e. a diameter of ``search_diameter_mm + 2`` voxels, so that the contour of an object
-    filling the search sphere is not cut by the search boundary but neighbouring hot
-    objects are not swallowed.
-
-    Parameters
-    ----------
-    volume : Volume
-    centre_mm : array_like (3,)
-        Centre of the search sphere, world mm.
-    search_diameter_mm : float
-        Diameter of the search sphere, mm (typically the object's diameter plus a margin).
-    background_bq_ml : float
-        Background activity concentration B, Bq/mL.
-    fraction : float
-        Fraction of the contrast above background, 0 < fraction <= 1.
+) -> tuple[tuple[slice, slice, slice], np.ndarray, float]:
+    """The voxels of the background-adapted isocontour VOI of :func:`isocontour_mean`.
 
     Returns
     -------
-    mean : float
-        Unweighted mean of the VOI voxels, Bq/mL.
-    n_voxels : int
-        Number of voxels in the VOI.
+    box : tuple of slices
+        The box of the volume (array order) the mask covers.
+    voi : ndarray of bool
+        The VOI's voxels within ``box``.
     max_value : float
         The hottest voxel value used, Bq/mL.
     """
@@ -784,7 +764,51 @@ def isocontour_mean(
     lab = labels[tuple(max_idx)]
     if lab == 0:  # cannot happen: the hottest voxel is inside the grown sphere and >= T
         raise AssertionError("isocontour: hottest voxel not in its own component")
-    voi = labels == lab
+    return box, labels == lab, max_value
+
+
+def isocontour_mean(
+    volume: Volume,
+    centre_mm: np.ndarray,
+    search_diameter_mm: float,
+    background_bq_ml: float,
+    fraction: float = 0.5,
+) -> tuple[float, int, float]:
+    """Mean in a background-adapted isocontour VOI (the "A50" VOI of EANM/EARL).
+
+    Boellaard et al., FDG PET/CT: EANM procedure guidelines for tumour imaging: version 2.0,
+    Eur J Nucl Med Mol Imaging 2015;42:328-354, and the EARL harmonisation: threshold ``T = B + fraction (max - B)`` where ``max`` is the
+    hottest voxel (centre) within the search sphere and ``B`` the background. For
+    ``fraction = 0.5``, ``T = (max + B) / 2``. The VOI is the 26-connected component
+    (``scipy.ndimage.label``) of voxels ``>= T`` that contains the hottest voxel, restricted to
+    voxel centres within the search sphere grown by one voxel (largest spacing) on every side,
+    i.e. a diameter of ``search_diameter_mm + 2`` voxels, so that the contour of an object
+    filling the search sphere is not cut by the search boundary but neighbouring hot
+    objects are not swallowed. The VOI itself: :func:`isocontour_voi`.
+
+    Parameters
+    ----------
+    volume : Volume
+    centre_mm : array_like (3,)
+        Centre of the search sphere, world mm.
+    search_diameter_mm : float
+        Diameter of the search sphere, mm (typically the object's diameter plus a margin).
+    background_bq_ml : float
+        Background activity concentration B, Bq/mL.
+    fraction : float
+        Fraction of the contrast above background, 0 < fraction <= 1.
+
+    Returns
+    -------
+    mean : float
+        Unweighted mean of the VOI voxels, Bq/mL.
+    n_voxels : int
+        Number of voxels in the VOI.
+    max_value : float
+        The hottest voxel value used, Bq/mL.
+    """
+    box, voi, max_value = isocontour_voi(volume, centre_mm, search_diameter_mm, background_bq_ml, fraction)
+    vals = volume.data[box].astype(np.float64)
     return float(vals[voi].mean()), int(voi.sum()), max_value
 
 
@@ -931,6 +955,28 @@ def sample_plane(
         values.reshape(-1)[~outside.reshape(-1)] = sampled
     centre_uv = np.array([-(au + m_lo * p), -(av + n_lo * p)])
     return PlaneImage(values=values, origin_mm=origin, u_dir=u, v_dir=v, pixel_mm=p, centre_uv_mm=centre_uv)
+
+
+def slice_as_acquired(volume: Volume, point_mm: np.ndarray, half_width_mm: float) -> tuple[PlaneImage, int]:
+    """The original transverse slice nearest ``point_mm``, as the scanner stored it, for pictures.
+
+    The plane's columns and rows follow the image's own column and row directions (pixel =
+    the column spacing; on square, orthogonal voxels its values *are* the slice's voxels), over
+    ``half_width_mm`` about the point. Shown with its first row on top
+    (rows downwards), it is the slice as any viewer shows it, whatever the phantom's
+    position; orientation letters follow from the plane's directions.
+
+    Returns
+    -------
+    (plane, slice index k)
+    """
+    idx = volume.world_to_index(np.asarray(point_mm, float))
+    k = int(np.clip(np.rint(idx[0]), 0, volume.shape[0] - 1))
+    on_slice = volume.index_to_world(np.array([float(k), idx[1], idx[2]]))
+    cols, rows = volume.axes_world[2], volume.axes_world[1]
+    rows = rows - float(rows @ cols) * cols  # sheared voxels: the nearest orthogonal direction
+    plane = sample_plane(volume, on_slice, cols, rows / np.linalg.norm(rows), half_width_mm, pixel_mm=float(volume.spacing_mm[2]))
+    return plane, k
 
 
 # =========================================================================== discs on a plane

@@ -316,11 +316,11 @@ class Template(_Strict):
         return [i for i in self.inserts if i.role == "chamber"]
 
     @property
-    def kind_options(self) -> Any:
+    def kind_options(self) -> BaseModel | None:
         """The analysis options as validated by the template's kind (None until validated)."""
         return self._kind_options
 
-    def set_kind_options(self, value: Any) -> None:
+    def set_kind_options(self, value: BaseModel) -> None:
         """Keep the options as validated by the template's kind (``PhantomKind.options``)."""
         self._kind_options = value
 

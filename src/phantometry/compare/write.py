@@ -73,9 +73,9 @@ def write_files(result: ComparisonResult, tmp: Path, report: bool, executor: Pro
     (tmp / "comparison.csv").write_text(comparison_csv(result.outcomes), encoding="utf-8")
     (tmp / "ranking.csv").write_text(ranking_csv(result), encoding="utf-8")
     (tmp / "summary.json").write_text(to_json(summary_json(result)), encoding="utf-8")
-    settings = [ComparedSetting(o.job.number, o.label, o.rows) for o in result.succeeded]
+    settings = [ComparedSetting(o.job.number, o.label, o.rows, error=None if o.ok else (o.error or "not measured")) for o in result.outcomes]
     tpl = result.template
-    if settings and tpl is not None:
+    if result.succeeded and tpl is not None:
         charts = kind_of(tpl).comparison_charts(tpl, FillRecord.from_dict(result.fill), settings)
         result.charts = [(c.file_name, c.caption) for c in charts]
         futures = []

@@ -18,13 +18,17 @@ import os
 from dataclasses import dataclass, field
 from datetime import datetime
 from pathlib import Path
-from typing import Any, Sequence
+from typing import TYPE_CHECKING, Any, Sequence
 
 from ..errors import PhantometryError
 from .labels import clean_label
 from .schema import NoLedgerStore, analyses, check_text, display_url, resolve_url, scanners, sites
 from .store import Ledger
 from .types import RecordResult
+
+if TYPE_CHECKING:  # pragma: no cover
+    from ..phantoms.base import Analysis
+    from ..volume import Volume
 
 
 @dataclass
@@ -95,7 +99,7 @@ class RecordRequest:
         if uid is not None:
             self._check(series_uid=uid, acquired_at=None, template=template, fill=fill, where=where)
 
-    def check_volume(self, volume: Any, *, template: str, fill: Any) -> None:
+    def check_volume(self, volume: Volume, *, template: str, fill: Any) -> None:
         """Refuse a duplicate once the image is loaded, if :meth:`check_inputs` could not tell."""
         if self._checked:
             return
@@ -103,7 +107,7 @@ class RecordRequest:
                     where=str(volume.source or "image"))
 
     # ------------------------------------------------------------------ recording
-    def record(self, analysis: Any) -> RecordResult:
+    def record(self, analysis: Analysis) -> RecordResult:
         """Record the measured analysis (creating the store if needed); sets :attr:`result`."""
         with Ledger(self.url) as ledger:
             self.result = ledger.record_analysis(analysis, site=self.site, scanner=self.scanner, protocol=self.protocol,

@@ -26,7 +26,7 @@ import uuid
 from collections import OrderedDict, defaultdict
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any, Callable, Mapping, Sequence, TypeVar
+from typing import TYPE_CHECKING, Any, Callable, Mapping, Sequence, TypeVar
 
 import sqlalchemy as sa
 from sqlalchemy.engine import Connection
@@ -74,6 +74,9 @@ from .types import (
     Trend,
     TrendPoint,
 )
+
+if TYPE_CHECKING:  # pragma: no cover
+    from ..phantoms.base import Analysis
 
 T = TypeVar("T")
 
@@ -411,7 +414,7 @@ class Ledger:
         doc, where = read_result_document(path)
         return self.record_document(doc, site=site, scanner=scanner, protocol=protocol, replace=replace, where=where)
 
-    def record_analysis(self, analysis, *, site: str | None = None, scanner: str | None = None,
+    def record_analysis(self, analysis: Analysis, *, site: str | None = None, scanner: str | None = None,
                         protocol: str | None = None, replace: bool = False, where: str | None = None) -> RecordResult:
         """Record a measured analysis (what ``measure --record`` calls).
 

@@ -60,7 +60,8 @@ class KindOptions(BaseModel):
 
 
 # ===================================================================================== outputs
-ShapeRole = Literal["hot", "cold", "background", "insert", "voi", "peak", "search", "guide", "outline"]
+ShapeRole = Literal["hot", "cold", "background", "insert", "voi", "peak", "search", "guide", "outline", "isocontour", "slice",
+                   "reference", "axis"]
 
 
 @dataclass
@@ -71,42 +72,97 @@ class Shape:
     ----------
     kind : ``circle`` (``centre_uv``, ``size_mm`` = diameter), ``rect`` (``centre_uv``,
         ``size_mm`` = (width, height)), ``marker`` (``centre_uv``), ``hline`` (a line across
-        the view at ``centre_uv[1]``), ``contour`` (``points_uv`` (n, 2), a closed outline).
-    role : what it is; the picture's colour and line style follow from it.
-    label : text drawn beside it, if any.
+        the view at ``centre_uv[1]``), ``contour`` (``points_uv`` (n, 2), a closed outline),
+        ``line`` (``points_uv`` (n, 2), an open polyline), ``mask`` (``mask``, a boolean array
+        of the view's pixel grid, drawn as the exact outline of its pixels: what a VOI holds).
+    role : what it is; the picture's colour and line style follow from it, and its legend
+        entry (:attr:`Overlay.legend`).
+    label : text drawn beside it, if any (placed where it overlaps no other text or outline).
+    label_below : prefer the place below the shape for the label.
     """
 
-    kind: Literal["circle", "rect", "marker", "hline", "contour"]
+    kind: Literal["circle", "rect", "marker", "hline", "contour", "line", "mask"]
     role: ShapeRole
     centre_uv: np.ndarray | None = None
     size_mm: float | tuple[float, float] | None = None
     points_uv: np.ndarray | None = None
     label: str | None = None
     label_below: bool = False
+    mask: np.ndarray | None = None
+    #: a name tests and callers can find the drawn shape by (e.g. ``sphere_37mm A50``)
+    name: str | None = None
 
 
 @dataclass
 class View:
-    """A plane of the image with shapes drawn on it."""
+    """A plane of the image with shapes drawn on it.
+
+    Every view gets a colour bar (its label, e.g. ``Bq/mL``), a scale bar and orientation
+    letters at its edges (from the plane's world directions and :attr:`Overlay.frame`).
+    """
 
     plane: PlaneImage
     title: str
     shapes: list[Shape] = field(default_factory=list)
     #: display range upper limit (Bq/mL); None: a high percentile of the plane
     vmax: float | None = None
-    #: label of a colour bar beside the view (the grey scale in Bq/mL); None: no colour bar
-    colorbar: str | None = None
-    #: length (mm) of a scale bar drawn in the view's lower left corner; None: no scale bar
+    #: label of the colour bar beside the view (the grey scale); None: no colour bar
+    colorbar: str | None = "Bq/mL"
+    #: length (mm) of the scale bar drawn in the view's lower left corner; None: chosen from
+    #: the view's width; 0: none
     scale_bar_mm: float | None = None
+    #: the first row of the plane on top (an image as displayed: rows downwards), else at the bottom
+    rows_down: bool = False
+    #: how the display window was chosen, in words (shown on the colour bar), e.g. "2.5 x background"
+    window_note: str | None = None
 
 
 @dataclass
 class Overlay:
-    """An overlay picture: one or more views with a title line."""
+    """An overlay picture: one or more views with a title line, a legend of the shapes' roles
+    in words and a caption.
+
+    Attributes
+    ----------
+    frame : the world frame of the planes' directions (``LPS`` or ``RAS``, the volume's), for
+        the orientation letters; None: no letters.
+    legend : role -> what it is, in words (overrides the renderer's default words); a role
+        mapped to ``""`` gets no legend entry.
+    caption : sentences under the legend (what the figures in the title mean, what was
+        moved or dropped).
+    """
 
     views: list[View]
     title: str
+    #: kept for older callers; the views are sized by their planes (equal heights, mm to scale)
     width_ratios: list[float] | None = None
+    frame: str | None = None
+    legend: dict[str, str] = field(default_factory=dict)
+    caption: list[str] = field(default_factory=list)
+
+
+@dataclass
+class FailureSketch:
+    """What a localisation saw before it failed, for the picture of a failed run
+    (:func:`phantometry.figures.diagnostic_picture`); every part is optional.
+
+    Attributes
+    ----------
+    inside_body : world points (..., 3) -> bool: inside the body found (above half its level).
+    body_centre_mm : the body's centre (world mm).
+    level_bq_ml : the body's level (its median above the air/phantom threshold), Bq/mL.
+    axis_point_mm, axis_direction : the phantom axis found (world mm, unit vector).
+    plane_point_mm : the sphere plane searched for (a point on it; normal: the axis).
+    notes : what was found, and where the search stopped, in words.
+    """
+
+    inside_body: Callable[[np.ndarray], np.ndarray] | None = None
+    body_centre_mm: np.ndarray | None = None
+    level_bq_ml: float | None = None
+    axis_point_mm: np.ndarray | None = None
+    axis_direction: np.ndarray | None = None
+    plane_point_mm: np.ndarray | None = None
+    notes: list[str] = field(default_factory=list)
 
 
 @dataclass
@@ -409,6 +465,8 @@ class ComparedSetting:
     number: int
     label: str
     rows: Sequence[Measurement]
+    #: why the setting could not be measured (no rows then); charts list such settings
+    error: str | None = None
 
 
 class PhantomKind(ABC):
@@ -428,7 +486,7 @@ class PhantomKind(ABC):
     supports_reread: ClassVar[bool] = False
 
     # ---------------------------------------------------------------- template
-    def options(self, template: Template) -> Any:
+    def options(self, template: Template) -> KindOptions:
         """The template's ``analysis:`` block validated as this kind's :attr:`Options`.
 
         Raises
@@ -500,6 +558,13 @@ class PhantomKind(ABC):
             return None
         return float(np.max(np.abs(np.log(rel))))
 
+    # ---------------------------------------------------------------- a failed run
+    def failure_sketch(self, volume: Volume, template: Template, where: str) -> FailureSketch:
+        """What can be found of the phantom when the analysis failed (the picture of a failed
+        run shows it). The default: the body as the common first step finds it. Never raises
+        for what the image holds: what cannot be found is left out and said in ``notes``."""
+        return body_sketch(volume, where)
+
     # ---------------------------------------------------------------- comparison
     def comparison_charts(self, template: Template, fill: FillRecord, settings: Sequence[ComparedSetting]) -> list[Chart]:
         """Charts of a comparison of settings (none by default)."""
@@ -555,6 +620,92 @@ def fill_error_hint(volume: Volume, template: Template, where: str) -> None:
     from ..locate import check_body_size
 
     check_body_size(volume, template, where)
+
+
+def body_sketch(volume: Volume, where: str) -> FailureSketch:
+    """The body as :func:`phantometry.locate.find_body` finds it (block-mean copy, Otsu
+    threshold, half the level), as a :class:`FailureSketch`; notes say when it was not found."""
+    from ..errors import PhantometryError
+    from ..locate import find_body
+
+    sketch = FailureSketch()
+    try:
+        body = find_body(volume, where)
+    except PhantometryError as exc:
+        sketch.notes.append(f"no body found ({exc})")
+        return sketch
+    mask, factors = body.mask, np.asarray(body.factors, int)
+    shape = np.array(mask.shape)
+
+    def inside(points: np.ndarray) -> np.ndarray:
+        idx = np.rint(volume.world_to_index(np.asarray(points, float)))
+        coarse = np.floor(idx / factors).astype(int)
+        ok = np.all((coarse >= 0) & (coarse < shape), axis=-1)
+        out = np.zeros(ok.shape, bool)
+        c = coarse[ok]
+        out[ok] = mask[c[:, 0], c[:, 1], c[:, 2]]
+        return out
+
+    sketch.inside_body = inside
+    cells = np.argwhere(mask)
+    if len(cells):
+        sketch.body_centre_mm = volume.index_to_world((cells.mean(axis=0) + 0.5) * factors - 0.5)
+    sketch.level_bq_ml = float(body.background)
+    ext = ", ".join(f"{e:.0f}" for e in body.extent_mm)
+    sketch.notes.append(f"body found: {ext} mm along its principal axes, level {body.background:,.0f} Bq/mL")
+    return sketch
+
+
+def series_phrase(volume: Volume) -> str:
+    """How a picture's title names the image: ``series <description>`` (or its UID), else
+    ``file <name>`` (a NIfTI file has neither)."""
+    if volume.series_description:
+        return f"series {volume.series_description}"
+    if volume.series_uid:
+        return f"series {volume.series_uid}"
+    if volume.source:
+        return f"file {Path(str(volume.source)).name}"
+    return "unnamed image"
+
+
+def voi_on_slice(volume: Volume, box: tuple[slice, slice, slice], voi: np.ndarray, plane: PlaneImage, k: int) -> np.ndarray:
+    """The pixels of ``plane`` (an original slice, :func:`slice_as_acquired`) that are voxels of
+    a VOI (``voi`` within ``box`` of the volume) on slice ``k``: a boolean mask of the plane's grid."""
+    out = np.zeros(plane.values.shape, bool)
+    kk, jj, ii = np.nonzero(voi)
+    kk, jj, ii = kk + box[0].start, jj + box[1].start, ii + box[2].start
+    sel = kk == k
+    if not sel.any():
+        return out
+    uv = plane.world_to_uv(volume.index_to_world(np.stack([kk[sel], jj[sel], ii[sel]], axis=-1).astype(float)))
+    cr = np.rint(uv / plane.pixel_mm).astype(int)
+    ok = (cr[:, 0] >= 0) & (cr[:, 0] < out.shape[1]) & (cr[:, 1] >= 0) & (cr[:, 1] < out.shape[0])
+    out[cr[ok, 1], cr[ok, 0]] = True
+    return out
+
+
+#: Top of the display window of the phantoms' overlays, as a multiple of the background: the
+#: background sits at 40 % grey, so its noise texture shows, while every hot insert is dark.
+WINDOW_BACKGROUND_FACTOR = 2.5
+
+
+def display_window(background_bq_ml: float, hot_bq_ml: float | None = None, *, factor: float = WINDOW_BACKGROUND_FACTOR,
+                   what: str = "background") -> tuple[float, str]:
+    """The top of an overlay's grey scale and how it was chosen, in words.
+
+    ``factor`` (default :data:`WINDOW_BACKGROUND_FACTOR`) times the background, but never
+    above the hottest insert's fill (at 4:1 that is 62 % of it, at 10:1 25 %: the
+    background's texture shows where a window on the hottest voxel would leave it almost white).
+    """
+    top = factor * float(background_bq_ml)
+    if hot_bq_ml is not None and hot_bq_ml > 0:
+        top = min(top, float(hot_bq_ml))
+    if not (top > 0 and math.isfinite(top)):
+        return 1.0, f"no {what} level"
+    note = f"{top / background_bq_ml:.1f} x {what}"
+    if hot_bq_ml is not None and hot_bq_ml > 0:
+        note += f" = {100 * top / hot_bq_ml:.0f} % of the hot fill"
+    return top, note
 
 
 def nominal_extent_mm(template: Template) -> np.ndarray:

@@ -72,9 +72,11 @@ from ..rois import (
     centres_in_sphere,
     cylinder_weights,
     disc_means,
-    peak_search,
     disc_weights,
+    isocontour_voi,
+    peak_search,
     sample_plane,
+    slice_as_acquired,
     sphere_weights,
 )
 from ..sampling import PlaneSampler
@@ -97,10 +99,15 @@ from .base import (
     Shape,
     SummaryTable,
     View,
+    series_phrase,
     calibration_warning,
     check_scan_time,
+    FailureSketch,
+    body_sketch,
+    display_window,
     fill_error_hint,
     fmt_number,
+    voi_on_slice,
 )
 
 
@@ -209,52 +216,146 @@ class BodyAnalysis(Analysis):
         return grids
 
     def overlay(self) -> Overlay:
+        """The sphere plane as the scanner stored it (the original slice nearest it) and a
+        longitudinal image plane through the phantom axis, with every ROI where it was
+        measured: sphere discs, the A50 isocontour VOI of each hot sphere on its voxels, the
+        1 mL peak spheres, the background ROIs as used, the insert ROI and the body outline
+        found; on a tilted phantom also the interpolated plane the ROIs were measured on."""
         pl, tpl, vol = self.placement, self.template, self.volume
-        opts = self.options
         off0 = 0.0 if 0.0 in self.planes else next(iter(self.planes))
-        plane = self.planes[off0]
-        vmax = float(np.nanpercentile(plane.values, 99.5)) or 1.0
+        half = tpl.body.half_extent_xy_mm + 12
+        tra, k = slice_as_acquired(vol, pl.to_world([0.0, 0.0, 0.0]), half)
+        c_b = self.value("background", "mean_bq_ml") or self.true_background_bq_ml
+        hot_levels = [self.true_insert_bq_ml[s.name] for s in tpl.spheres if not self.fill.is_cold(s.name)]
+        vmax, note = display_window(c_b, max(hot_levels) if hot_levels else None)
+        shapes = self._roi_shapes(tra, off0, c_b, on_slice=k)
+        views = [View(tra, f"Transverse slice {k + 1} of {vol.shape[0]} as stored, nearest the sphere plane", shapes, vmax,
+                      rows_down=True, window_note=note)]
+        lon, lshapes = self._longitudinal()
+        views.append(View(lon, "Longitudinal image plane through the phantom axis, as stored", lshapes, vmax, window_note=note))
+        interpolated = self.sampler is not None and not self.sampler.nearest_slice
+        if interpolated:  # the plane the ROIs were measured on differs from every slice
+            plane = self.planes[off0]
+            views.insert(1, View(plane, "Sphere plane as measured (interpolated, perpendicular to the phantom axis)",
+                                 self._roi_shapes(plane, off0, c_b, on_slice=None), vmax, window_note=note))
+        tilt = pl.as_dict()["axis_tilt_deg"]
+        title = (f"{tpl.title} | {series_phrase(vol)} | axis tilt {tilt:.1f} deg | "
+                 f"ring match {pl.ring_score or 0:.2f}")
+        return Overlay(views, title, frame=vol.frame, legend=self._legend_words(), caption=self._caption(vmax, c_b, hot_levels, interpolated))
+
+    def _roi_shapes(self, view: PlaneImage, off0: float, c_b: float, on_slice: int | None) -> list[Shape]:
+        """Every ROI of the sphere plane mapped onto ``view`` (world points projected onto it);
+        ``on_slice``: the view is that original slice, and the A50 VOIs are drawn on its voxels."""
+        pl, tpl, vol, opts = self.placement, self.template, self.volume, self.options
         shapes: list[Shape] = []
         outline = self.outlines.get(off0)
         if outline is not None:
-            shapes.append(Shape("contour", "guide", points_uv=plane.world_to_uv(outline.points_world()[::4])))
-        for s in tpl.spheres:
-            if s.name in self.sphere_discs:
-                sp, uv = self.sphere_discs[s.name]
-                uv0 = plane.world_to_uv(sp.uv_to_world(uv))
-            else:
-                uv0 = plane.world_to_uv(pl.insert_centre(s.name))
-            shapes.append(Shape("circle", "cold" if self.fill.is_cold(s.name) else "hot", uv0, s.diameter_mm, label=s.name.replace("sphere_", "")))
+            shapes.append(Shape("contour", "guide", points_uv=view.world_to_uv(outline.points_world()[::4]), name="body outline"))
         bg = tpl.background
-        if bg is not None and off0 in self.background_discs:
+        if bg is not None and off0 in self.background_discs and self.background_placement is not None:
             d = max(bg.diameters_mm)
-            _, uvs = self.background_discs[off0]
+            bplane, uvs = self.background_discs[off0]
+            status = self.background_placement.status
             for i, uv in zip(self.background_placement.index, uvs):
-                shapes.append(Shape("circle", "background", uv, d, label=str(int(i) + 1)))
+                label = str(int(i) + 1) + ("*" if status[int(i)] == "moved" else "")
+                shapes.append(Shape("circle", "background", view.world_to_uv(bplane.uv_to_world(uv)), d, label=label,
+                                    name=f"background {int(i) + 1}"))
         for off, lplane, luv in self.lung_discs:
             if off == off0:
-                shapes.append(Shape("circle", "insert", plane.world_to_uv(lplane.uv_to_world(luv)), opts.lung_roi_diameter_mm, label="insert", label_below=True))
-        how = "slice" if self.sampler is not None and self.sampler.nearest_slice else "plane"
-        views = [View(plane, f"Sphere {how}: 37 mm background ROIs (dashed), insert (dotted), body outline found (grey)", shapes, vmax)]
-        # longitudinal view through the phantom axis and the template x direction
-        u = pl.rotation[:, 0]
+                shapes.append(Shape("circle", "insert", view.world_to_uv(lplane.uv_to_world(luv)), opts.lung_roi_diameter_mm,
+                                    label="insert", label_below=True, name="insert"))
+        for s in tpl.spheres:
+            centre = pl.insert_centre(s.name)
+            if s.name in self.sphere_discs:
+                sp, uv = self.sphere_discs[s.name]
+                disc_centre = sp.uv_to_world(uv)
+            else:
+                disc_centre = centre
+            hot = not self.fill.is_cold(s.name)
+            shapes.append(Shape("circle", "hot" if hot else "cold", view.world_to_uv(disc_centre), s.diameter_mm,
+                                label=s.name.replace("sphere_", "").replace("mm", " mm"), name=s.name))
+            if not hot:
+                continue
+            try:
+                if on_slice is not None:
+                    box, voi, _ = isocontour_voi(vol, centre, s.diameter_mm, c_b, opts.isocontour_fraction)
+                    shapes.append(Shape("mask", "isocontour", mask=voi_on_slice(vol, box, voi, view, on_slice), name=f"{s.name} A50"))
+                _, peak_centre = peak_search(vol, centre, s.diameter_mm, opts.peak_diameter_mm)
+            except PhantometryError:  # the measurement itself succeeded; a picture never fails on it
+                continue
+            shapes.append(Shape("circle", "peak", view.world_to_uv(peak_centre), opts.peak_diameter_mm, name=f"{s.name} peak"))
+        return shapes
+
+    def _longitudinal(self) -> tuple[PlaneImage, list[Shape]]:
+        """The image plane through the sphere-plane centre spanned by the slice axis and the
+        image's column or row direction (the one whose plane cuts more of the spheres), with
+        the spheres' sections and the background planes' traces."""
+        pl, tpl, vol = self.placement, self.template, self.volume
+        centre = pl.to_world([0.0, 0.0, 0.0])
+        along = vol.axes_world[0]
         half = max(tpl.body_length_mm, 2 * tpl.body.half_extent_xy_mm) / 2 + 10
-        lon = sample_plane(vol, pl.to_world([0.0, 0.0, 0.0]), u, pl.axis_world, half)
-        lshapes: list[Shape] = []
+
+        def cut(direction: np.ndarray) -> float:
+            normal = np.cross(direction, along)
+            normal = normal / np.linalg.norm(normal)
+            return sum(max(0.0, s.diameter_mm / 2 - abs(float((pl.insert_centre(s.name) - centre) @ normal))) for s in tpl.spheres)
+
+        cols, rows = vol.axes_world[2], vol.axes_world[1]
+        u = cols if cut(cols) >= cut(rows) else rows
+        u = u - float(u @ along) * along
+        lon = sample_plane(vol, centre, u / np.linalg.norm(u), along, half)
+        shapes: list[Shape] = []
         for s in tpl.spheres:
             c = pl.insert_centre(s.name)
             dist = abs(float(lon.distance_to_plane(c)))
             r = s.diameter_mm / 2
             if dist < r:
-                lshapes.append(Shape("circle", "hot", lon.world_to_uv(c), 2 * math.sqrt(r * r - dist * dist)))
+                shapes.append(Shape("circle", "cold" if self.fill.is_cold(s.name) else "hot", lon.world_to_uv(c), 2 * math.sqrt(r * r - dist * dist),
+                                    name=s.name))
+        width = lon.values.shape[1] * lon.pixel_mm
         for off, bplane in self.planes.items():
-            p = pl.to_world([0.0, 0.0, off])
-            lshapes.append(Shape("hline", "background", lon.world_to_uv(self.sampler.onto(bplane, p) if self.sampler is not None else p)))
-        views.append(View(lon, "Longitudinal view along the phantom axis: background slices (dashed)", lshapes, vmax))
-        tilt = pl.as_dict()["axis_tilt_deg"]
-        title = (f"{tpl.title} | series {vol.series_description or vol.series_uid or ''} | axis tilt {tilt:.1f} deg | "
-                 f"ring match {pl.ring_score or 0:.2f}")
-        return Overlay(views, title, width_ratios=[1.25, 1.0])
+            p0 = pl.to_world([0.0, 0.0, off])
+            if self.sampler is not None:
+                p0 = self.sampler.onto(bplane, p0)
+            n = bplane.normal
+            vn = float(lon.v_dir @ n)
+            if abs(vn) < 1e-6:
+                continue
+            us = np.array([0.0, width])
+            vs = (float((p0 - lon.origin_mm) @ n) - us * float(lon.u_dir @ n)) / vn
+            shapes.append(Shape("line", "slice", points_uv=np.c_[us, vs], name=f"background plane {off:+g} mm"))
+        return lon, shapes
+
+    def _legend_words(self) -> dict[str, str]:
+        opts, bg = self.options, self.template.background
+        d = max(bg.diameters_mm) if bg is not None else 37.0
+        offsets = ", ".join(f"{o:+g}" for o in (bg.slice_offsets_mm if bg is not None else []))
+        return {
+            "hot": "hot sphere ROI (contrast): disc of its inner diameter, centred where it was placed",
+            "cold": "cold sphere ROI (contrast)",
+            "isocontour": f"A{100 * opts.isocontour_fraction:.0f} isocontour VOI (RC mean): its voxels on this slice",
+            "peak": f"peak sphere, {opts.peak_diameter_mm:g} mm ({math.pi / 6 * opts.peak_diameter_mm ** 3 / 1000:.1f} mL), where its mean is highest (RC peak)",
+            "background": f"{d:g} mm background ROI as used (number: template position; *: moved)",
+            "insert": f"low-density insert ROI, {opts.lung_roi_diameter_mm:g} mm",
+            "guide": "body outline found in the image",
+            "slice": f"background ROI planes ({offsets} mm from the sphere plane)",
+        }
+
+    def _caption(self, vmax: float, c_b: float, hot_levels: list[float], interpolated: bool) -> list[str]:
+        pl = self.placement
+        out = [f"Ring match {pl.ring_score or 0:.2f}: how closely the ring of spheres in the image follows the profile the template and "
+               "fill record predict (normalised correlation: 1 = identical; placements below 0.30 are refused)."]
+        out.append(f"Grey scale: white 0, black {vmax:,.0f} Bq/mL and above ({vmax / c_b:.1f} x the measured background), so the "
+                   "background's texture shows.")
+        out.append("Orange-red: hot, blue: cold. The transverse view is the stored slice nearest the sphere plane with rows downwards, as viewers "
+                   "show it; letters name the patient directions (" + ("DICOM LPS" if self.volume.frame == "LPS" else "NIfTI RAS") + " frame).")
+        bp = self.background_placement
+        if bp is not None and (bp.n_moved or bp.n_dropped):
+            out.append(f"Background ROI positions: {bp.summary()}.")
+        if interpolated:
+            out.append(f"The phantom axis is {self.sampler.tilt_deg:.1f} deg from the slice axis: the ROIs were measured on planes "
+                       "interpolated perpendicular to it (middle view) and are projected onto the stored slice.")
+        return out
 
     def pictures(self) -> dict[str, Callable[[Path], Path]]:
         from ..figures import recovery_curve_picture
@@ -269,6 +370,11 @@ class BodyAnalysis(Analysis):
                                           isocontour_fraction=opts.isocontour_fraction, peak_diameter_mm=opts.peak_diameter_mm)
 
         return {"recovery_curve.png": draw}
+
+    def picture_captions(self) -> dict[str, str]:
+        bands = " Grey boxes: the acceptance bands applied; hollow red markers: outside a band." if self.band_sets else ""
+        return {"recovery_curve.png": "RC max, RC mean (A50) and RC peak of the hot spheres with the noise-free blurred-sphere model at the "
+                                      "fitted effective FWHM; bars: standard uncertainty." + bands}
 
     def json_extras(self) -> dict[str, Any]:
         out: dict[str, Any] = {
@@ -405,17 +511,54 @@ class BodyKind(PhantomKind):
         out["phantom"] = PHANTOM_METRICS
         return out
 
+    def failure_sketch(self, volume: Volume, template: Template, where: str) -> FailureSketch:
+        """The body found, then the phantom axis (the cold axis insert) and the sphere plane
+        searched along it, as far as each can be found (:func:`phantometry.locate.locate`'s
+        first steps, repeated for the picture of a failed run)."""
+        from ..locate import _sphere_plane_offset, find_axis, find_body
+
+        sketch = body_sketch(volume, where)
+        if sketch.inside_body is None:
+            return sketch
+        opts = self.options(template)
+        axis_ins = template.insert(opts.axis_insert)
+        try:
+            body = find_body(volume, where)
+            a0, d = find_axis(volume, body, axis_ins, where)
+        except PhantometryError as exc:
+            sketch.notes.append(f"no phantom axis found ({exc})")
+            return sketch
+        sketch.axis_point_mm, sketch.axis_direction = a0, d
+        sketch.notes.append(f"phantom axis found along the {axis_ins.name}")
+        ring_r = float(np.median([math.hypot(s.centre_mm[0] - axis_ins.centre_mm[0], s.centre_mm[1] - axis_ins.centre_mm[1])
+                                  for s in template.spheres]))
+        try:
+            off, _, _ = _sphere_plane_offset(volume, template, body, a0, d, body.background, ring_r, where)
+        except PhantometryError as exc:
+            sketch.notes.append(f"no sphere plane found ({exc})")
+            return sketch
+        sketch.plane_point_mm = a0 + off * d
+        sketch.notes.append(f"sphere plane searched at {off:+.0f} mm along the axis from the insert's centre")
+        return sketch
+
     def comparison_charts(self, template: Template, fill: FillRecord, settings: Sequence[ComparedSetting]) -> list[Chart]:
         from ..figures import contrast_noise_chart, recovery_curves_chart
 
         diameters = {s.name: float(s.diameter_mm) for s in template.spheres}
         hot = {s.name: not fill.is_cold(s.name) for s in template.spheres}
-        triples = [(s.number, s.label, list(s.rows)) for s in settings]
+        triples = [(s.number, s.label, list(s.rows)) for s in settings if s.error is None]
+        failed = [(s.number, s.label, s.error) for s in settings if s.error is not None]
+        bands = any(r.band is not None for _, _, rows in triples for r in rows)
+        judged = any(r.verdict == "fail" for _, _, rows in triples for r in rows)
+        marks = ("; hollow markers: outside an acceptance band" if judged else "")
         return [
-            Chart("contrast_noise.png", "Percent contrast against background variability per sphere, one numbered point per setting; "
-                  "bars: standard uncertainty.", contrast_noise_chart, (triples, diameters)),
-            Chart("recovery_curves.png", "Recovery coefficients of every setting; grey boxes: acceptance bands; red open markers: "
-                  "outside the band.", recovery_curves_chart, (triples, diameters), {"hot": hot}),
+            Chart("contrast_noise.png", "Percent contrast against background variability per sphere: one colour and marker per setting, "
+                  f"its number beside the point where there is room; bars: standard uncertainty{marks}.", contrast_noise_chart,
+                  (triples, diameters), {"failed": failed}),
+            Chart("recovery_curves.png", "Recovery coefficients (max, A50 mean, 1 mL peak) of every setting against sphere diameter, one "
+                  "colour and marker per setting, its number at the right end of its line"
+                  + ("; grey boxes: acceptance bands" if bands else "") + marks + ".",
+                  recovery_curves_chart, (triples, diameters), {"hot": hot, "failed": failed}),
         ]
 
     def analyse(

@@ -45,6 +45,8 @@ from .base import (
     Shape,
     SummaryTable,
     View,
+    display_window,
+    series_phrase,
     calibration_warning,
     check_scan_time,
     fmt_number,
@@ -103,28 +105,101 @@ class InsertsAnalysis(Analysis):
         return SummaryTable(self.template.title, ["ROI", "metric", "value"], rows)
 
     def overlay(self) -> Overlay:
-        """A transverse and a longitudinal view through the inserts' mean position with every
-        insert drawn and labelled."""
-        pl, tpl = self.placement, self.template
+        """A transverse view through the inserts' mean position and a longitudinal view
+        through the axis (in the direction that cuts the most inserts), with every VOI as
+        analysed: each insert's VOI (``insert_voi_fraction`` of its size), its inner wall and
+        the reference VOI, where each plane cuts them."""
+        pl, tpl, a = self.placement, self.template, self.options
         inserts = [i for i in tpl.inserts if i.fill != "solid"]
         z_mid = float(np.mean([i.centre_mm[2] for i in inserts])) if inserts else 0.0
         half = tpl.body.half_extent_xy_mm + 5
-        tra = sample_plane(self.volume, pl.to_world([*tpl.body.centre_xy_mm, z_mid]), pl.rotation[:, 0], pl.rotation[:, 1], half)
-        lon = sample_plane(self.volume, pl.to_world(tpl.body_centre_mm), pl.rotation[:, 0], pl.axis_world, max(half, tpl.body_length_mm / 2 + 5))
-        vmax = float(np.nanpercentile(tra.values, 99.5)) or 1.0
-        shapes = []
+        cx, cy = tpl.body.centre_xy_mm
+        tra = sample_plane(self.volume, pl.to_world([cx, cy, z_mid]), pl.rotation[:, 0], pl.rotation[:, 1], half)
+        u_t = _most_cutting_direction(tpl, inserts, a.insert_voi_fraction)
+        lon = sample_plane(self.volume, pl.to_world(tpl.body_centre_mm), pl.rotation[:, :2] @ u_t, pl.axis_world,
+                           max(half, tpl.body_length_mm / 2 + 5))
+        ref_mean = self.value("reference", "mean_bq_ml") or self.true_background_bq_ml
+        hot = [c for c in self.true_insert_bq_ml.values() if c > self.true_background_bq_ml]
+        vmax, note = display_window(ref_mean, max(hot) if hot else None, what="reference mean")
+        shapes: list[Shape] = []
+        lshapes: list[Shape] = []
+        f = a.insert_voi_fraction
         for ins in inserts:
-            hot = self.true_insert_bq_ml.get(ins.name, 0.0) > self.true_background_bq_ml
-            shapes.append(Shape("circle", "hot" if hot else "cold", tra.world_to_uv(pl.insert_centre(ins.name)), ins.diameter_mm, label=ins.name))
-        views = [View(tra, f"Transverse view at z = {z_mid:g} mm (template frame)", shapes, vmax),
-                 View(lon, "Longitudinal view along the phantom axis", [], vmax)]
-        return Overlay(views, f"{tpl.title} | match {pl.ring_score or 0:.2f}")
+            role = "hot" if self.true_insert_bq_ml.get(ins.name, 0.0) > self.true_background_bq_ml else "cold"
+            c = pl.insert_centre(ins.name)
+            axis = pl.direction_to_world(ins.axis_unit) if ins.shape == "cylinder" else None
+            length = float(ins.length_mm) if ins.shape == "cylinder" else None
+            for view, out in ((tra, shapes), (lon, lshapes)):
+                voi = _section(view, c, f * ins.diameter_mm, axis, None if length is None else f * length, role, ins.name)
+                wall = _section(view, c, ins.diameter_mm, axis, length, "guide", f"{ins.name} wall")
+                if voi is not None:
+                    voi.label = ins.name
+                    out.append(voi)
+                if wall is not None:
+                    out.append(wall)
+        ref = a.reference_voi
+        ref_c = pl.to_world([cx, cy, ref.centre_z_mm])
+        for view, out in ((tra, shapes), (lon, lshapes)):
+            sec = _section(view, ref_c, ref.diameter_mm, pl.axis_world, ref.length_mm, "reference", "reference")
+            if sec is not None:
+                sec.label = "reference VOI"
+                sec.label_below = True
+                out.append(sec)
+        views = [View(tra, f"Transverse plane at z = {z_mid:g} mm of the template frame (through the inserts)", shapes, vmax, window_note=note),
+                 View(lon, "Longitudinal plane through the phantom axis", lshapes, vmax, window_note=note)]
+        legend = {"hot": f"VOI of a hot insert ({100 * f:.0f} % of its diameter and length, as analysed)",
+                  "cold": "VOI of a cold insert (the same fraction)",
+                  "guide": "insert's inner wall (template size, where placed)",
+                  "reference": f"reference VOI, {ref.diameter_mm:g} x {ref.length_mm:g} mm (mean, uniformity, activity recovery)"}
+        caption = [f"Match {pl.ring_score or 0:.2f}: how closely the image follows the concentrations the template and fill record "
+                   "predict on a cylindrical grid about the axis (normalised correlation: 1 = identical; placements below 0.30 are "
+                   "refused).",
+                   f"Grey scale: white 0, black {vmax:,.0f} Bq/mL and above ({note}). The VOIs keep clear of the inserts' blurred "
+                   "edges; orange-red: hot, blue: cold. Letters name the patient directions of each edge "
+                   f"({'DICOM LPS' if self.volume.frame == 'LPS' else 'NIfTI RAS'} frame)."]
+        title = f"{tpl.title} | {series_phrase(self.volume)} | image match {pl.ring_score or 0:.2f}"
+        return Overlay(views, title, frame=self.volume.frame, legend=legend, caption=caption)
 
     def key_metrics(self) -> list[tuple[str, str]]:
         out = [("reference", "uniformity_std_pct"), ("reference", "activity_recovery")]
         for ins in self.template.inserts:
             out += [(ins.name, m) for m in ("rc_mean", "rc_max", "spillover_ratio") if self.value(ins.name, m) is not None]
         return out
+
+
+def _section(view, centre: np.ndarray, diameter_mm: float, axis: np.ndarray | None, length_mm: float | None, role: str,
+             name: str) -> Shape | None:
+    """Where a plane cuts a sphere (``axis`` None) or a cylinder: a circle (sphere, or a
+    cylinder across the plane), a rectangle (a cylinder lying in the plane's v direction), or
+    None where the plane misses it (or cuts a cylinder obliquely: not drawn)."""
+    r = diameter_mm / 2
+    dist = float(view.distance_to_plane(centre))
+    uv = view.world_to_uv(centre)
+    if axis is None:
+        return Shape("circle", role, uv, 2 * math.sqrt(r * r - dist * dist), name=name) if abs(dist) < r else None
+    a = np.asarray(axis, float) / np.linalg.norm(axis)
+    across = abs(float(a @ view.normal))
+    if across > 0.99:  # the cylinder crosses the plane: a circle where its length reaches
+        return Shape("circle", role, uv, diameter_mm, name=name) if abs(dist) <= length_mm / 2 else None
+    if across < 0.09 and abs(dist) < r:  # the cylinder lies in the plane
+        chord = 2 * math.sqrt(r * r - dist * dist)
+        along_v = abs(float(a @ view.v_dir)) >= abs(float(a @ view.u_dir))
+        return Shape("rect", role, uv, (chord, length_mm) if along_v else (length_mm, chord), name=name)
+    return None
+
+
+def _most_cutting_direction(template: Template, inserts: list[Insert], fraction: float) -> np.ndarray:
+    """The in-plane direction (template x, y; unit) of the longitudinal plane through the axis
+    that cuts the most insert VOIs (every 5 degrees; the first of equals)."""
+    cx, cy = template.body.centre_xy_mm
+    best, best_n = np.array([1.0, 0.0]), -1
+    for deg in range(0, 180, 5):
+        d = np.array([math.cos(math.radians(deg)), math.sin(math.radians(deg))])
+        normal = np.array([-d[1], d[0]])
+        n = sum(abs(float((np.asarray(i.centre_mm[:2], float) - (cx, cy)) @ normal)) < fraction * i.diameter_mm / 2 for i in inserts)
+        if n > best_n:
+            best, best_n = d, n
+    return best
 
 
 def _values(volume: Volume, roi: RoiWeights, what: str, where: str) -> np.ndarray:

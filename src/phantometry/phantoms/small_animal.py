@@ -35,6 +35,8 @@ from .base import (
     Shape,
     SummaryTable,
     View,
+    display_window,
+    series_phrase,
     calibration_warning,
     check_scan_time,
     fmt_number,
@@ -62,6 +64,11 @@ class SpilloverVoi(BaseModel):
 
     diameter_mm: float = Field(gt=0)
     length_mm: float = Field(gt=0)
+
+
+#: Top of the overlay's grey scale, times the uniform region's mean (rods and uniform region
+#: hold one solution: the uniform region sits at two thirds grey, its noise texture visible).
+ROD_WINDOW_FACTOR = 1.5
 
 
 class Options(KindOptions):
@@ -192,11 +199,14 @@ class SmallAnimalAnalysis(Analysis):
         shapes: list[Shape] = []
         for r in tpl.rods:
             uv = img.world_to_uv(pl.to_world([r.centre_mm[0], r.centre_mm[1], z_ref]))
-            shapes.append(Shape("circle", "search", uv, r.diameter_mm * a.rod_search_diameter_factor, label=r.name.replace("rod_", "")))
-            shapes.append(Shape("marker", "peak", self.rod_peaks_uv[r.name]))
+            shapes.append(Shape("circle", "search", uv, r.diameter_mm * a.rod_search_diameter_factor,
+                                label=r.name.replace("rod_", "").replace("mm", " mm"), name=r.name))
+            shapes.append(Shape("marker", "peak", self.rod_peaks_uv[r.name], name=f"{r.name} peak"))
         how = "original slices" if self.rod_sampling.mode == "original_slices" else "interpolated planes"
-        views = [View(img, f"Rods: mean of {self.rod_sampling.planes} {how}, z {z_lo:.1f} to {z_hi:.1f} mm; peaks (+)",
-                      shapes, float(np.nanpercentile(img.values, 99.8)) or 1.0)]
+        level = self.value("uniform_region", "mean_bq_ml") or self.true_background_bq_ml
+        vmax, note = display_window(level, factor=ROD_WINDOW_FACTOR, what="uniform-region mean")
+        views = [View(img, f"Rods: mean of {self.rod_sampling.planes} {how}, z {z_lo:.1f} to {z_hi:.1f} mm (phantom frame)",
+                      shapes, vmax, window_note=note)]
         u_dir = pl.rotation[:, 0]
         found = [c for c in getattr(pl, "chambers", []) if c.found]
         if len(found) >= 2:  # the plane through the axis and the chambers as found
@@ -206,14 +216,25 @@ class SmallAnimalAnalysis(Analysis):
         lon = sample_plane(self.volume, pl.to_world(tpl.body_centre_mm), u_dir, pl.axis_world,
                            max(tpl.body_length_mm, 2 * tpl.body.half_extent_xy_mm) / 2 + 3)
         uvoi = self.uniform_voi
-        lshapes = [Shape("rect", "voi", lon.world_to_uv(pl.to_world([0.0, 0.0, uvoi.centre_z_mm])), (uvoi.diameter_mm, uvoi.length_mm))]
+        lshapes = [Shape("rect", "voi", lon.world_to_uv(pl.to_world([0.0, 0.0, uvoi.centre_z_mm])), (uvoi.diameter_mm, uvoi.length_mm),
+                         label="uniform VOI", label_below=True, name="uniform_region")]
         for c in tpl.chambers:
             lshapes.append(Shape("rect", "insert", lon.world_to_uv(pl.insert_centre(c.name)),
-                                 (a.spillover_voi.diameter_mm, a.spillover_voi.length_mm), label=c.name.replace("cold_", "")))
-        views.append(View(lon, "Through the chambers: uniform VOI (solid), spill-over VOIs (dotted)", lshapes,
-                          float(np.nanpercentile(lon.values, 99.8)) or 1.0))
-        title = f"{tpl.title} | series {self.volume.series_description or self.volume.series_uid or ''} | rod match {pl.ring_score or 0:.2f}"
-        return Overlay(views, title)
+                                 (a.spillover_voi.diameter_mm, a.spillover_voi.length_mm), label=c.name.replace("cold_", ""), name=c.name))
+        views.append(View(lon, "Through the phantom axis and the cold chambers as found (phantom frame)", lshapes, vmax, window_note=note))
+        title = f"{tpl.title} | {series_phrase(self.volume)} | rod match {pl.ring_score or 0:.2f}"
+        legend = {
+            "search": f"rod search region ({a.rod_search_diameter_factor:g} x the rod diameter)",
+            "peak": "hottest pixel of each rod (its profile runs there)",
+            "voi": f"uniform-region VOI, {uvoi.diameter_mm:g} x {uvoi.length_mm:.1f} mm (mean, %STD)",
+            "insert": f"spill-over VOI in each cold chamber, {a.spillover_voi.diameter_mm:g} x {a.spillover_voi.length_mm:g} mm",
+        }
+        caption = [f"Rod match {pl.ring_score or 0:.2f}: how closely the rods' angular profile in the image follows the template's "
+                   "(normalised correlation: 1 = identical).",
+                   f"Grey scale: white 0, black {vmax:,.0f} Bq/mL and above ({ROD_WINDOW_FACTOR:g} x the uniform region's mean). Views in "
+                   "the phantom's own frame; the letters name the patient directions of each edge "
+                   f"({'DICOM LPS' if self.volume.frame == 'LPS' else 'NIfTI RAS'} frame), so a turned or flipped phantom shows."]
+        return Overlay(views, title, frame=self.volume.frame, legend=legend, caption=caption)
 
     def json_extras(self) -> dict[str, Any]:
         out = super().json_extras()

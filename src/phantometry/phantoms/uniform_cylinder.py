@@ -126,6 +126,8 @@ from .base import (
     Shape,
     SummaryTable,
     View,
+    display_window,
+    series_phrase,
     calibration_warning,
     check_scan_time,
     fmt_number,
@@ -934,17 +936,24 @@ class UniformCylinderAnalysis(Analysis):
             a = 2 * np.pi * i / n
             shapes.append(Shape("contour", "guide", points_uv=np.array([c_uv + 2 * r_a / 3 * np.array([np.cos(a), np.sin(a)]),
                                                                           c_uv + r_a * np.array([np.cos(a), np.sin(a)])])))
-        vmax = float(np.nanpercentile(tra.values, 99.5)) or 1.0
+        level = self.value("uniform_volume", "mean_bq_ml") or self.true_background_bq_ml
+        vmax, note = display_window(level, factor=1.5, what="volume mean")
         scale = 50.0 if cyl.radius_mm >= 75 else 20.0
         half_c = max(cyl.radius_mm, 0.5 * cyl.length_mm) + 20.0
         cor = sample_plane(self.volume, cyl.centre_mm, cyl.ex, cyl.axis, half_c)
         cc = cor.world_to_uv(cyl.centre_mm)
         cshapes = [Shape("rect", "outline", cc, (cyl.diameter_mm, cyl.length_mm)), Shape("rect", "voi", cc, (2 * r_a, l_a))]
-        views = [View(tra, "Transverse: wall, analysis disc, centre disc, outer ring", shapes, vmax, colorbar="Bq/mL", scale_bar_mm=scale),
-                 View(cor, "Coronal, along the axis: cylinder, analysis volume", cshapes, vmax, colorbar="Bq/mL", scale_bar_mm=scale)]
-        title = (f"{self.template.title} | series {self.volume.series_description or self.volume.series_uid or ''} | "
+        views = [View(tra, "Transverse through the centre", shapes, vmax, colorbar="Bq/mL", scale_bar_mm=scale, window_note=note),
+                 View(cor, "Along the axis, through the centre", cshapes, vmax, colorbar="Bq/mL", scale_bar_mm=scale, window_note=note)]
+        title = (f"{self.template.title} | {series_phrase(self.volume)} | "
                  f"{cyl.diameter_mm:.1f} x {cyl.length_mm:.1f} mm, tilt {cyl.tilt_deg(self.volume):.1f} deg")
-        return Overlay(views, title)
+        legend = {"outline": "cylinder wall and ends as measured in the image",
+                  "voi": f"analysis volume ({self.options.wall_margin_mm:g} mm inside the wall, {self.options.end_margin_mm:g} mm from the ends)",
+                  "insert": "central disc (r <= R/3) and outer ring (2R/3 < r <= R) of the radial non-uniformity",
+                  "guide": f"borders of the {self.options.sectors} sectors"}
+        caption = [f"Grey scale: white 0, black {vmax:,.0f} Bq/mL and above ({note}), so the noise texture shows. Letters name the patient "
+                   f"directions of each edge ({'DICOM LPS' if self.volume.frame == 'LPS' else 'NIfTI RAS'} frame)."]
+        return Overlay(views, title, frame=self.volume.frame, legend=legend, caption=caption)
 
     def pictures(self) -> dict[str, Callable[[Path], Path]]:
         if self.regions is None:
@@ -1169,35 +1178,60 @@ class UniformCylinderKind(PhantomKind):
 
     def comparison_charts(self, template: Template, fill: FillRecord, settings: Sequence[ComparedSetting]) -> list[Chart]:
         points = []
+        failed = []
         for st in settings:
+            if st.error is not None:
+                failed.append((st.number, st.label, st.error))
+                continue
             vals = {(r.roi, r.metric): (r.value, r.uncertainty) for r in st.rows}
             points.append((st.number, st.label, vals))
         return [Chart("uniformity_comparison.png", "Activity recovery, voxel CV, axial and radial uniformity per setting (numbered as in the "
-                      "ranking); bars: standard uncertainty.", uniformity_comparison_chart, (points,))]
+                      "ranking; one colour and marker per setting); bars: standard uncertainty.", uniformity_comparison_chart, (points,),
+                      {"failed": failed})]
 
 
-def uniformity_comparison_chart(points, path: Path) -> Path:
+def uniformity_comparison_chart(points, path: Path, *, failed: Sequence[tuple[int, str, str]] = ()) -> Path:
     """Four panels, one point per setting: activity recovery, voxel CV, largest axial deviation,
-    radial non-uniformity (module-level, so a worker process can draw it)."""
-    from ..figures import finish_figure, pyplot
+    radial non-uniformity (module-level, so a worker process can draw it); the key lists every
+    setting and those that could not be measured."""
+    from ..figures import save_chart
 
-    plt = pyplot()
+    return save_chart(draw_uniformity_comparison(points, failed=failed), path)
+
+
+def draw_uniformity_comparison(points, *, failed: Sequence[tuple[int, str, str]] = ()):
+    """The figure of :func:`uniformity_comparison_chart` (not saved)."""
+    from ..figures import SettingsKey, new_figure, panel_grid, setting_style, wrap_text
+
     panels = [(("uniform_volume", "activity_recovery"), "activity recovery"), (("uniform_volume", "voxel_cv_pct"), "voxel CV (%)"),
               (("axial_profile", "max_deviation_pct"), "largest axial deviation (%)"),
               (("transverse", "radial_nonuniformity_pct"), "radial non-uniformity (%)")]
-    fig, axes = plt.subplots(2, 2, figsize=(9, 6))
-    for ax, (key, title) in zip(axes.ravel(), panels):
+    width = 0.75 + 2 * 3.6 + 0.9 + 0.3
+    fig, renderer = new_figure(width, 6.0)
+    key = SettingsKey([(n, label, [None]) for n, label, _ in points], list(failed), width, renderer, fig.dpi)
+    head = wrap_text("Uniform cylinder: every setting's calibration and uniformity (bars: standard uncertainty)", width * fig.dpi - 20, 10,
+                     renderer)
+    top = 0.2 + (head.count("\n") + 1) * 0.2 + 0.35
+    bottom = 0.3 + key.height_in + 0.7
+    fig.set_size_inches(width, top + 2 * 2.6 + 0.95 + bottom)
+    fig.suptitle(head, fontsize=10, y=1 - 0.12 / fig.get_figheight(), va="top")
+    axes = panel_grid(fig, 4, 2, 3.6, 2.6, top, bottom, 0.75, 0.9, 0.95)
+    for ax, (key_, title) in zip(axes, panels):
         for number, _label, vals in points:
-            v, u = vals.get(key, (None, None))
+            v, u = vals.get(key_, (None, None))
             if v is None or not math.isfinite(v):
                 continue
-            ax.errorbar([number], [v], yerr=None if u is None else [u], fmt="o", color="black", ms=5, capsize=2)
-            ax.annotate(str(number), (number, v), textcoords="offset points", xytext=(5, 3), fontsize=8)
+            st = setting_style(number)
+            ax.errorbar([number], [v], yerr=None if u is None else [u], fmt="none", ecolor=st["color"], alpha=0.6, capsize=2)
+            ax.plot([number], [v], ls="none", ms=6.5, mec="#222222", mew=0.6, marker=st["marker"], color=st["color"], gid=f"setting_{number}")
         ax.set_title(title, fontsize=9)
         ax.set_xlabel("setting", fontsize=8)
+        ax.tick_params(labelsize=7)
         ax.grid(alpha=0.3)
         ax.set_xticks([p[0] for p in points])
-    return finish_figure(fig, path, dpi=100)
+        ax.margins(x=0.15)
+    key.draw(fig, bottom - 0.7)
+    return fig
 
 
 KIND = UniformCylinderKind()
