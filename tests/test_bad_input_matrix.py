@@ -524,6 +524,56 @@ def _fill_folder(case: Path, src: Path) -> tuple[list[str], str]:
 CASES[-1] = Case("fill-is-a-folder", _fill_folder)
 
 
+def harmonise_case(case_id: str, extra: tuple[str, ...], offending: str, *, bands: tuple[str, ...] = ("eanm-fdg-2015",),
+                   command: str = "harmonise", change_bands: Callable[[str], str] | None = None,
+                   change_fill: Callable[[dict], None] | None = None, image: str | None = None) -> Case:
+    """A ``harmonise`` (or ``compare --harmonise``) case: a sweep, a template, a band set or an
+    input that cannot be harmonised."""
+
+    def build(case: Path, src: Path) -> tuple[list[str], str]:
+        folder = _copy_dicom(case, src)
+        if change_fill is not None:
+            record = yaml.safe_load((src / "fill.yaml").read_text(encoding="utf-8"))
+            change_fill(record)
+            (case / "fill.yaml").write_text(yaml.safe_dump(record, sort_keys=False), encoding="utf-8")
+        band_args: list[str] = []
+        for b in bands:
+            band_args += ["--bands", b]
+        if change_bands is not None:
+            target = case / "eanm-fdg-2015.yaml"
+            target.write_text(change_bands((src / "eanm-fdg-2015.yaml").read_text(encoding="utf-8")), encoding="utf-8")
+            band_args = ["--bands", str(target)]
+        target_image = str(case / image) if image else str(folder)
+        if command == "compare":
+            argv = ["compare", target_image, "--fill", str(case / "fill.yaml"), "--out", str(case / "results"), "--workers", "1",
+                    "--harmonise", *band_args, *extra]
+        else:
+            argv = ["harmonise", target_image, "--fill", str(case / "fill.yaml"), "--out", str(case / "results"), *band_args, *extra]
+        return argv, str(case / offending) if offending.startswith("./") else offending
+
+    return Case(case_id, build)
+
+
+CASES += [
+    harmonise_case("harmonise-template-without-recovery", ("--template", "small-animal"), "small-animal"),
+    harmonise_case("harmonise-max-fwhm-zero", ("--max-fwhm", "0"), "--max-fwhm"),
+    harmonise_case("harmonise-max-fwhm-negative", ("--max-fwhm", "-2"), "--max-fwhm"),
+    harmonise_case("harmonise-max-fwhm-not-a-number", ("--max-fwhm", "nan"), "--max-fwhm"),
+    harmonise_case("harmonise-max-fwhm-too-wide", ("--max-fwhm", "100"), "--max-fwhm"),
+    harmonise_case("harmonise-step-zero", ("--step", "0"), "--step"),
+    harmonise_case("harmonise-step-above-max", ("--step", "20"), "--step"),
+    harmonise_case("harmonise-too-many-filters", ("--step", "0.01"), "--step"),
+    harmonise_case("harmonise-unknown-band-set", (), "nosuch", bands=("nosuch",)),
+    harmonise_case("harmonise-band-set-of-another-template", (), "uniform-cylinder-calibration", bands=("uniform-cylinder-calibration",)),
+    harmonise_case("harmonise-band-limits-inverted", (), "./eanm-fdg-2015.yaml",
+                   change_bands=lambda t: t.replace("low: 0.76, high: 0.89", "low: 0.89, high: 0.76")),
+    harmonise_case("harmonise-fill-without-background", (), "./fill.yaml", change_fill=lambda r: r.pop("background")),
+    harmonise_case("harmonise-series-missing", (), "./no-such-series", image="no-such-series"),
+    harmonise_case("compare-harmonise-without-bands", (), "--harmonise", bands=(), command="compare"),
+    harmonise_case("compare-harmonise-template-without-recovery", ("--template", "small-animal"), "small-animal", command="compare"),
+]
+
+
 # ============================================================================ the matrix
 def test_matrix_is_large_enough():
     ids = [c.id for c in CASES]

@@ -122,3 +122,22 @@ def test_seg_refused_where_it_does_not_apply(kind_scans, tmp_path, capsys):
         lines = [line for line in err.splitlines() if line.strip()]
         assert len(lines) == 1 and lines[0].startswith("phantometry: error:") and "--seg" in lines[0]
         assert not Path(tmp_path / "seg").exists()
+
+
+def test_harmonise_runs_or_is_refused_in_one_line(kind_scans, tmp_path, capsys):
+    # harmonise needs a kind that re-reads its metrics on a filtered image (recovery
+    # coefficients): it runs for those, and every other kind is refused with one clear line
+    name = kind_scans["name"]
+    out = tmp_path / "harm"
+    code = main(["harmonise", str(kind_scans["paths"][0]["image"]), "--template", name, "--fill", str(kind_scans["fill"]),
+                 "--bands", str(kind_scans["bands"]), "--out", str(out), "--max-fwhm", "4", "--step", "1"])
+    captured = capsys.readouterr()
+    if kind_of(load_template(name)).supports_reread:
+        assert code == 0, captured.err
+        doc = json.loads((out / "harmonisation.json").read_text(encoding="utf-8"))
+        assert doc["passing_range_mm"] == [0.0, 4.0] and doc["recommended_fwhm_mm"] is not None  # invented wide band: all pass
+    else:
+        assert code == 2
+        lines = [line for line in captured.err.splitlines() if line.strip()]
+        assert len(lines) == 1 and lines[0].startswith("phantometry: error:") and name in lines[0] and "harmonise works with" in lines[0]
+        assert not out.exists()

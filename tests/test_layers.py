@@ -46,6 +46,7 @@ LAYERS: dict[str, int] = {
     "phantometry.metrics": 2,
     "phantometry.metrics.": 2,
     "phantometry.noise": 2,
+    "phantometry.postfilter": 2,
     "phantometry.bands": 2,
     "phantometry.synth": 2,
     "phantometry.ranking": 2,
@@ -62,6 +63,7 @@ LAYERS: dict[str, int] = {
     "phantometry.measure": 4,
     "phantometry.compare": 4,
     "phantometry.compare.": 4,
+    "phantometry.harmonise": 4,
     # 5: the command line
     "phantometry.cli": 5,
     "phantometry.cli.": 5,

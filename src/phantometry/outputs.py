@@ -52,12 +52,14 @@ KIND_MEASURE = "measure"
 KIND_COMPARE = "compare"
 KIND_SCAN = "synthetic-scan"
 KIND_DEMO = "demo"
+KIND_HARMONISE = "harmonise"
 #: The kinds of folder a marker may name, with the words the terminal uses for them.
 KINDS = {
     KIND_MEASURE: "measure results folder",
     KIND_COMPARE: "compare results folder",
     KIND_SCAN: "synthetic scan folder",
     KIND_DEMO: "demo folder",
+    KIND_HARMONISE: "harmonise results folder",
 }
 
 #: PNG text key that marks a picture phantometry wrote beside an output folder.
@@ -714,6 +716,7 @@ __all__ = [
     "KIND_COMPARE",
     "KIND_SCAN",
     "KIND_DEMO",
+    "KIND_HARMONISE",
     "OutputPlan",
     "WrittenFolder",
     "Staging",

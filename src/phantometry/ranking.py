@@ -100,6 +100,8 @@ class SeriesOutcome:
         size of the float32 volume.
     peak_rss_bytes : int or None
         With memory tracing: the worker process's maximum resident set size so far.
+    harmonisation : dict or None
+        With ``compare --harmonise``: the setting's harmonising post-filter.
     """
 
     job: SeriesJob
@@ -118,6 +120,10 @@ class SeriesOutcome:
     peak_traced_bytes: int | None = None
     volume_bytes: int | None = None
     peak_rss_bytes: int | None = None
+    #: with ``compare --harmonise``: the harmonising filter found for this setting
+    #: (``recommended_fwhm_mm``, ``passing_range_mm``, ``passing_range_reason``, ... ;
+    #: :func:`phantometry.harmonise.summary`), or ``{"error": message}``
+    harmonisation: dict[str, Any] | None = None
 
     @property
     def ok(self) -> bool:
@@ -181,6 +187,8 @@ class ComparisonResult:
     charts: list[tuple[str, str]] = field(default_factory=list)
     #: what writing the folder did (replaced an earlier one?)
     written: "WrittenFolder | None" = None
+    #: the settings' harmonising filters were searched (``compare --harmonise``)
+    harmonised: bool = False
 
     @property
     def succeeded(self) -> list[SeriesOutcome]:
@@ -463,17 +471,48 @@ RANKING_COLUMNS = [
 ]
 
 
+#: Columns appended to ranking.csv by ``compare --harmonise``.
+HARMONISATION_COLUMNS = ["recommended_filter_fwhm_mm", "passing_filter_low_mm", "passing_filter_high_mm", "filter_note"]
+
+
+def harmonisation_cells(h: dict[str, Any] | None) -> list[Any]:
+    """The :data:`HARMONISATION_COLUMNS` of one setting (empty cells without a harmonisation)."""
+    if not h:
+        return [None, None, None, None]
+    if h.get("error"):
+        return [None, None, None, h["error"]]
+    rng = h.get("passing_range_mm") or [None, None]
+    return [h.get("recommended_fwhm_mm"), rng[0], rng[1], h.get("passing_range_reason") or ""]
+
+
+def harmonisation_text(h: dict[str, Any] | None) -> str:
+    """One setting's harmonising filter in a few words: ``6.75 mm (5.75-7.75)`` or ``none``."""
+    if not h:
+        return "-"
+    if h.get("error"):
+        return "not found (error)"
+    if h.get("recommended_fwhm_mm") is None:
+        return "none"
+    lo, hi = h["passing_range_mm"]
+    return f"{h['recommended_fwhm_mm']:g} mm ({lo:g}-{hi:g})"
+
+
 def ranking_csv(result: ComparisonResult) -> str:
-    """``ranking.csv``: :data:`RANKING_COLUMNS`; failed series last with status ``error``."""
+    """``ranking.csv``: :data:`RANKING_COLUMNS` (and :data:`HARMONISATION_COLUMNS` for a
+    harmonised comparison); failed series last with status ``error``."""
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
-    w.writerow(RANKING_COLUMNS)
+    extra = result.harmonised
+    w.writerow(RANKING_COLUMNS + (HARMONISATION_COLUMNS if extra else []))
+    by_number = {o.job.number: o for o in result.outcomes}
     for e in result.ranking:
         meets = "" if e.meets_all_bands is None else ("yes" if e.meets_all_bands else "no")
+        h = by_number[e.number].harmonisation if e.number in by_number else None
         w.writerow([e.rank, e.number, e.label, e.series_uid or "", "measured", meets, e.checked, e.passed, e.failed,
-                    _fmt(e.distance), "; ".join(e.reasons), f"series/series_{e.number:03d}"])
+                    _fmt(e.distance), "; ".join(e.reasons), f"series/series_{e.number:03d}"]
+                   + ([_fmt(v) for v in harmonisation_cells(h)] if extra else []))
     for o in result.failed:
-        w.writerow(["", o.job.number, o.label, o.job.series_uid or "", "error", "", 0, 0, 0, "", o.error, ""])
+        w.writerow(["", o.job.number, o.label, o.job.series_uid or "", "error", "", 0, 0, 0, "", o.error, ""] + (["", "", "", ""] if extra else []))
     return buf.getvalue()
 
 
@@ -520,6 +559,9 @@ __all__ = [
     "key_metric_columns",
     "short_roi_names",
     "RANKING_COLUMNS",
+    "HARMONISATION_COLUMNS",
+    "harmonisation_cells",
+    "harmonisation_text",
     "ranking_csv",
     "comparison_csv",
     "read_comparison_csv",

@@ -440,6 +440,17 @@ def _per_setting_table(result: "ComparisonResult", tables: Sequence[KeyMetricCol
             f'{head}<tbody>{"".join(body)}</tbody></table>')
 
 
+def _harmonisation_cell(outcome: Any) -> str:
+    """A ranking-table cell: the setting's harmonising filter and passing range, or why none."""
+    h = getattr(outcome, "harmonisation", None) or {}
+    if h.get("error"):
+        return f'<td class="v-na">not found: {esc(h["error"])}</td>'
+    if h.get("recommended_fwhm_mm") is None:
+        return f'<td class="v-fail">none: {esc(h.get("passing_range_reason") or "")}</td>' if h else "<td>&ndash;</td>"
+    lo, hi = h["passing_range_mm"]
+    return f'<td class="v-pass">{h["recommended_fwhm_mm"]:g} mm (every band met {lo:g}&ndash;{hi:g} mm)</td>'
+
+
 def compare_report_html(result: "ComparisonResult", *, folder: str | os.PathLike | None = None) -> str:
     """The report of a comparison as an HTML string.
 
@@ -472,6 +483,7 @@ def compare_report_html(result: "ComparisonResult", *, folder: str | os.PathLike
         ("phantom", fill.get("phantom")),
     ]
     rank_rows = []
+    outcomes = {o.job.number: o for o in result.outcomes}
     for e in result.ranking:
         if e.meets_all_bands is None:
             meets = '<td class="v-na">&ndash; no bands</td>'
@@ -483,13 +495,18 @@ def compare_report_html(result: "ComparisonResult", *, folder: str | os.PathLike
         dist = f"{e.distance:.2f}" if e.distance is not None else "&ndash;"
         rank_rows.append(
             f"<tr><td class=\"num\">{e.rank}</td><td class=\"num\">{e.number}</td><td>{esc(e.label)}</td>{meets}"
-            f"<td class=\"num\">{e.passed}/{e.checked}</td><td class=\"num\">{dist}</td><td>{reasons}</td></tr>"
+            f"<td class=\"num\">{e.passed}/{e.checked}</td><td class=\"num\">{dist}</td><td>{reasons}</td>"
+            + (_harmonisation_cell(outcomes.get(e.number)) if result.harmonised else "") + "</tr>"
         )
     ranking = (
         '<table id="ranking"><caption>Settings meeting every band first, then by root-mean-square distance from the band '
-        "centres (0: all values at the centre of their band, 1: on average at a limit).</caption>"
-        "<thead><tr><th class=\"num\">rank</th><th class=\"num\">#</th><th>setting</th><th>bands</th>"
-        "<th class=\"num\">passed</th><th class=\"num\">distance</th><th>reasons for failing</th></tr></thead>"
+        "centres (0: all values at the centre of their band, 1: on average at a limit)."
+        + (" Harmonising filter: the Gaussian post-filter (mm FWHM) closest to the band centres among those meeting every "
+           "band, and the range meeting every band; a Gaussian applied after reconstruction, to be confirmed by a real "
+           "reconstruction with that filter." if result.harmonised else "")
+        + "</caption><thead><tr><th class=\"num\">rank</th><th class=\"num\">#</th><th>setting</th><th>bands</th>"
+        "<th class=\"num\">passed</th><th class=\"num\">distance</th><th>reasons for failing</th>"
+        + ("<th>harmonising filter</th>" if result.harmonised else "") + "</tr></thead>"
         f"<tbody>{''.join(rank_rows)}</tbody></table>"
     )
     failed = ""

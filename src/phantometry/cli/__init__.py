@@ -55,6 +55,7 @@ from . import commands  # noqa: E402,F401  (registers the commands)
 from . import bands as _bands  # noqa: E402,F401
 from . import ledger as _ledger  # noqa: E402,F401
 from . import compare as _compare  # noqa: E402,F401
+from . import harmonise as _harmonise  # noqa: E402,F401
 
 
 def command():

@@ -12,6 +12,7 @@ from rich.markup import escape
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 from rich.table import Table
 
+from ..ranking import harmonisation_text
 from ..results import CAUTION
 from . import app
 from .commands import print_written, strip_warning
@@ -131,6 +132,10 @@ def _print_ranked(result, report: bool) -> None:
     t.add_column("passed", justify="right")
     t.add_column("distance", justify="right")
     t.add_column("failing values")
+    harmonised = result.harmonised
+    if harmonised:
+        t.add_column("filter (passing range)", no_wrap=True)
+    outcomes = {o.job.number: o for o in result.outcomes}
     for e in result.ranking:
         if e.meets_all_bands is None:
             meets = "no bands"
@@ -144,8 +149,16 @@ def _print_ranked(result, report: bool) -> None:
             f"{e.passed}/{e.checked}",
             "-" if e.distance is None else f"{e.distance:.2f}",
             escape(", ".join(e.brief[:4]) + (f" (+{len(e.brief) - 4} more)" if len(e.brief) > 4 else "")),
+            *([escape(harmonisation_text(outcomes[e.number].harmonisation))] if harmonised else []),
         )
     console.print(t)
+    if harmonised:
+        console.print("filter: the Gaussian post-filter (mm FWHM) closest to the band centres among those meeting every band "
+                      "(harmonisation.json in each series folder; confirm with a real reconstruction)", markup=False, soft_wrap=True)
+        for o in result.succeeded:
+            h = o.harmonisation or {}
+            if h.get("error") or (h and h.get("recommended_fwhm_mm") is None):
+                console.print(f"  #{o.job.number}: {escape(h.get('error') or h.get('passing_range_reason') or '')}", soft_wrap=True)
     if any(e.reasons for e in result.ranking):
         console.print("reasons in full: ranking.csv" + (" and report.html" if report else ""), markup=False)
 
@@ -163,6 +176,7 @@ def compare_cmd(
     report: bool = typer.Option(False, "--report", help="Also write report.html (self-contained)."),
     templates_dir: Optional[List[Path]] = typer.Option(None, "--templates", metavar="DIR", help="Extra folder of templates; repeatable."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar on stderr (it appears only when stderr is a terminal)."),
+    harmonise: bool = typer.Option(False, "--harmonise", help="Also find each setting's harmonising Gaussian post-filter against --bands."),
     timezone: Optional[str] = typer.Option(None, "--timezone", metavar="ZONE", help="Site time zone (IANA name, e.g. Europe/Berlin) of scanner times written without a UTC offset; one for all series."),
 ) -> None:
     """Compare reconstruction settings: measure every PET series with one fill record; rank them
@@ -186,6 +200,7 @@ def compare_cmd(
             templates_dirs=[str(d) for d in templates_dir or []],
             progress=progress,
             overwrite=overwrite,
+            harmonise=harmonise,
             timezone=timezone,
         )
 

@@ -65,6 +65,7 @@ def compare(
     overlays: bool = True,
     measure_options: dict[str, Any] | None = None,
     overwrite: bool = False,
+    harmonise: bool | dict[str, Any] = False,
     timezone: str | None = None,
 ) -> ComparisonResult:
     """Measure every PET series in ``inputs`` with one fill record and rank the settings.
@@ -103,6 +104,12 @@ def compare(
         series (e.g. ``{"resolution": False}``).
     overwrite : bool
         Replace ``out`` when it holds earlier phantometry results (``--overwrite``).
+    harmonise : bool or dict
+        Also find every setting's harmonising Gaussian post-filter against ``bands``
+        (:func:`phantometry.harmonise.harmonise_analysis`; a dict gives its keyword arguments,
+        e.g. ``{"max_fwhm_mm": 8}``): the passing range and recommendation join
+        comparison.csv (ROI ``harmonisation``), ranking.csv, the ranking table and the report,
+        and each series folder gets harmonisation.json and harmonisation.csv. Needs ``bands``.
     timezone : str, optional
         The site's IANA zone (``--timezone``), one for all series: scanner times written
         without a UTC offset are read in it (:mod:`phantometry.sitetime`).
@@ -139,6 +146,12 @@ def compare(
     tpl = load_template(template, dirs)
     fill_record = load_fill_record(fill)
     band_sets = _load_bands(list(bands), tpl)  # refuse bad band sets before any work
+    harmonise_options: dict[str, Any] | None = None
+    if harmonise is not False and harmonise is not None:
+        from ..harmonise import check_harmonisable
+
+        harmonise_options = dict(harmonise) if isinstance(harmonise, dict) else {}
+        check_harmonisable(tpl, list(bands), harmonise_options)
     mapping = labels if isinstance(labels, dict) else (load_labels(labels) if labels is not None else None)
 
     executor = None
@@ -182,7 +195,7 @@ def compare(
         with output_folder(out, KIND_COMPARE, inputs=input_paths, overwrite=overwrite) as staging:
             tmp = staging.path
             run = _Run(jobs, (str(template), str(Path(fill)), dirs), tmp / "series", trace_memory, overlays, progress,
-                       tuple(str(b) for b in bands), measure_options)
+                       tuple(str(b) for b in bands), measure_options, harmonise_options)
             if executor is None or total == 1:
                 n_used = 1
                 outcomes = run.in_process()
@@ -196,6 +209,7 @@ def compare(
                 if o.error_type == "OutputError":  # the folder would be incomplete: nothing is kept
                     raise OutputError(f"{out}: cannot write the results ({o.error})")
             result = _finish(ordered, tpl, fill_record, band_sets, list(bands), mapping, notes, tmp, n_used)
+            result.harmonised = harmonise_options is not None
             result.out = out
             write_files(result, tmp, report, executor if run.pool_usable and total > 1 else None)
             result.seconds = time.perf_counter() - t_start
@@ -224,8 +238,9 @@ class _Run:
     """
 
     def __init__(self, jobs, args, series_root: Path, trace_memory: bool, overlays: bool, progress, bands: tuple[str, ...] = (),
-                 measure_options: dict[str, Any] | None = None) -> None:
+                 measure_options: dict[str, Any] | None = None, harmonise: dict[str, Any] | None = None) -> None:
         self.bands = bands
+        self.harmonise = harmonise
         self.measure_options = dict(measure_options or {})
         self.pending = list(jobs)
         self.args = args
@@ -247,7 +262,7 @@ class _Run:
     def _here(self, job: SeriesJob) -> None:
         self._record(job, measure_series(job, *self.args, out_dir=str(self.series_root / job.folder_name),
                                          trace_memory=self.trace_memory, overlay=self.overlays, bands=self.bands,
-                                         measure_options=self.measure_options))
+                                         measure_options=self.measure_options, harmonise=self.harmonise))
 
     def in_process(self) -> dict[int, SeriesOutcome]:
         while self.pending:
@@ -263,7 +278,7 @@ class _Run:
                 try:
                     fut = executor.submit(measure_series, job, *self.args, out_dir=str(self.series_root / job.folder_name),
                                           trace_memory=self.trace_memory, overlay=self.overlays, bands=self.bands,
-                                          measure_options=self.measure_options)
+                                          measure_options=self.measure_options, harmonise=self.harmonise)
                 except Exception:  # a broken pool: the rest is measured here
                     self.pool_usable = False
                     return

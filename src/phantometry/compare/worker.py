@@ -16,7 +16,7 @@ from ..ranking import SeriesJob, SeriesOutcome
 #: Modules a worker needs; imported once by the fork server (or by each spawned worker at start).
 #: ``phantometry.compare.worker`` brings its package (all of :mod:`phantometry.compare`, as the
 #: single ``compare`` module did before) and :mod:`phantometry.ranking`; the rest is measuring.
-_WORKER_MODULES = ["phantometry.compare.worker", "phantometry.measure", "phantometry.noise", "phantometry.metrics.resolution", "phantometry.io.dicom",
+_WORKER_MODULES = ["phantometry.compare.worker", "phantometry.measure", "phantometry.harmonise", "phantometry.noise", "phantometry.metrics.resolution", "phantometry.io.dicom",
                    "phantometry.phantoms.body", "phantometry.phantoms.small_animal", "phantometry.phantoms.inserts",
                    "phantometry.io.nifti", "phantometry.figures", "phantometry._agg"]
 
@@ -90,6 +90,7 @@ def measure_series(
     overlay: bool = True,
     bands: Sequence[str] = (),
     measure_options: dict[str, Any] | None = None,
+    harmonise: dict[str, Any] | None = None,
 ) -> SeriesOutcome:
     """Load and measure one series; never raises for a bad series (the error is returned).
 
@@ -115,6 +116,12 @@ def measure_series(
     measure_options : dict, optional
         Keyword arguments for :func:`phantometry.measure.measure_volume` (e.g.
         ``{"uncertainties": False}``).
+    harmonise : dict, optional
+        Also find the setting's harmonising post-filter against ``bands``
+        (:func:`phantometry.harmonise.harmonise_analysis`; the dict holds its keyword
+        arguments, e.g. ``{}``): ``outcome.harmonisation`` is set, the rows of
+        :func:`phantometry.harmonise.harmonisation_rows` join ``outcome.rows``, and the series
+        folder gets harmonisation.json, harmonisation.csv (and harmonisation.png with ``overlay``).
 
     Returns
     -------
@@ -130,7 +137,7 @@ def measure_series(
     try:
         with _warnings.catch_warnings(record=True) as caught:
             _warnings.simplefilter("always")
-            _measure_into(outcome, job, template, fill_path, templates_dirs, out_dir, overlay, tuple(bands), measure_options)
+            _measure_into(outcome, job, template, fill_path, templates_dirs, out_dir, overlay, tuple(bands), measure_options, harmonise)
         outcome.warnings.extend(str(w.message) for w in caught if issubclass(w.category, UserWarning))
     except PhantometryError as exc:
         outcome.error = str(exc).replace("\n", " ")
@@ -160,6 +167,7 @@ def _measure_into(
     overlay: bool,
     bands: tuple[str, ...] = (),
     measure_options: dict[str, Any] | None = None,
+    harmonise: dict[str, Any] | None = None,
 ) -> None:
     from ..measure import judge, measure_volume, write_results
 
@@ -187,11 +195,28 @@ def _measure_into(
     outcome.localisation = analysis.placement.as_dict()
     outcome.key_metrics = analysis.key_metrics()
     outcome.metric_titles = analysis.metric_titles()
+    h = None
+    if harmonise is not None and bands:
+        from ..harmonise import harmonisation_rows, harmonise_analysis, summary
+
+        try:
+            h = harmonise_analysis(analysis, _cached_bands(bands), **harmonise)
+        except PhantometryError as exc:  # the measurement stands; the filter search says why it failed
+            outcome.harmonisation = {"error": str(exc).replace("\n", " ")}
+            outcome.warnings.append(f"harmonising filter not found: {outcome.harmonisation['error']}")
+        else:
+            outcome.harmonisation = summary(h)
+            outcome.rows = list(analysis.rows) + harmonisation_rows(h)
+            outcome.warnings.extend(w for w in h.warnings if w not in outcome.warnings)
     if out_dir is not None:
         folder = Path(out_dir)
         try:
             folder.mkdir(parents=True, exist_ok=True)
             write_results(analysis, folder, overlay=overlay, pictures=False)
+            if h is not None:
+                from ..harmonise import write_harmonisation
+
+                write_harmonisation(h, folder, picture=overlay)
         except OSError as exc:  # no space, file-size limit ...: the whole comparison stops (see compare)
             if exc.errno is None:
                 raise

@@ -40,6 +40,7 @@ def summary_json(result: ComparisonResult) -> dict[str, Any]:
                 "warnings": o.warnings,
                 "folder": f"series/{o.job.folder_name}" if o.ok else None,
                 "seconds": round(o.seconds, 3),
+                **({"harmonisation": o.harmonisation} if result.harmonised else {}),
             }
             for o in result.outcomes
         ],

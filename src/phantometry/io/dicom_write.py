@@ -176,6 +176,8 @@ def write_dicom_series(
     transfer_syntax: str = ExplicitVRLittleEndian,
     calibration_counts_per_bq_ml: float | None = None,
     file_prefix: str = "PT",
+    image_type: tuple[str, ...] = ("ORIGINAL", "PRIMARY"),
+    derivation_description: str | None = None,
     timezone_offset: bool = True,
 ) -> list[Path]:
     """Write ``volume`` as one classic PET Image Storage file per slice.
@@ -226,6 +228,11 @@ def write_dicom_series(
         Counts per Bq/mL for ``CNTS``; required then.
     file_prefix : str
         Prefix of the file names.
+    image_type : tuple of str
+        Image Type (0008,0008) values; ``("DERIVED", "SECONDARY")`` for an image computed
+        from another (e.g. a post-filtered copy).
+    derivation_description : str, optional
+        Derivation Description (0008,2111): how a derived image was made.
     timezone_offset : bool
         Write Timezone Offset From UTC (0008,0201). Without it the times are the local wall
         clock of ``volume.acquired_at``, as most scanners write them.
@@ -311,7 +318,9 @@ def write_dicom_series(
 
     base = Dataset()
     base.SpecificCharacterSet = "ISO_IR 100"
-    base.ImageType = ["ORIGINAL", "PRIMARY"]
+    base.ImageType = [str(v) for v in image_type]
+    if derivation_description:
+        base.DerivationDescription = str(derivation_description)[:1024]  # ST: at most 1024 characters
     base.SOPClassUID = PositronEmissionTomographyImageStorage
     base.InstanceCreationDate = _da(series_time)
     base.InstanceCreationTime = _tm(series_time)

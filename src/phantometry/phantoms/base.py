@@ -424,6 +424,41 @@ class Analysis(ABC):
                 titles.setdefault(metric, title)
         return titles
 
+    def reread(self, keys: Sequence[tuple[str, str]]) -> "Reread | None":
+        """How to read the metrics ``keys`` again on images derived from this one by a
+        shift-invariant Gaussian post-filter, every ROI kept where this analysis placed it
+        (:mod:`phantometry.harmonise`); None when the kind cannot (the default)."""
+        return None
+
+
+class Reread(ABC):
+    """Some metrics of an analysis read again on filtered copies of its image.
+
+    The ROIs stay where the analysis placed them (a filter does not move the phantom). Made
+    by :meth:`Analysis.reread`.
+
+    Attributes
+    ----------
+    keys : the (roi, metric) pairs read.
+    boxes : array boxes of the image that the metrics read; a filtered copy needs to be
+        right only there (every other voxel may hold anything).
+    """
+
+    keys: list[tuple[str, str]]
+    boxes: list[tuple[slice, slice, slice]]
+
+    @abstractmethod
+    def read(self, volume: Volume, blur_variance_mm2: float) -> tuple[dict[tuple[str, str], float], Any]:
+        """The values on ``volume`` (the image after an isotropic Gaussian of variance
+        ``blur_variance_mm2`` per axis, right on :attr:`boxes`); returns ``(values, state)``,
+        ``state`` being what :meth:`uncertainties` needs of this reading."""
+
+    @abstractmethod
+    def uncertainties(self, volume: Volume, noise: "NoiseModel", blur_variance_mm2: float, state: Any, *,
+                      n_draws: int | None = None) -> dict[tuple[str, str], float | None]:
+        """Standard uncertainties of the values of :meth:`read` (``state``), with ``noise`` the
+        noise model of the filtered image."""
+
 
 @dataclass
 class Chart:
@@ -463,6 +498,9 @@ class PhantomKind(ABC):
     Options: ClassVar[type[KindOptions]] = KindOptions
     #: the ROIs can be exported as DICOM SEG (:meth:`Analysis.roi_masks`)
     supports_seg: ClassVar[bool] = False
+    #: the metrics can be read again on post-filtered copies of the image (:meth:`Analysis.reread`;
+    #: ``phantometry harmonise``)
+    supports_reread: ClassVar[bool] = False
 
     # ---------------------------------------------------------------- template
     def options(self, template: Template) -> KindOptions:
@@ -729,6 +767,7 @@ __all__ = [
     "KindOptions",
     "Overlay",
     "PhantomKind",
+    "Reread",
     "ResultGrid",
     "RoiKindMask",
     "RoiSetCheck",

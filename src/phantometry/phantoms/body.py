@@ -46,6 +46,7 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 from pydantic import Field
+from scipy import ndimage
 
 from ..errors import FillRecordError, InputError, PhantomNotFound, PhantomNotPlaced, PhantometryError
 from ..background_rois import EDGE_TOLERANCE_MM, BackgroundPlacement, Obstacle, PlaneGeometry, check_size
@@ -62,11 +63,22 @@ from ..metrics.nu2 import (
     u_percent_contrast_hot,
 )
 from ..metrics.recovery import BOOTSTRAP_DRAWS, SearchSimulation, recovery_coefficients
-from ..metrics.resolution import ResolutionFit, SphereObservation, blurred_disc_profile, fit_sphere_profiles
-from ..noise import NoiseModel, discs_variance, estimate_noise, u_ratio
+from ..metrics.resolution import FWHM_PER_SIGMA, ResolutionFit, SphereObservation, blurred_disc_profile, fit_sphere_profiles
+from ..noise import NoiseModel, discs_variance, estimate_noise, plane_voxel_weights, u_ratio
 from ..outline import Outline, combine_outlines, find_outline
 from ..results import Measurement
-from ..rois import PlaneImage, cylinder_weights, disc_means, isocontour_voi, peak_search, sample_plane, slice_as_acquired, sphere_weights
+from ..rois import (
+    PlaneImage,
+    centres_in_sphere,
+    cylinder_weights,
+    disc_means,
+    disc_weights,
+    isocontour_voi,
+    peak_search,
+    sample_plane,
+    slice_as_acquired,
+    sphere_weights,
+)
 from ..sampling import PlaneSampler
 from ..templates import Template
 from ..threads import fft_workers, threads
@@ -79,6 +91,7 @@ from .base import (
     KindOptions,
     Overlay,
     PhantomKind,
+    Reread,
     ResultGrid,
     RoiKindMask,
     RoiSetCheck,
@@ -446,6 +459,10 @@ class BodyAnalysis(Analysis):
         return {**super().metric_titles(), "lung_residual_pct": "insert residual (%)", "activity_recovery": "activity recovery",
                 "effective_fwhm_mm": "effective FWHM (mm)"}
 
+    def reread(self, keys: Sequence[tuple[str, str]]) -> "BodyReread":
+        """Read ``keys`` again on filtered copies of the image, ROIs kept (:class:`BodyReread`)."""
+        return BodyReread(self, keys)
+
 
 #: A voxel belongs to a SEG segment when at least this fraction of it lies inside an ROI.
 MASK_WEIGHT_THRESHOLD = 0.5
@@ -474,6 +491,7 @@ class BodyKind(PhantomKind):
     summary = "NEMA NU 2 contrast, background variability, insert residual; RC max/mean/peak; effective FWHM"
     Options = Options
     supports_seg = True
+    supports_reread = True
 
     def insert_references(self, options: Any) -> tuple[str, ...]:
         return ("axis_insert", "lung_insert")
@@ -1251,3 +1269,278 @@ def fit_body(analysis: BodyAnalysis, noise: NoiseModel | None = None, **kwargs: 
         where=analysis.volume.source,
         **kwargs,
     )
+
+
+# ============================================================================== re-reading on a filtered image
+#: The recovery-coefficient metrics.
+RC_METRICS = ("rc_max", "rc_mean", "rc_peak")
+
+
+@dataclass
+class DiscSet:
+    """Disc ROIs of one diameter on one plane as a linear map of the voxels they read.
+
+    Each disc's partial-area pixel weights (:func:`phantometry.rois.disc_weights`) are spread
+    onto the voxels its plane interpolates (:func:`phantometry.noise.plane_voxel_weights`)
+    and normalised, so ``means(data)`` gives the discs' means as
+    :func:`phantometry.rois.disc_means` on the plane read from ``data`` does (to rounding), for
+    any image on the same grid, reading only :attr:`box`.
+    """
+
+    box: tuple[slice, slice, slice]
+    matrix: Any  # scipy.sparse.csr_matrix (n discs, voxels of box)
+
+    @classmethod
+    def build(cls, volume: Volume, plane: PlaneImage, uvs: np.ndarray, diameter_mm: float) -> "DiscSet":
+        from scipy import sparse
+
+        parts = []
+        for uv in np.asarray(uvs, float).reshape(-1, 2):
+            box2d, w2d = disc_weights(plane, uv, diameter_mm)
+            box, w = plane_voxel_weights(volume, plane, box2d, w2d)
+            nz = np.argwhere(w > 0)  # trim the neighbours that carry no weight
+            lo, hi = nz.min(axis=0), nz.max(axis=0) + 1
+            w = w[tuple(slice(int(a), int(b)) for a, b in zip(lo, hi))]
+            parts.append((np.array([b.start for b in box]) + lo, w / float(w.sum())))
+        lo = np.min([p for p, _ in parts], axis=0)
+        hi = np.max([p + np.array(w.shape) for p, w in parts], axis=0)
+        dims = tuple(int(v) for v in hi - lo)
+        rows, cols, vals = [], [], []
+        for i, (p, w) in enumerate(parts):
+            idx = np.argwhere(w > 0)
+            rows.append(np.full(len(idx), i))
+            cols.append(np.ravel_multi_index(tuple((idx + (p - lo)).T), dims))
+            vals.append(w[tuple(idx.T)])
+        matrix = sparse.csr_matrix((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))), shape=(len(parts), int(np.prod(dims))))
+        return cls(tuple(slice(int(a), int(b)) for a, b in zip(lo, hi)), matrix)  # type: ignore[arg-type]
+
+    def means(self, data: np.ndarray) -> np.ndarray:
+        return self.matrix @ np.asarray(data[self.box], dtype=np.float64).ravel()
+
+
+class SphereSearch:
+    """The hottest-voxel and isocontour searches of one sphere, their geometry computed once.
+
+    The same searches as :func:`phantometry.rois.max_in_sphere` and
+    :func:`phantometry.rois.isocontour_mean` (voxel centres within the sphere; the
+    26-connected VOI ``>= B + fraction (max - B)`` holding the hottest voxel, within the
+    sphere grown by one voxel), for reading one sphere of many filtered copies of an image.
+    """
+
+    def __init__(self, volume: Volume, centre_mm: np.ndarray, diameter_mm: float) -> None:
+        r = 0.5 * float(diameter_mm)
+        self.box, self.mask = centres_in_sphere(volume, centre_mm, r)
+        self.iso_box, self.iso_mask = centres_in_sphere(volume, centre_mm, r + float(np.max(volume.spacing_mm)))
+        self.offset = np.array([a.start - b.start for a, b in zip(self.box, self.iso_box)])
+
+    def max(self, data: np.ndarray) -> tuple[float, tuple[int, ...]]:
+        """The hottest voxel within the sphere and its index in :attr:`box` (first in array order)."""
+        vals = np.where(self.mask, data[self.box], -np.inf)
+        loc = np.unravel_index(int(np.argmax(vals)), vals.shape)
+        return float(vals[loc]), tuple(int(v) for v in loc)
+
+    def isocontour_mean(self, data: np.ndarray, background_bq_ml: float, fraction: float) -> float:
+        """Mean of the isocontour VOI; NaN when no voxel is above the background."""
+        vmax, loc = self.max(data)
+        bg = float(background_bq_ml)
+        if not (math.isfinite(bg) and vmax > bg):
+            return math.nan
+        threshold = bg + float(fraction) * (vmax - bg)
+        vals = data[self.iso_box].astype(np.float64)
+        labels, _ = ndimage.label(self.iso_mask & (vals >= threshold), structure=np.ones((3, 3, 3), dtype=bool))
+        voi = labels == labels[tuple(np.array(loc) + self.offset)]
+        return float(vals[voi].mean())
+
+
+class BodyReread(Reread):
+    """Body metrics read again on a post-filtered copy of the image (:mod:`phantometry.harmonise`).
+
+    Every ROI stays where :meth:`BodyKind.analyse` placed it: the background, sphere and insert
+    discs on their planes (as :class:`DiscSet` maps of the voxels they read), the recovery
+    searches about the placed sphere centres. The values come from the same formulas as in the
+    analysis; the uncertainties as in :func:`body_uncertainties`, with the noise model of the
+    filtered image and the blurred-sphere model widened by the filter (Gaussians compose: the
+    effective variance grows by the filter's). ``effective_fwhm_mm`` is the fitted FWHM
+    composed with the filter, ``sqrt(FWHM^2 + (2 sqrt(2 ln 2))^2 s_f^2)``; the sphere centres
+    do not move.
+    """
+
+    def __init__(self, analysis: BodyAnalysis, keys: Sequence[tuple[str, str]]) -> None:
+        self.analysis = a = analysis
+        opts = a.options
+        vol = a.volume
+        self.keys = [(str(r), str(m)) for r, m in keys]
+        self.spheres = {s.name: s for s in a.template.spheres}
+        ref = opts.reference_background_diameter_mm
+        have = set(a.background_roi_means)
+        self.rc: dict[str, set[str]] = {}
+        self.contrast: list[str] = []
+        sizes: set[float] = set()
+        self.lung = False
+        for roi, metric in self.keys:
+            s = self.spheres.get(roi)
+            if s is not None:
+                if metric in RC_METRICS and not a.fill.is_cold(roi):
+                    self.rc.setdefault(roi, set()).add(metric)
+                    if metric == "rc_mean":
+                        sizes.add(ref)
+                elif metric == "percent_contrast":
+                    self.contrast.append(roi)
+                    sizes.add(s.diameter_mm if s.diameter_mm in have else ref)
+                elif metric == "background_variability_pct" and s.diameter_mm in have:
+                    sizes.add(s.diameter_mm)
+            elif roi == opts.lung_insert and metric == "lung_residual_pct" and a.lung_discs:
+                self.lung = True
+                sizes.add(ref)
+            elif roi == "background":
+                sizes.add(ref)
+        self.sizes = sorted(sizes)
+        # the discs as maps of the voxels they read (background: one set per plane and size)
+        self.background = {d: [DiscSet.build(vol, plane, uvs, d) for plane, uvs in a.background_discs.values()] for d in self.sizes}
+        self.sphere_discs = {n: DiscSet.build(vol, a.sphere_discs[n][0], a.sphere_discs[n][1], self.spheres[n].diameter_mm)
+                             for n in self.contrast}
+        self.lung_discs = [DiscSet.build(vol, plane, uv, opts.lung_roi_diameter_mm) for _, plane, uv in a.lung_discs] if self.lung else []
+        boxes = [ds.box for sets in self.background.values() for ds in sets] + [ds.box for ds in self.sphere_discs.values()]
+        boxes += [ds.box for ds in self.lung_discs]
+        step = float(np.max(vol.spacing_mm))
+        self.searches = {n: SphereSearch(vol, a.placement.insert_centre(n), self.spheres[n].diameter_mm) for n in self.rc}
+        for name in self.rc:
+            # every voxel the max, isocontour and peak searches and their simulation read
+            r = 0.5 * self.spheres[name].diameter_mm + 0.5 * opts.peak_diameter_mm + 3.0 * step
+            box, _ = centres_in_sphere(vol, a.placement.insert_centre(name), r)
+            boxes.append(box)
+        self.boxes = boxes
+
+    def _reference_background(self, c_b: dict[float, float]) -> float:
+        ref = self.analysis.options.reference_background_diameter_mm
+        return c_b[ref] if ref in c_b else float(np.mean(self.analysis.background_roi_means[ref]))
+
+    def _composed_fit(self, blur_variance_mm2: float) -> ResolutionFit | None:
+        fit = self.analysis.resolution
+        if fit is None:
+            return None
+        return dataclasses.replace(fit, sigma_eff_mm=math.sqrt(fit.sigma_eff_mm**2 + max(0.0, blur_variance_mm2)))
+
+    def read(self, volume: Volume, blur_variance_mm2: float) -> tuple[dict[tuple[str, str], float], dict[str, Any]]:
+        a = self.analysis
+        opts = a.options
+        data = volume.data
+        means = {d: np.concatenate([ds.means(data) for ds in sets]) for d, sets in self.background.items()}
+        c_b = {d: float(np.mean(m)) for d, m in means.items()}
+        bv = {d: (background_variability(m)[0] if len(m) >= 2 else math.nan) for d, m in means.items()}
+        cb_ref = self._reference_background(c_b)
+        old = a.values()
+        values: dict[tuple[str, str], float] = {k: math.nan for k in self.keys}
+        state: dict[str, Any] = {"c_b": c_b, "means": means, "c_sphere": {}, "c_lung": None}
+        for name, ds in self.sphere_discs.items():
+            s = self.spheres[name]
+            c_sphere = float(ds.means(data)[0])
+            state["c_sphere"][name] = c_sphere
+            cb = c_b.get(s.diameter_mm, cb_ref)
+            if a.fill.is_cold(name):
+                values[(name, "percent_contrast")] = percent_contrast_cold(c_sphere, cb)
+            else:
+                values[(name, "percent_contrast")] = percent_contrast_hot(c_sphere, cb, float(a.fill.activity_ratio(name)))
+        for roi, metric in self.keys:
+            s = self.spheres.get(roi)
+            if s is not None and metric == "background_variability_pct" and s.diameter_mm in bv:
+                values[(roi, metric)] = bv[s.diameter_mm]
+            elif s is not None and metric.startswith("centre_"):
+                values[(roi, metric)] = old.get((roi, metric), math.nan)
+            elif roi == "background" and metric == "mean_bq_ml":
+                values[(roi, metric)] = cb_ref
+            elif roi == "background" and metric == "activity_recovery" and a.true_background_bq_ml > 0:
+                values[(roi, metric)] = cb_ref / a.true_background_bq_ml
+            elif roi == "phantom" and metric == "effective_fwhm_mm" and a.resolution is not None:
+                values[(roi, metric)] = math.hypot(a.resolution.fwhm_mm, FWHM_PER_SIGMA * math.sqrt(max(0.0, blur_variance_mm2)))
+        for name, metrics in self.rc.items():
+            s = self.spheres[name]
+            centre = a.placement.insert_centre(name)
+            true = float(a.true_insert_bq_ml[name])
+            search = self.searches[name]
+            if "rc_max" in metrics:
+                values[(name, "rc_max")] = search.max(data)[0] / true
+            if "rc_mean" in metrics:  # NaN when nothing is above the background (no isocontour VOI)
+                values[(name, "rc_mean")] = search.isocontour_mean(data, cb_ref, opts.isocontour_fraction) / true
+            if "rc_peak" in metrics:
+                values[(name, "rc_peak")] = peak_search(volume, centre, s.diameter_mm, opts.peak_diameter_mm)[0] / true
+        if self.lung:
+            vals = np.array([float(ds.means(data)[0]) for ds in self.lung_discs])
+            state["c_lung"] = float(np.mean(vals))
+            values[(opts.lung_insert, "lung_residual_pct")] = lung_residual(vals, cb_ref)[0]
+        state["values"] = values
+        state["cb_ref"] = cb_ref
+        return values, state
+
+    def uncertainties(self, volume: Volume, noise: NoiseModel, blur_variance_mm2: float, state: dict[str, Any], *,
+                      n_draws: int | None = None) -> dict[tuple[str, str], float | None]:
+        a = self.analysis
+        opts = a.options
+        n_draws = BOOTSTRAP_DRAWS if n_draws is None else int(n_draws)
+        values = state["values"]
+        c_b = state["c_b"]
+        cb_ref = state["cb_ref"]
+        ref = opts.reference_background_diameter_mm
+        fit = self._composed_fit(blur_variance_mm2)
+        out: dict[tuple[str, str], float | None] = {}
+        old = {(r.roi, r.metric): r.uncertainty for r in a.rows}
+        noise_free = noise.sd_bq_ml <= 1e-6 * max(noise.background_bq_ml, 1e-12)
+        # ---- recovery coefficients: the simulation of the searches (all spheres share its draws)
+        names = [s.name for s in a.template.spheres if s.name in self.rc]
+        if names:
+            if noise_free:
+                sds = [{"max": 0.0, "mean": 0.0, "peak": 0.0} for _ in names]
+            else:
+                sim = SearchSimulation(noise, volume, [(a.placement.insert_centre(n), float(self.spheres[n].diameter_mm)) for n in names],
+                                       cb_ref, fit.model_at if fit is not None else None, fraction=opts.isocontour_fraction,
+                                       peak_diameter_mm=opts.peak_diameter_mm, n_draws=n_draws, seed=_seed("rc searches"))
+                sds = sim.standard_deviations([sim.run_chunk(*chunk) for chunk in sim.chunks])
+            for name, sd in zip(names, sds):
+                true = float(a.true_insert_bq_ml[name])
+                for metric in self.rc[name]:
+                    out[(name, metric)] = sd[metric[3:]] / true
+        # ---- ROI means: first-order propagation with the filtered autocovariance
+        u_cb: dict[float, float] = {}
+
+        def ucb(d: float) -> float:
+            if d not in u_cb:
+                discs = [(plane, c) for plane, uvs in a.background_discs.values() for c in uvs]
+                u_cb[d] = math.sqrt(discs_variance(noise, volume, discs, d, heteroscedastic=False))
+            return u_cb[d]
+
+        for roi, metric in self.keys:
+            key = (roi, metric)
+            if key in out or not math.isfinite(values.get(key, math.nan)):
+                continue
+            s = self.spheres.get(roi)
+            if s is not None and metric == "percent_contrast":
+                d = s.diameter_mm if s.diameter_mm in c_b else ref
+                sp, uv = a.sphere_discs[roi]
+                u_sphere = math.sqrt(discs_variance(noise, volume, [(sp, np.asarray(uv, float).reshape(2))], s.diameter_mm, heteroscedastic=True))
+                c_sphere = state["c_sphere"][roi]
+                if a.fill.is_cold(roi):
+                    out[key] = u_percent_contrast_cold(c_sphere, u_sphere, c_b[d], ucb(d))
+                else:
+                    out[key] = u_percent_contrast_hot(c_sphere, u_sphere, c_b[d], ucb(d), float(a.fill.activity_ratio(roi)))
+            elif s is not None and metric == "background_variability_pct":
+                d = s.diameter_mm
+                out[key] = u_background_variability(values[key], len(state["means"][d]), c_b[d], ucb(d))
+            elif roi == opts.lung_insert and metric == "lung_residual_pct":
+                lung = a.template.insert(opts.lung_insert)
+                level_fn = None
+                if fit is not None and lung.shape == "cylinder":
+                    level_fn = _cylinder_level(fit, a.placement.insert_centre(lung.name), a.placement.direction_to_world(lung.axis_unit),
+                                               0.5 * lung.outer_diameter_mm)
+                discs = [(plane, np.asarray(uv, float)) for _, plane, uv in a.lung_discs]
+                u_lung = math.sqrt(discs_variance(noise, volume, discs, opts.lung_roi_diameter_mm, heteroscedastic=True, level_fn=level_fn))
+                out[key] = 100.0 * u_ratio(state["c_lung"], u_lung, cb_ref, ucb(ref))
+            elif roi == "background" and metric == "mean_bq_ml":
+                out[key] = ucb(ref)
+            elif roi == "background" and metric == "activity_recovery":
+                out[key] = ucb(ref) / a.true_background_bq_ml
+            elif roi == "phantom" and metric == "effective_fwhm_mm" and a.resolution is not None:
+                u0 = old.get(key)
+                out[key] = None if u0 is None else u0 * a.resolution.fwhm_mm / values[key] if values[key] > 0 else u0
+            else:
+                out[key] = old.get(key)
+        return out
