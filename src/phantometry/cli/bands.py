@@ -18,7 +18,7 @@ app.add_typer(bands_app, name="bands")
 
 
 @bands_app.command("list")
-def bands_list(dirs: Optional[List[str]] = typer.Option(None, "--dir", help="Extra folder of band sets; repeatable.")) -> None:
+def bands_list(dirs: Optional[List[str]] = typer.Option(None, "--dir", metavar="DIR", help="Extra folder of band sets; repeatable.")) -> None:
     """List the band sets found (extra folders, $PHANTOMETRY_BANDS, then the built-in ones)."""
     from ..bands import list_band_sets, load_band_set_file
     from ..errors import PhantometryError
@@ -39,7 +39,7 @@ def bands_list(dirs: Optional[List[str]] = typer.Option(None, "--dir", help="Ext
 @bands_app.command("show")
 def bands_show(
     name: str = typer.Argument(..., help="Band set name or YAML file."),
-    dirs: Optional[List[str]] = typer.Option(None, "--dir", help="Extra folder of band sets; repeatable."),
+    dirs: Optional[List[str]] = typer.Option(None, "--dir", metavar="DIR", help="Extra folder of band sets; repeatable."),
     as_json: bool = typer.Option(False, "--json", help="Print the validated band set as JSON."),
 ) -> None:
     """Show a band set, validated against its template: source, notes and every limit."""

@@ -15,7 +15,8 @@ from ..errors import InputError
 from ..results import CAUTION
 from . import app
 from ..timeutil import parse_aware_time
-from .commands import _fmt, print_written
+from .commands import print_written
+from .numbers import limits_range, number
 
 console = Console(highlight=False)
 
@@ -52,9 +53,8 @@ def print_harmonisation(h) -> None:
         for c in ("ROI", "metric", "value", "u", "band", "verdict"):
             t.add_column(c, justify="right" if c in ("value", "u") else "left", no_wrap=True)
         for r in rec.rows:
-            lo = "-inf" if r.band_low is None else f"{r.band_low:.3g}"
-            hi = "+inf" if r.band_high is None else f"{r.band_high:.3g}"
-            t.add_row(escape(r.roi), escape(r.metric), _fmt(r.value, 3), _fmt(r.uncertainty, 3), f"{lo}..{hi}", r.verdict or "-")
+            t.add_row(escape(r.roi), escape(r.metric), number(r.value, r.unit), number(r.uncertainty, r.unit),
+                      escape(limits_range(r.band_low, r.band_high)), r.verdict or "-")
         console.print(t)
     console.print(f"[bold]CAUTION[/bold]: {escape(FILTER_CAUTION)}", soft_wrap=True)
     console.print(CAUTION, markup=False, soft_wrap=True)
@@ -67,25 +67,25 @@ def print_harmonisation(h) -> None:
 
 @app.command("harmonise")
 def harmonise_cmd(
-    inputs: List[Path] = typer.Argument(..., help="DICOM folder(s)/file(s) of one series, or a NIfTI file."),
-    fill: Path = typer.Option(..., "--fill", "-f", help="Fill record YAML (phantom preparation)."),
-    bands: List[str] = typer.Option(..., "--bands", "-b", help="Band set to aim for (name or YAML file; phantometry bands list); repeatable."),
-    out: Path = typer.Option(..., "--out", "-o", help="Result folder: a new one, or earlier results with --overwrite (written atomically)."),
+    inputs: List[Path] = typer.Argument(..., metavar="INPUT", help="DICOM folder(s)/file(s) of one series, or a NIfTI file."),
+    fill: Path = typer.Option(..., "--fill", "-f", metavar="FILE", help="Fill record YAML (phantom preparation)."),
+    bands: List[str] = typer.Option(..., "--bands", "-b", metavar="NAME|FILE", help="Band set to aim for (name or YAML file; phantometry bands list); repeatable."),
+    out: Path = typer.Option(..., "--out", "-o", metavar="DIR", help="Result folder: a new one, or earlier results with --overwrite (written atomically)."),
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace --out when it holds earlier phantometry results (never any other folder)."),
-    template: str = typer.Option("iec-body", "--template", "-t", help="Template name or YAML file (the body image-quality kind, e.g. iec-body)."),
-    series: Optional[str] = typer.Option(None, "--series", help="Series UID, UID prefix or series number."),
-    centre: Optional[List[str]] = typer.Option(None, "--centre", help="Manual insert centre NAME=x,y,z (world mm); repeatable."),
-    units: Optional[str] = typer.Option(None, "--units", help="NIfTI: pixel units (Bq/mL, kBq/mL)."),
-    acquired_at: Optional[str] = typer.Option(None, "--acquired-at", help="Image reference time, ISO 8601 with offset."),
-    nuclide: Optional[str] = typer.Option(None, "--nuclide", help="NIfTI: radionuclide, e.g. F-18."),
-    calibration: Optional[float] = typer.Option(None, "--calibration", help="Bq/mL per count for CNTS images."),
-    templates_dir: Optional[List[Path]] = typer.Option(None, "--templates", help="Extra folder of templates."),
-    max_fwhm: float = typer.Option(10.0, "--max-fwhm", help="Widest Gaussian post-filter to try, mm FWHM."),
-    step: float = typer.Option(0.25, "--step", help="Step between the filters tried, mm."),
+    template: str = typer.Option("iec-body", "--template", "-t", metavar="NAME|FILE", help="Template name or YAML file (the body image-quality kind, e.g. iec-body)."),
+    series: Optional[str] = typer.Option(None, "--series", metavar="UID|NUMBER", help="Series UID, UID prefix or series number."),
+    centre: Optional[List[str]] = typer.Option(None, "--centre", metavar="NAME=X,Y,Z", help="Manual insert centre NAME=x,y,z (world mm); repeatable."),
+    units: Optional[str] = typer.Option(None, "--units", metavar="UNIT", help="NIfTI: pixel units (Bq/mL, kBq/mL)."),
+    acquired_at: Optional[str] = typer.Option(None, "--acquired-at", metavar="TIME", help="Image reference time, ISO 8601 with offset."),
+    nuclide: Optional[str] = typer.Option(None, "--nuclide", metavar="NAME", help="NIfTI: radionuclide, e.g. F-18."),
+    calibration: Optional[float] = typer.Option(None, "--calibration", metavar="FACTOR", help="Bq/mL per count for CNTS images."),
+    templates_dir: Optional[List[Path]] = typer.Option(None, "--templates", metavar="DIR", help="Extra folder of templates."),
+    max_fwhm: float = typer.Option(10.0, "--max-fwhm", metavar="MM", help="Widest Gaussian post-filter to try, mm FWHM."),
+    step: float = typer.Option(0.25, "--step", metavar="MM", help="Step between the filters tried, mm."),
     write_filtered: bool = typer.Option(False, "--write-filtered", help="Also write the image filtered at the recommendation (DICOM series or NIfTI, as the input)."),
     strict: bool = typer.Option(False, "--strict", help="Exit code 3 when no filter meets every band (results are still written)."),
     timezone: Optional[str] = typer.Option(
-        None, "--timezone", help="Site time zone (IANA name, e.g. Europe/Berlin) of scanner times written without a UTC offset "
+        None, "--timezone", metavar="ZONE", help="Site time zone (IANA name, e.g. Europe/Berlin) of scanner times written without a UTC offset "
         "(default: the fill record's timezone:, else its own offset)."),
 ) -> None:
     """Find the Gaussian post-filter that brings a reconstruction inside acceptance bands.
