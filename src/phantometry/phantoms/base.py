@@ -674,15 +674,10 @@ def body_sketch(volume: Volume, where: str) -> FailureSketch:
 
 
 def series_phrase(volume: Volume) -> str:
-    """How a picture's title names the image: ``series <description>`` (or its UID), else
-    ``file <name>`` (a NIfTI file has neither)."""
-    if volume.series_description:
-        return f"series {volume.series_description}"
-    if volume.series_uid:
-        return f"series {volume.series_uid}"
-    if volume.source:
-        return f"file {Path(str(volume.source)).name}"
-    return "unnamed image"
+    """How a picture's title names the image: ``series <description>``, else ``file <name>``
+    (a NIfTI file has no description), else ``series <UID>`` (:func:`series_name`)."""
+    kind, text = _series_naming(volume)
+    return f"{kind} {text}" if kind else "unnamed image"
 
 
 def voi_on_slice(volume: Volume, box: tuple[slice, slice, slice], voi: np.ndarray, plane: PlaneImage, k: int) -> np.ndarray:
@@ -735,16 +730,24 @@ def nominal_extent_mm(template: Template) -> np.ndarray:
     return np.sort(np.array([*xy, template.body_length_mm], float))
 
 
+def _series_naming(volume: Volume) -> tuple[str, str]:
+    """(what, name) of the image: ("series", description), else ("file", file or folder
+    name), else ("series", Series Instance UID), else ("", "image")."""
+    if volume.series_description and volume.series_description.strip():
+        return "series", volume.series_description.strip()
+    if volume.source and volume.source != "synthetic":
+        name = Path(str(volume.source)).name
+        if name:
+            return "file", name
+    if volume.series_uid:
+        return "series", volume.series_uid
+    return "", "image"
+
+
 def series_name(volume: Volume) -> str:
     """How titles name the image: its Series Description, else its file or folder name (a NIfTI
     file has no description), else its Series Instance UID, else ``image``."""
-    if volume.series_description and volume.series_description.strip():
-        return volume.series_description.strip()
-    if volume.source and volume.source != "synthetic":
-        name = Path(volume.source).name
-        if name:
-            return name
-    return volume.series_uid or "image"
+    return _series_naming(volume)[1]
 
 
 def fmt_number(value: float | None, unit: str | None = None, digits: int | None = None) -> str:
