@@ -67,14 +67,13 @@ import numpy as np
 from . import __version__
 from .bands import BandEntry, BandSet, apply_bands, check_band_set, load_band_set, unit_of_metric
 from .errors import InputError
-from .fill import FillRecord, load_fill_record
-from .measure import judge, load_image, measure_volume, parse_centre_overrides
+from .fill import FillRecord
+from .measure import judge, load_image, measure_volume, prepare_inputs
 from .noise import NoiseModel
-from .phantoms import kind_of, kinds, load_template
+from .phantoms import kind_of, kinds
 from .phantoms.base import Analysis, Reread
 from .postfilter import FWHM_PER_SIGMA, PostFilter, check_filterable, filtered_noise
 from .results import CAUTION, Measurement, _fmt, to_json
-from .sitetime import site_clock
 from .templates import Template
 from .threads import fft_workers, threads
 from .volume import Volume
@@ -998,19 +997,11 @@ def harmonise(
     filter_grid(max_fwhm_mm, step_mm)
     if not band_list:
         raise InputError("harmonise needs at least one band set to aim for: --bands NAME (phantometry bands list)")
-    tpl = load_template(template, list(templates_dirs or []))
-    _check_kind(tpl)
-    fill_record = load_fill_record(fill)
-    fill_record.check_inserts(tpl)
-    clock = site_clock(fill_record, timezone)
-    overrides = parse_centre_overrides(centres, tpl)
-    known = kind_of(tpl).known_metrics(tpl)
-    sets = [load_band_set(b) for b in band_list]
-    for bs in sets:
-        check_band_set(bs, tpl.name, known)
+    p = prepare_inputs(inputs, template=template, fill=fill, bands=band_list, centres=centres, templates_dirs=templates_dirs,
+                       timezone=timezone, check_template=_check_kind)
+    tpl, fill_record, overrides, sets, where = p.template, p.fill, p.overrides, p.band_sets, p.where
     volume = load_image(inputs, series=series, units=units, acquired_at=acquired_at, nuclide=nuclide, calibration_factor=calibration_factor,
-                        site_clock=clock)
-    where = str(inputs if isinstance(inputs, (str, os.PathLike)) else ", ".join(map(str, inputs)))
+                        site_clock=p.clock)
     check_filterable(volume, where)
     h = harmonise_volume(volume, tpl, fill_record, sets, max_fwhm_mm=max_fwhm_mm, step_mm=step_mm, overrides=overrides, where=where,
                          timezone=timezone)

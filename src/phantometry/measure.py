@@ -22,10 +22,10 @@ from .bands import BandSet, apply_bands, check_band_set, load_band_set
 from .errors import FillRecordError, InputError, PhantomNotFound, PhantometryError
 from .fill import FillRecord, load_fill_record
 from .phantoms import kind_of, load_template
-from .phantoms.base import Analysis, AnalysisSettings
+from .phantoms.base import Analysis, AnalysisSettings, PhantomKind
 from .protocol import protocol_checks
 from .results import CAUTION, measurements_csv, to_json
-from .sitetime import resolve_volume_time, site_clock
+from .sitetime import SiteClock, resolve_volume_time, site_clock
 from .templates import Template
 from .volume import Volume
 
@@ -317,6 +317,62 @@ def parse_centre_overrides(items: Sequence[str] | None, template: Template) -> d
     return out
 
 
+@dataclasses.dataclass
+class PreparedInputs:
+    """What ``measure`` and ``harmonise`` read and check before the image: the template and its
+    kind, the fill record (checked against the template), the site clock, manual centres, the
+    band sets (checked against the template) and how messages name the input."""
+
+    template: Template
+    kind: PhantomKind
+    fill: FillRecord
+    clock: SiteClock
+    overrides: dict[str, np.ndarray]
+    band_sets: list[BandSet]
+    where: str
+
+
+def prepare_inputs(
+    inputs: Sequence[str | os.PathLike] | str | os.PathLike,
+    *,
+    template: str,
+    fill: str | os.PathLike,
+    bands: Sequence[BandSet | str | os.PathLike] | None = None,
+    centres: Sequence[str] | None = None,
+    templates_dirs: Sequence[str] | None = None,
+    timezone: str | None = None,
+    check_template: Callable[[Template], None] | None = None,
+) -> PreparedInputs:
+    """Load and cross-check everything a measurement needs except the image (nothing written).
+
+    ``check_template`` (e.g. a command's own refusal of kinds it cannot serve) runs right after
+    the template is loaded. A fill record that does not fit the template but names another
+    phantom is refused with the hint ``--template NAME``.
+
+    Raises
+    ------
+    TemplateError, FillRecordError, BandError, InputError
+        One line naming the file and the problem.
+    """
+    tpl = load_template(template, list(templates_dirs or []))
+    if check_template is not None:
+        check_template(tpl)
+    kind = kind_of(tpl)
+    fill_record = load_fill_record(fill)
+    with _hint_other_phantom(fill_record, tpl):
+        fill_record.check_inserts(tpl)
+    clock = site_clock(fill_record, timezone)
+    overrides = parse_centre_overrides(centres, tpl)
+    band_sets: list[BandSet] = []
+    if bands:
+        known = kind.known_metrics(tpl)
+        band_sets = [load_band_set(b) for b in bands]
+        for b in band_sets:
+            check_band_set(b, tpl.name, known)
+    where = str(inputs if isinstance(inputs, (str, os.PathLike)) else ", ".join(map(str, inputs)))
+    return PreparedInputs(tpl, kind, fill_record, clock, overrides, band_sets, where)
+
+
 @contextlib.contextmanager
 def _hint_other_phantom(fill_record: FillRecord, template: Template) -> Iterator[None]:
     """A fill record that does not fit the template, but names another phantom (``phantom:``),
@@ -396,26 +452,16 @@ def measure(
 
     input_paths = existing_inputs(inputs, fill, template, list(bands or []), list(templates_dirs or []))
     check_output_folder(out, KIND_MEASURE, inputs=input_paths, overwrite=overwrite)
-    tpl = load_template(template, list(templates_dirs or []))
-    kind = kind_of(tpl)
-    fill_record = load_fill_record(fill)
-    with _hint_other_phantom(fill_record, tpl):
-        fill_record.check_inserts(tpl)
-    clock = site_clock(fill_record, timezone)
-    overrides = parse_centre_overrides(centres, tpl)
-    band_sets: list[BandSet] = []
-    if bands:
-        known = kind.known_metrics(tpl)
-        band_sets = [load_band_set(b) for b in bands]
-        for b in band_sets:
-            check_band_set(b, tpl.name, known)
+    prepared = prepare_inputs(inputs, template=template, fill=fill, bands=bands, centres=centres, templates_dirs=templates_dirs,
+                              timezone=timezone)
+    tpl, kind, fill_record, overrides, band_sets = prepared.template, prepared.kind, prepared.fill, prepared.overrides, prepared.band_sets
+    clock, where = prepared.clock, prepared.where
     if record is not None:  # a duplicate is refused before the pixels are read
         record.check_inputs(inputs, series=series, acquired_at=acquired_at, template=tpl.name, fill=fill_record)
     if progress is not None:
         progress(f"loading {describe_inputs(inputs)}")
     volume = load_image(inputs, series=series, units=units, acquired_at=acquired_at, nuclide=nuclide, calibration_factor=calibration_factor,
                         site_clock=clock)
-    where = str(inputs if isinstance(inputs, (str, os.PathLike)) else ", ".join(map(str, inputs)))
     if record is not None:
         record.check_volume(volume, template=tpl.name, fill=fill_record)
     if seg:
